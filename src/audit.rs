@@ -1,0 +1,495 @@
+//! The audit log: event types, the hash chain, the `audit.jsonl` mirror,
+//! query filters and chain verification.
+//!
+//! Each entry is one JSON object on one line. Its `hash` is the blake3 of
+//! the entry's canonical JSON without the `hash` field (keys sorted, no
+//! spaces), and that JSON includes `prev`, the hash of the entry before, so
+//! editing, deleting, inserting or reordering any entry breaks the chain
+//! from that point on. The chain logic is pure; only `Mirror` touches disk.
+
+use std::collections::BTreeMap;
+use std::fs;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, SecondsFormat, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::ids::{AuditSeq, BatchId};
+
+/// `prev` of the first entry.
+pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
+
+/// What happened.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum Event {
+    /// The state dir was created.
+    Initialized {
+        schema_fingerprint: String,
+        config_hash: String,
+        columns: Vec<String>,
+        target: String,
+        task: String,
+    },
+    /// A file was stored as a batch.
+    BatchAccepted {
+        batch: BatchId,
+        file: String,
+        hash: String,
+        rows: u64,
+        train_rows: u64,
+        holdout_rows: u64,
+        /// Category values seen for the first time, per column.
+        #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+        new_categories: BTreeMap<String, Vec<String>>,
+    },
+    /// A file was refused; nothing from it was stored.
+    BatchRejected {
+        file: String,
+        hash: String,
+        problems: u64,
+        first_problem: String,
+        /// Where the refused file and its reasons were put, relative to the state dir.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        kept_as: Option<String>,
+    },
+    /// A file with the same bytes as an accepted batch; nothing stored twice.
+    BatchDuplicate {
+        file: String,
+        hash: String,
+        duplicate_of: BatchId,
+    },
+}
+
+impl Event {
+    /// The kebab-case kind name as written in the log.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            Event::Initialized { .. } => "initialized",
+            Event::BatchAccepted { .. } => "batch-accepted",
+            Event::BatchRejected { .. } => "batch-rejected",
+            Event::BatchDuplicate { .. } => "batch-duplicate",
+        }
+    }
+
+    /// Every kind name, for `log --kind` validation.
+    pub const KINDS: &'static [&'static str] = &["initialized", "batch-accepted", "batch-rejected", "batch-duplicate"];
+
+    /// The batch an event is about, if any.
+    pub fn batch(&self) -> Option<BatchId> {
+        match self {
+            Event::BatchAccepted { batch, .. } => Some(*batch),
+            Event::BatchDuplicate { duplicate_of, .. } => Some(*duplicate_of),
+            _ => None,
+        }
+    }
+
+    /// One line saying what happened, for tables.
+    pub fn summary(&self) -> String {
+        match self {
+            Event::Initialized { target, task, columns, .. } => {
+                format!("state created: {task} of {target} from {} columns", columns.len())
+            }
+            Event::BatchAccepted { batch, file, rows, train_rows, holdout_rows, new_categories, .. } => {
+                let mut s = format!("{batch} from {file}: {rows} rows ({train_rows} train, {holdout_rows} holdout)");
+                for (col, values) in new_categories {
+                    s.push_str(&format!("; new {col}: {}", values.join(", ")));
+                }
+                s
+            }
+            Event::BatchRejected { file, problems, first_problem, .. } => {
+                format!("{file} refused ({problems} problem{}): {first_problem}", if *problems == 1 { "" } else { "s" })
+            }
+            Event::BatchDuplicate { file, duplicate_of, .. } => format!("{file} is a duplicate of batch {duplicate_of}; nothing stored"),
+        }
+    }
+}
+
+/// One sealed entry of the log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Entry {
+    pub seq: AuditSeq,
+    /// UTC, RFC 3339 with milliseconds.
+    pub time: String,
+    /// Who acted: the OS user of the process that wrote the entry.
+    pub user: String,
+    #[serde(flatten)]
+    pub event: Event,
+    pub prev: String,
+    pub hash: String,
+}
+
+/// Why a line is not a well-formed entry.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct ParseError(String);
+
+impl Entry {
+    /// Builds the entry and computes its hash.
+    pub fn seal(seq: AuditSeq, time: DateTime<Utc>, user: &str, event: Event, prev: &str) -> Entry {
+        let mut entry = Entry {
+            seq,
+            time: time.to_rfc3339_opts(SecondsFormat::Millis, true),
+            user: user.to_string(),
+            event,
+            prev: prev.to_string(),
+            hash: String::new(),
+        };
+        let value = serde_json::to_value(&entry).expect("entry serialises");
+        entry.hash = content_hash(&value);
+        entry
+    }
+
+    /// The entry as one JSON line (no newline).
+    pub fn line(&self) -> String {
+        serde_json::to_string(self).expect("entry serialises")
+    }
+
+    pub fn from_line(line: &[u8]) -> Result<Entry, ParseError> {
+        serde_json::from_slice(line).map_err(|e| ParseError(e.to_string()))
+    }
+
+    pub fn timestamp(&self) -> Option<DateTime<Utc>> {
+        DateTime::parse_from_rfc3339(&self.time).ok().map(|t| t.with_timezone(&Utc))
+    }
+}
+
+/// blake3 of the canonical JSON of an entry without its `hash` field.
+fn content_hash(value: &serde_json::Value) -> String {
+    let mut v = value.clone();
+    if let Some(obj) = v.as_object_mut() {
+        obj.remove("hash");
+    }
+    // serde_json's Value keeps object keys sorted, so this is canonical.
+    let canonical = serde_json::to_vec(&v).expect("value serialises");
+    blake3::hash(&canonical).to_hex().to_string()
+}
+
+/// The first thing wrong with a chain of lines.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ChainProblem {
+    /// Sequence number where the chain first fails (the position expected there).
+    pub seq: u64,
+    pub reason: String,
+}
+
+impl std::fmt::Display for ChainProblem {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "audit entry #{}: {}", self.seq, self.reason)
+    }
+}
+
+/// Checks that `lines` form an intact, contiguous chain from entry 1.
+/// Returns the parsed entries, or the first problem.
+pub fn verify_chain<'a>(lines: impl IntoIterator<Item = &'a [u8]>) -> Result<Vec<Entry>, ChainProblem> {
+    let mut prev = GENESIS.to_string();
+    let mut out = Vec::new();
+    for (i, line) in lines.into_iter().enumerate() {
+        let expected = i as u64 + 1;
+        let fail = |reason: String| ChainProblem { seq: expected, reason };
+        let value: serde_json::Value = serde_json::from_slice(line).map_err(|e| fail(format!("not valid JSON: {e}")))?;
+        let stated = value.get("hash").and_then(|h| h.as_str()).ok_or_else(|| fail("has no hash".into()))?.to_string();
+        let entry = Entry::from_line(line).map_err(|e| fail(format!("not a valid entry: {e}")))?;
+        if entry.seq.0 != expected {
+            return Err(fail(format!("sequence number is {} where {expected} was expected (an entry was deleted, inserted or moved)", entry.seq.0)));
+        }
+        if entry.prev != prev {
+            return Err(fail("does not follow the entry before it (prev hash differs): an entry before it was changed, deleted or moved".into()));
+        }
+        if content_hash(&value) != stated {
+            return Err(fail("content does not match its hash: the entry was edited".into()));
+        }
+        prev = stated;
+        out.push(entry);
+    }
+    Ok(out)
+}
+
+/// Which entries `log` shows.
+#[derive(Debug, Clone, Default)]
+pub struct Filter {
+    pub since: Option<DateTime<Utc>>,
+    pub until: Option<DateTime<Utc>>,
+    pub kinds: Vec<String>,
+    pub batch: Option<BatchId>,
+    /// Keep only the newest this many (after the other filters).
+    pub limit: Option<usize>,
+}
+
+impl Filter {
+    pub fn matches(&self, e: &Entry) -> bool {
+        let t = e.timestamp();
+        if let (Some(s), Some(t)) = (self.since, t) {
+            if t < s {
+                return false;
+            }
+        }
+        if let (Some(u), Some(t)) = (self.until, t) {
+            if t > u {
+                return false;
+            }
+        }
+        if !self.kinds.is_empty() && !self.kinds.iter().any(|k| k == e.event.kind()) {
+            return false;
+        }
+        if let Some(b) = self.batch {
+            if e.event.batch() != Some(b) {
+                return false;
+            }
+        }
+        true
+    }
+
+    /// The matching entries, oldest first, limited to the newest `limit`.
+    pub fn apply<'a>(&self, entries: &'a [Entry]) -> Vec<&'a Entry> {
+        let mut out: Vec<&Entry> = entries.iter().filter(|e| self.matches(e)).collect();
+        if let Some(n) = self.limit {
+            let skip = out.len().saturating_sub(n);
+            out.drain(..skip);
+        }
+        out
+    }
+}
+
+/// Parses `--since`/`--until`: RFC 3339, a date (midnight UTC), or a span
+/// back from `now` such as `30m`, `12h`, `7d`, `2w`.
+pub fn parse_when(s: &str, now: DateTime<Utc>) -> Result<DateTime<Utc>, String> {
+    if let Ok(t) = DateTime::parse_from_rfc3339(s) {
+        return Ok(t.with_timezone(&Utc));
+    }
+    if let Ok(d) = chrono::NaiveDate::parse_from_str(s, "%Y-%m-%d") {
+        return Ok(d.and_hms_opt(0, 0, 0).expect("midnight").and_utc());
+    }
+    let unit_at = s.len().saturating_sub(1);
+    if let (Ok(n), Some(unit)) = (s[..unit_at].parse::<i64>(), s.get(unit_at..)) {
+        let secs = match unit {
+            "s" => Some(1),
+            "m" => Some(60),
+            "h" => Some(3600),
+            "d" => Some(86_400),
+            "w" => Some(604_800),
+            _ => None,
+        };
+        if let Some(secs) = secs {
+            if n >= 0 {
+                if let Some(t) = n.checked_mul(secs).and_then(|x| now.checked_sub_signed(chrono::TimeDelta::try_seconds(x)?)) {
+                    return Ok(t);
+                }
+            }
+        }
+    }
+    Err(format!("{s:?} is not a time: use RFC 3339 (2026-12-01T08:00:00Z), a date (2026-12-01) or a span back from now (30m, 12h, 7d, 2w)"))
+}
+
+/// Failures of the `audit.jsonl` file.
+#[derive(Debug, thiserror::Error)]
+pub enum MirrorError {
+    #[error("{path}:{line}: not an audit entry ({reason}); run `tidegate verify`")]
+    BadLine { path: PathBuf, line: usize, reason: String },
+    #[error("{path}: {source}")]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+}
+
+/// The append-only `audit.jsonl` beside the store.
+pub struct Mirror {
+    path: PathBuf,
+}
+
+impl Mirror {
+    pub fn new(path: PathBuf) -> Mirror {
+        Mirror { path }
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    fn io(&self, source: std::io::Error) -> MirrorError {
+        MirrorError::Io { path: self.path.clone(), source }
+    }
+
+    /// The complete lines of the file (a missing file has none). A trailing
+    /// piece without a newline, left by a crash mid-append, is not a line.
+    pub fn read_lines(&self) -> Result<Vec<Vec<u8>>, MirrorError> {
+        let bytes = match fs::read(&self.path) {
+            Ok(b) => b,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
+            Err(e) => return Err(self.io(e)),
+        };
+        let complete = bytes.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
+        Ok(bytes[..complete].split(|&b| b == b'\n').filter(|l| !l.is_empty()).map(<[u8]>::to_vec).collect())
+    }
+
+    /// Every entry in the file, parsed (without checking the chain; that is
+    /// `verify`'s job). A line that is not an entry is an error naming it.
+    pub fn entries(&self) -> Result<Vec<Entry>, MirrorError> {
+        self.read_lines()?
+            .iter()
+            .enumerate()
+            .map(|(i, l)| {
+                Entry::from_line(l).map_err(|e| MirrorError::BadLine { path: self.path.clone(), line: i + 1, reason: e.to_string() })
+            })
+            .collect()
+    }
+
+    /// Appends lines and fsyncs.
+    pub fn append(&self, lines: &[&[u8]]) -> Result<(), MirrorError> {
+        if lines.is_empty() {
+            return Ok(());
+        }
+        let mut buf = Vec::new();
+        for l in lines {
+            buf.extend_from_slice(l);
+            buf.push(b'\n');
+        }
+        let mut f = fs::OpenOptions::new().create(true).append(true).open(&self.path).map_err(|e| self.io(e))?;
+        f.write_all(&buf).map_err(|e| self.io(e))?;
+        f.sync_all().map_err(|e| self.io(e))?;
+        Ok(())
+    }
+
+    /// Brings the file level with the store: drops a torn last line and
+    /// appends every stored entry the file lacks. Returns how many were
+    /// appended. Entries already in the file are never rewritten.
+    pub fn catch_up(&self, stored: &[(AuditSeq, Vec<u8>)]) -> Result<usize, MirrorError> {
+        let bytes = match fs::read(&self.path) {
+            Ok(b) => b,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Vec::new(),
+            Err(e) => return Err(self.io(e)),
+        };
+        let complete = bytes.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
+        if complete < bytes.len() {
+            let f = fs::OpenOptions::new().write(true).open(&self.path).map_err(|e| self.io(e))?;
+            f.set_len(complete as u64).map_err(|e| self.io(e))?;
+            f.sync_all().map_err(|e| self.io(e))?;
+        }
+        let have = bytes[..complete].split(|&b| b == b'\n').filter(|l| !l.is_empty()).count();
+        let missing: Vec<&[u8]> = stored.iter().skip(have).map(|(_, l)| l.as_slice()).collect();
+        self.append(&missing)?;
+        Ok(missing.len())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn t(s: &str) -> DateTime<Utc> {
+        DateTime::parse_from_rfc3339(s).unwrap().with_timezone(&Utc)
+    }
+
+    fn chain(n: u64) -> Vec<Entry> {
+        let mut prev = GENESIS.to_string();
+        (1..=n)
+            .map(|i| {
+                let e = Entry::seal(
+                    AuditSeq(i),
+                    t("2026-12-01T00:00:00Z") + chrono::TimeDelta::hours(i as i64),
+                    "ana",
+                    Event::BatchDuplicate { file: format!("f{i}.csv"), hash: "ab".into(), duplicate_of: BatchId(i) },
+                    &prev,
+                );
+                prev = e.hash.clone();
+                e
+            })
+            .collect()
+    }
+
+    fn lines(entries: &[Entry]) -> Vec<Vec<u8>> {
+        entries.iter().map(|e| e.line().into_bytes()).collect()
+    }
+
+    fn check(lines: &[Vec<u8>]) -> Result<Vec<Entry>, ChainProblem> {
+        verify_chain(lines.iter().map(Vec::as_slice))
+    }
+
+    #[test]
+    fn intact_chain_verifies_and_round_trips() {
+        let entries = chain(5);
+        let parsed = check(&lines(&entries)).unwrap();
+        assert_eq!(parsed, entries);
+        assert_eq!(entries[0].prev, GENESIS);
+        assert_eq!(entries[1].prev, entries[0].hash);
+    }
+
+    #[test]
+    fn edit_is_found_at_the_edited_entry() {
+        let mut l = lines(&chain(5));
+        l[2] = String::from_utf8(l[2].clone()).unwrap().replace("f3.csv", "g3.csv").into_bytes();
+        assert_eq!(check(&l).unwrap_err().seq, 3);
+    }
+
+    #[test]
+    fn delete_insert_and_reorder_are_found() {
+        let base = lines(&chain(5));
+        let mut deleted = base.clone();
+        deleted.remove(1);
+        assert_eq!(check(&deleted).unwrap_err().seq, 2);
+        let mut reordered = base.clone();
+        reordered.swap(2, 3);
+        assert_eq!(check(&reordered).unwrap_err().seq, 3);
+        let mut inserted = base.clone();
+        inserted.insert(4, base[1].clone());
+        assert_eq!(check(&inserted).unwrap_err().seq, 5);
+        // Truncating the tail leaves a valid (shorter) chain: the store copy
+        // is what catches that, not the chain.
+        assert!(check(&base[..3]).is_ok());
+    }
+
+    #[test]
+    fn rehashed_edit_still_breaks_the_next_link() {
+        let mut entries = chain(4);
+        entries[1].user = "mallory".into();
+        let v = serde_json::to_value(&entries[1]).unwrap();
+        entries[1].hash = content_hash(&v);
+        assert_eq!(check(&lines(&entries)).unwrap_err().seq, 3);
+    }
+
+    #[test]
+    fn filters() {
+        let entries = chain(6);
+        let f = Filter { since: Some(t("2026-12-01T02:00:00Z")), until: Some(t("2026-12-01T05:00:00Z")), ..Filter::default() };
+        let seqs: Vec<u64> = f.apply(&entries).iter().map(|e| e.seq.0).collect();
+        assert_eq!(seqs, vec![2, 3, 4, 5]);
+        let f = Filter { limit: Some(2), ..Filter::default() };
+        assert_eq!(f.apply(&entries).iter().map(|e| e.seq.0).collect::<Vec<_>>(), vec![5, 6]);
+        let f = Filter { kinds: vec!["batch-accepted".into()], ..Filter::default() };
+        assert!(f.apply(&entries).is_empty());
+        let f = Filter { batch: Some(BatchId(4)), ..Filter::default() };
+        assert_eq!(f.apply(&entries).len(), 1);
+    }
+
+    #[test]
+    fn when_parsing() {
+        let now = t("2026-12-08T12:00:00Z");
+        assert_eq!(parse_when("7d", now).unwrap(), t("2026-12-01T12:00:00Z"));
+        assert_eq!(parse_when("90m", now).unwrap(), t("2026-12-08T10:30:00Z"));
+        assert_eq!(parse_when("2026-12-01", now).unwrap(), t("2026-12-01T00:00:00Z"));
+        assert_eq!(parse_when("2026-12-01T01:00:00+01:00", now).unwrap(), t("2026-12-01T00:00:00Z"));
+        assert!(parse_when("yesterday", now).is_err());
+        assert!(parse_when("-3d", now).is_err());
+        assert!(parse_when("d", now).is_err());
+    }
+
+    #[test]
+    fn mirror_catches_up_after_torn_append() {
+        let dir = tempfile::tempdir().unwrap();
+        let m = Mirror::new(dir.path().join("audit.jsonl"));
+        let entries = chain(4);
+        let stored: Vec<(AuditSeq, Vec<u8>)> = entries.iter().map(|e| (e.seq, e.line().into_bytes())).collect();
+        m.append(&[&stored[0].1]).unwrap();
+        // A crash in the middle of writing entry 2.
+        let mut f = fs::OpenOptions::new().append(true).open(m.path()).unwrap();
+        f.write_all(&stored[1].1[..10]).unwrap();
+        assert_eq!(m.read_lines().unwrap().len(), 1);
+        assert_eq!(m.catch_up(&stored).unwrap(), 3);
+        let l = m.read_lines().unwrap();
+        assert_eq!(check(&l).unwrap().len(), 4);
+        assert_eq!(m.catch_up(&stored).unwrap(), 0);
+    }
+}

@@ -1,0 +1,72 @@
+//! `tidegate ingest FILE…`: the daemon's intake path, run now on named files.
+//! Each file is taken whole or refused whole; the files themselves are left
+//! where they are (their bytes are archived in the state dir).
+
+use std::path::PathBuf;
+
+use super::{Cli, Exit, emit, shown};
+use crate::intake::{self, Outcome, Source};
+use crate::state::{self, StateDir};
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// CSV files to add, in order.
+    #[arg(required = true, value_name = "FILE")]
+    files: Vec<PathBuf>,
+}
+
+pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
+    let config = super::load_config(cli, state)?;
+    let (mut owner, recovery) = state::open(state, &config)?;
+    if recovery != state::Recovery::default() {
+        tracing::info!("recovered after an interrupted run: {recovery:?}");
+    }
+    let user = state::current_user();
+    let mut exit = Exit::Ok;
+    let mut out = String::new();
+    for file in &args.files {
+        let outcome = intake::take_file(&mut owner, file, Source::Keep, &user, chrono::Utc::now())?;
+        let shown_file = file.display().to_string();
+        let (status, detail, json) = match &outcome {
+            Outcome::Accepted { batch, entry } => (
+                "accepted",
+                format!("batch {} with {} rows ({} train, {} holdout)", batch.id, batch.rows(), batch.train_rows, batch.holdout_rows),
+                serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch.id, "rows": batch.rows(), "train_rows": batch.train_rows, "holdout_rows": batch.holdout_rows, "audit_seq": entry.seq}),
+            ),
+            Outcome::Duplicate { of, entry } => (
+                "duplicate",
+                format!("duplicate of batch {of}; nothing stored"),
+                serde_json::json!({"file": shown_file, "status": "duplicate", "duplicate_of": of, "audit_seq": entry.seq}),
+            ),
+            Outcome::Completed { batch } => (
+                "accepted",
+                format!("already stored as batch {batch} by an interrupted run; archiving finished"),
+                serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch, "recovered": true}),
+            ),
+            Outcome::Rejected { refusal, kept_as, entry } => {
+                exit = Exit::BadData;
+                let why = kept_as.as_ref().map(|p| format!("{}.why.json", shown(state, p)));
+                let mut d = format!("refused, nothing stored ({} problem{}): {}", refusal.total, if refusal.total == 1 { "" } else { "s" }, refusal.first());
+                if let Some(w) = &why {
+                    d.push_str(&format!("; all problems in {w}"));
+                }
+                (
+                    "rejected",
+                    d,
+                    serde_json::json!({"file": shown_file, "status": "rejected", "problems_total": refusal.total, "problems": refusal.problems, "why": why, "audit_seq": entry.seq}),
+                )
+            }
+            Outcome::NotReady { reason } => {
+                exit = Exit::Failure;
+                ("not-ready", reason.clone(), serde_json::json!({"file": shown_file, "status": "not-ready", "reason": reason}))
+            }
+        };
+        if cli.json {
+            out.push_str(&format!("{json}\n"));
+        } else {
+            out.push_str(&format!("{shown_file}: {status}: {detail}\n"));
+        }
+    }
+    emit(&out)?;
+    Ok(exit)
+}

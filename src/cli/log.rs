@@ -1,0 +1,63 @@
+//! `tidegate log`: query the audit log. Reads `audit.jsonl` only, so it
+//! works while another process owns the state dir.
+
+use super::{Cli, Exit, emit, table};
+use crate::audit::{self, Event, Filter};
+use crate::ids::BatchId;
+use crate::state::StateDir;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Only entries at or after this time: RFC 3339, a date, or a span back (7d, 12h).
+    #[arg(long, value_name = "WHEN")]
+    since: Option<String>,
+    /// Only entries at or before this time (same forms as --since).
+    #[arg(long, value_name = "WHEN")]
+    until: Option<String>,
+    /// Only these kinds, comma-separated (e.g. batch-accepted,batch-rejected).
+    #[arg(long, value_name = "KINDS", value_delimiter = ',')]
+    kind: Vec<String>,
+    /// Only entries about this batch.
+    #[arg(long, value_name = "ID")]
+    batch: Option<BatchId>,
+    /// Only the newest N matching entries.
+    #[arg(long, value_name = "N")]
+    limit: Option<usize>,
+}
+
+pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
+    let now = chrono::Utc::now();
+    let when = |s: &Option<String>| s.as_deref().map(|s| audit::parse_when(s, now)).transpose();
+    let (since, until) = match (when(&args.since), when(&args.until)) {
+        (Ok(a), Ok(b)) => (a, b),
+        (Err(e), _) | (_, Err(e)) => {
+            eprintln!("error: {e}");
+            return Ok(Exit::Usage);
+        }
+    };
+    if let Some(bad) = args.kind.iter().find(|k| !Event::KINDS.contains(&k.as_str())) {
+        eprintln!("error: unknown kind {bad:?}; known kinds: {}", Event::KINDS.join(", "));
+        return Ok(Exit::Usage);
+    }
+    if !state.audit().exists() {
+        return Err(crate::store::StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
+    }
+    let entries = state.mirror().entries()?;
+    let filter = Filter { since, until, kinds: args.kind.clone(), batch: args.batch, limit: args.limit };
+    let shown = filter.apply(&entries);
+    let mut out = String::new();
+    if cli.json {
+        for e in shown {
+            out.push_str(&e.line());
+            out.push('\n');
+        }
+    } else {
+        let rows: Vec<Vec<String>> = shown
+            .iter()
+            .map(|e| vec![e.seq.0.to_string(), e.time.clone(), e.user.clone(), e.event.kind().to_string(), e.event.summary()])
+            .collect();
+        out = table(&["seq", "time (UTC)", "user", "kind", "what"], &rows);
+    }
+    emit(&out)?;
+    Ok(Exit::Ok)
+}

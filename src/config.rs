@@ -1,0 +1,635 @@
+//! `tidegate.toml`: the typed configuration, its defaults, and validation
+//! whose errors point at the line and column and say what is allowed.
+//!
+//! Only this module knows the file format (serde + toml). Every section
+//! except `[data]` has defaults, so a minimal config names the columns and
+//! nothing else.
+
+use std::fmt;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+use toml::Spanned;
+
+/// The whole configuration file.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Config {
+    pub data: DataConfig,
+    #[serde(default)]
+    pub model: ModelConfig,
+    #[serde(default)]
+    pub training: TrainingConfig,
+    #[serde(default)]
+    pub gate: GateConfig,
+    #[serde(default)]
+    pub daemon: DaemonConfig,
+}
+
+/// What the rows look like and how they are split.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct DataConfig {
+    /// Name of the column the model predicts.
+    pub target: Spanned<String>,
+    pub task: Task,
+    pub columns: Vec<ColumnConfig>,
+    /// Share of rows kept aside for the gate, decided by a hash of each row.
+    #[serde(default = "default_holdout_fraction")]
+    pub holdout_fraction: Spanned<f64>,
+    /// Files larger than this are refused before reading.
+    #[serde(default = "default_max_file_bytes")]
+    pub max_file_bytes: u64,
+    /// Fields longer than this (in bytes) are refused.
+    #[serde(default = "default_max_field_bytes")]
+    pub max_field_bytes: usize,
+}
+
+/// The learning task.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Task {
+    Regression,
+    Classification,
+}
+
+impl fmt::Display for Task {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Task::Regression => "regression",
+            Task::Classification => "classification",
+        })
+    }
+}
+
+/// One CSV column.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct ColumnConfig {
+    pub name: Spanned<String>,
+    pub kind: ColumnKind,
+    /// Smallest allowed value (numbers only).
+    #[serde(default)]
+    pub min: Option<Spanned<f64>>,
+    /// Largest allowed value (numbers only).
+    #[serde(default)]
+    pub max: Option<Spanned<f64>>,
+    /// When false an empty field is accepted and stored as missing.
+    #[serde(default = "default_true")]
+    pub required: bool,
+}
+
+/// How a column's text is read.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ColumnKind {
+    Number,
+    Category,
+}
+
+impl fmt::Display for ColumnKind {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            ColumnKind::Number => "number",
+            ColumnKind::Category => "category",
+        })
+    }
+}
+
+/// The network's shape.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct ModelConfig {
+    /// Hidden layer widths; an empty list is a linear model.
+    pub hidden: Vec<usize>,
+    pub activation: Activation,
+    /// Dropout probability on hidden layers during training.
+    pub dropout: f64,
+    /// L2 penalty weight (sum of squared weights).
+    pub l2: f64,
+    /// L1 penalty weight (sum of absolute weights).
+    pub l1: f64,
+    /// Multiplier on the default initial weight scale.
+    pub init_scale: f64,
+}
+
+impl Default for ModelConfig {
+    fn default() -> Self {
+        ModelConfig {
+            hidden: vec![64, 64],
+            activation: Activation::Relu,
+            dropout: 0.0,
+            l2: 0.0,
+            l1: 0.0,
+            init_scale: 1.0,
+        }
+    }
+}
+
+/// Hidden-layer activation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Activation {
+    Relu,
+    Tanh,
+    Sigmoid,
+}
+
+/// CPU backend that runs the tensors.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Backend {
+    Flex,
+    Ndarray,
+}
+
+/// Budgets and optimiser settings for cold and warm training.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct TrainingConfig {
+    /// Backend used for training.
+    pub backend: Backend,
+    /// Backend used for batch prediction.
+    pub predict_backend: Backend,
+    pub batch_size: usize,
+    pub learning_rate: f64,
+    /// Learning rate for warm runs; the cold rate when unset.
+    pub warm_learning_rate: Option<f64>,
+    pub cold_epochs: usize,
+    pub warm_epochs: usize,
+    /// Wall-clock budget of one training run.
+    pub max_seconds: f64,
+    /// Epochs without validation improvement before stopping.
+    pub patience: usize,
+    /// Share of training rows used for early stopping.
+    pub validation_fraction: f64,
+    pub seed: u64,
+    /// Old rows replayed per new row in a warm run.
+    pub replay_ratio: f64,
+    /// Shrink-and-perturb: θ ← shrink·θ + perturb·θ_fresh (1.0 and 0.0 turn it off).
+    pub shrink: f64,
+    pub perturb: f64,
+}
+
+impl Default for TrainingConfig {
+    fn default() -> Self {
+        TrainingConfig {
+            backend: Backend::Flex,
+            predict_backend: Backend::Ndarray,
+            batch_size: 256,
+            learning_rate: 1e-3,
+            warm_learning_rate: None,
+            cold_epochs: 100,
+            warm_epochs: 10,
+            max_seconds: 600.0,
+            patience: 8,
+            validation_fraction: 0.1,
+            seed: 42,
+            replay_ratio: 1.0,
+            shrink: 1.0,
+            perturb: 0.0,
+        }
+    }
+}
+
+/// When a candidate may replace the serving model.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct GateConfig {
+    /// Smallest relative improvement in mean holdout loss that counts.
+    pub min_improvement: f64,
+    /// Significance level of the one-sided paired test.
+    pub alpha: f64,
+    /// No decision to promote is made on fewer holdout rows.
+    pub min_holdout_rows: usize,
+    /// Winning candidates wait for `approve` instead of serving at once.
+    pub require_approval: bool,
+    /// Train a cold candidate every this many cycles (0 = only on request).
+    pub cold_every: usize,
+}
+
+impl Default for GateConfig {
+    fn default() -> Self {
+        GateConfig {
+            min_improvement: 0.01,
+            alpha: 0.05,
+            min_holdout_rows: 200,
+            require_approval: false,
+            cold_every: 7,
+        }
+    }
+}
+
+/// The watcher's settings.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct DaemonConfig {
+    /// Inbox folder; `<state>/inbox` when unset.
+    pub inbox: Option<PathBuf>,
+    /// Seconds a file written in place must be unchanged before it is taken.
+    pub settle_seconds: f64,
+    /// Accepted-but-untrained rows that start a retrain cycle.
+    pub min_new_rows: usize,
+    /// Optional daily training time, "HH:MM" local time.
+    pub train_at: Option<String>,
+    /// Seconds between full inbox listings, whatever the watcher reports.
+    pub rescan_seconds: f64,
+}
+
+impl Default for DaemonConfig {
+    fn default() -> Self {
+        DaemonConfig {
+            inbox: None,
+            settle_seconds: 5.0,
+            min_new_rows: 1000,
+            train_at: None,
+            rescan_seconds: 60.0,
+        }
+    }
+}
+
+fn default_holdout_fraction() -> Spanned<f64> {
+    Spanned::new(0..0, 0.2)
+}
+fn default_max_file_bytes() -> u64 {
+    256 * 1024 * 1024
+}
+fn default_max_field_bytes() -> usize {
+    1024
+}
+fn default_true() -> bool {
+    true
+}
+
+/// A config that could not be read or does not make sense.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read config {path}: {source}")]
+    Read {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("{path}:{line}:{column}: {message}")]
+    Invalid {
+        path: PathBuf,
+        line: usize,
+        column: usize,
+        message: String,
+    },
+}
+
+impl Config {
+    /// Reads and validates a config file.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Config::parse(&text, path)
+    }
+
+    /// Parses and validates config text; `path` is only used in messages.
+    pub fn parse(text: &str, path: &Path) -> Result<Config, ConfigError> {
+        let config: Config = toml::from_str(text).map_err(|e| {
+            let (line, column) = e
+                .span()
+                .map(|s| line_col(text, s.start))
+                .unwrap_or((1, 1));
+            ConfigError::Invalid {
+                path: path.to_path_buf(),
+                line,
+                column,
+                message: e.message().trim().to_string(),
+            }
+        })?;
+        config.validate(text, path)?;
+        Ok(config)
+    }
+
+    fn validate(&self, text: &str, path: &Path) -> Result<(), ConfigError> {
+        let fail = |span: Range<usize>, message: String| {
+            let (line, column) = line_col(text, span.start);
+            Err(ConfigError::Invalid {
+                path: path.to_path_buf(),
+                line,
+                column,
+                message,
+            })
+        };
+        let data = &self.data;
+        if data.columns.is_empty() {
+            return fail(
+                data.target.span(),
+                "[data] has no columns: add [[data.columns]] tables with name and kind".into(),
+            );
+        }
+        let mut seen = std::collections::HashSet::new();
+        for col in &data.columns {
+            let name = col.name.get_ref();
+            if name.is_empty() || name.trim() != name || name.chars().any(char::is_control) {
+                return fail(
+                    col.name.span(),
+                    format!("column name {name:?} must be non-empty, without surrounding spaces or control characters"),
+                );
+            }
+            if !seen.insert(name.as_str()) {
+                return fail(col.name.span(), format!("column {name:?} is listed twice; each column name must be unique"));
+            }
+            if col.kind == ColumnKind::Category {
+                for bound in [&col.min, &col.max].into_iter().flatten() {
+                    return fail(bound.span(), format!("column {name:?} is a category; min and max apply to number columns only"));
+                }
+            }
+            for bound in [&col.min, &col.max].into_iter().flatten() {
+                if !bound.get_ref().is_finite() {
+                    return fail(bound.span(), format!("bound of column {name:?} must be a finite number"));
+                }
+            }
+            if let (Some(lo), Some(hi)) = (&col.min, &col.max) {
+                if lo.get_ref() > hi.get_ref() {
+                    return fail(lo.span(), format!("column {name:?} has min {} above max {}", lo.get_ref(), hi.get_ref()));
+                }
+            }
+        }
+        let target = data.target.get_ref();
+        let Some(target_col) = data.columns.iter().find(|c| c.name.get_ref() == target) else {
+            let names: Vec<&str> = data.columns.iter().map(|c| c.name.get_ref().as_str()).collect();
+            return fail(
+                data.target.span(),
+                format!("target {target:?} is not one of the columns; allowed: {}", names.join(", ")),
+            );
+        };
+        let wanted = match data.task {
+            Task::Regression => ColumnKind::Number,
+            Task::Classification => ColumnKind::Category,
+        };
+        if target_col.kind != wanted {
+            return fail(
+                data.target.span(),
+                format!("task {} needs a target column of kind {wanted}, but {target:?} is {}", data.task, target_col.kind),
+            );
+        }
+        if !target_col.required {
+            return fail(target_col.name.span(), format!("target column {target:?} must be required"));
+        }
+        if data.columns.len() < 2 {
+            return fail(data.target.span(), "add at least one input column besides the target".into());
+        }
+        let hf = *data.holdout_fraction.get_ref();
+        if !(hf > 0.0 && hf < 1.0) {
+            return fail(
+                data.holdout_fraction.span(),
+                format!("holdout_fraction {hf} must be between 0 and 1 (exclusive); 0.2 is usual"),
+            );
+        }
+        let whole = |key: &str| key_span(text, key);
+        if data.max_field_bytes == 0 {
+            return fail(whole("max_field_bytes"), "max_field_bytes must be at least 1".into());
+        }
+        if data.max_file_bytes == 0 {
+            return fail(whole("max_file_bytes"), "max_file_bytes must be at least 1".into());
+        }
+        let t = &self.training;
+        let checks: [(&str, bool, &str); 10] = [
+            ("batch_size", t.batch_size >= 1, "batch_size must be at least 1"),
+            ("learning_rate", t.learning_rate > 0.0 && t.learning_rate.is_finite(), "learning_rate must be a positive number"),
+            ("warm_learning_rate", t.warm_learning_rate.is_none_or(|r| r > 0.0 && r.is_finite()), "warm_learning_rate must be a positive number"),
+            ("max_seconds", t.max_seconds > 0.0 && t.max_seconds.is_finite(), "max_seconds must be a positive number"),
+            ("validation_fraction", t.validation_fraction > 0.0 && t.validation_fraction < 1.0, "validation_fraction must be between 0 and 1 (exclusive)"),
+            ("replay_ratio", t.replay_ratio >= 0.0 && t.replay_ratio.is_finite(), "replay_ratio must be 0 or more"),
+            ("shrink", t.shrink > 0.0 && t.shrink <= 1.0, "shrink must be in (0, 1]; 1 turns shrink-and-perturb off"),
+            ("perturb", t.perturb >= 0.0 && t.perturb <= 1.0, "perturb must be in [0, 1]; 0 turns shrink-and-perturb off"),
+            ("cold_epochs", t.cold_epochs >= 1, "cold_epochs must be at least 1"),
+            ("warm_epochs", t.warm_epochs >= 1, "warm_epochs must be at least 1"),
+        ];
+        for (key, ok, msg) in checks {
+            if !ok {
+                return fail(whole(key), msg.into());
+            }
+        }
+        let m = &self.model;
+        let checks: [(&str, bool, &str); 5] = [
+            ("hidden", m.hidden.iter().all(|&w| (1..=65536).contains(&w)), "hidden layer widths must be between 1 and 65536"),
+            ("dropout", (0.0..1.0).contains(&m.dropout), "dropout must be in [0, 1)"),
+            ("l2", m.l2 >= 0.0 && m.l2.is_finite(), "l2 must be 0 or more"),
+            ("l1", m.l1 >= 0.0 && m.l1.is_finite(), "l1 must be 0 or more"),
+            ("init_scale", m.init_scale > 0.0 && m.init_scale.is_finite(), "init_scale must be a positive number"),
+        ];
+        for (key, ok, msg) in checks {
+            if !ok {
+                return fail(whole(key), msg.into());
+            }
+        }
+        let g = &self.gate;
+        let checks: [(&str, bool, &str); 2] = [
+            ("min_improvement", g.min_improvement >= 0.0 && g.min_improvement < 1.0, "min_improvement is relative: use a value in [0, 1), e.g. 0.01 for 1%"),
+            ("alpha", g.alpha > 0.0 && g.alpha < 1.0, "alpha must be between 0 and 1 (exclusive); 0.05 is usual"),
+        ];
+        for (key, ok, msg) in checks {
+            if !ok {
+                return fail(whole(key), msg.into());
+            }
+        }
+        let d = &self.daemon;
+        if !(d.settle_seconds >= 0.0 && d.settle_seconds.is_finite()) {
+            return fail(whole("settle_seconds"), "settle_seconds must be 0 or more".into());
+        }
+        if !(d.rescan_seconds >= 1.0 && d.rescan_seconds.is_finite()) {
+            return fail(whole("rescan_seconds"), "rescan_seconds must be at least 1".into());
+        }
+        if let Some(at) = &d.train_at {
+            if parse_hh_mm(at).is_none() {
+                return fail(whole("train_at"), format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"));
+            }
+        }
+        Ok(())
+    }
+
+    /// A stable fingerprint of what the stored rows mean: column names,
+    /// kinds, bounds, target, task and holdout fraction. A change here means
+    /// the store and the config no longer agree.
+    pub fn schema_fingerprint(&self) -> String {
+        let mut h = blake3::Hasher::new();
+        h.update(b"tidegate-schema-v1\0");
+        h.update(self.data.target.get_ref().as_bytes());
+        h.update(b"\0");
+        h.update(self.data.task.to_string().as_bytes());
+        h.update(&self.data.holdout_fraction.get_ref().to_le_bytes());
+        for c in &self.data.columns {
+            h.update(b"\0col\0");
+            h.update(c.name.get_ref().as_bytes());
+            h.update(b"\0");
+            h.update(c.kind.to_string().as_bytes());
+            h.update(&[u8::from(c.required)]);
+            for b in [&c.min, &c.max] {
+                match b {
+                    Some(v) => {
+                        h.update(&[1]);
+                        h.update(&v.get_ref().to_le_bytes());
+                    }
+                    None => {
+                        h.update(&[0]);
+                    }
+                }
+            }
+        }
+        h.finalize().to_hex().to_string()
+    }
+}
+
+/// Parses "HH:MM" (24-hour) into minutes after midnight.
+pub fn parse_hh_mm(s: &str) -> Option<u32> {
+    let (h, m) = s.split_once(':')?;
+    if h.len() != 2 || m.len() != 2 {
+        return None;
+    }
+    let h: u32 = h.parse().ok()?;
+    let m: u32 = m.parse().ok()?;
+    (h < 24 && m < 60).then_some(h * 60 + m)
+}
+
+/// 1-based line and column of a byte offset.
+fn line_col(text: &str, offset: usize) -> (usize, usize) {
+    let offset = offset.min(text.len());
+    let before = &text[..offset];
+    let line = before.matches('\n').count() + 1;
+    let col = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    (line, col)
+}
+
+/// Byte span of the first `key =` at the start of a line, for messages about
+/// plain (unspanned) values; the start of the file when the key is absent.
+fn key_span(text: &str, key: &str) -> Range<usize> {
+    let mut offset = 0;
+    for line in text.split_inclusive('\n') {
+        let trimmed = line.trim_start();
+        if let Some(rest) = trimmed.strip_prefix(key) {
+            if rest.trim_start().starts_with('=') {
+                let start = offset + (line.len() - trimmed.len());
+                return start..start + key.len();
+            }
+        }
+        offset += line.len();
+    }
+    0..0
+}
+
+/// A commented config template for `tidegate init --template`.
+pub const TEMPLATE: &str = include_str!("config_template.toml");
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(text: &str) -> Result<Config, ConfigError> {
+        Config::parse(text, Path::new("t.toml"))
+    }
+
+    const MINIMAL: &str = r#"
+[data]
+target = "y"
+task = "regression"
+
+[[data.columns]]
+name = "x"
+kind = "number"
+
+[[data.columns]]
+name = "y"
+kind = "number"
+"#;
+
+    fn err_at(text: &str) -> (usize, usize, String) {
+        match parse(text) {
+            Err(ConfigError::Invalid { line, column, message, .. }) => (line, column, message),
+            other => panic!("expected an invalid-config error, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn minimal_config_gets_defaults() {
+        let c = parse(MINIMAL).unwrap();
+        assert_eq!(c.model.hidden, vec![64, 64]);
+        assert_eq!(*c.data.holdout_fraction.get_ref(), 0.2);
+        assert_eq!(c.training.backend, Backend::Flex);
+        assert!(!c.gate.require_approval);
+    }
+
+    #[test]
+    fn template_is_valid() {
+        let c = parse(TEMPLATE).unwrap();
+        assert_eq!(c.data.target.get_ref(), "loaves_sold");
+    }
+
+    #[test]
+    fn unknown_key_points_at_its_line() {
+        let text = MINIMAL.replace("task = \"regression\"", "task = \"regression\"\ntargte = \"y\"");
+        let (line, col, msg) = err_at(&text);
+        assert_eq!((line, col), (5, 1), "{msg}");
+        assert!(msg.contains("targte"), "{msg}");
+    }
+
+    #[test]
+    fn bad_enum_value_says_what_is_allowed() {
+        let text = MINIMAL.replace("kind = \"number\"\n\n[[data.columns]]\nname = \"y\"", "kind = \"text\"\n\n[[data.columns]]\nname = \"y\"");
+        let (line, _, msg) = err_at(&text);
+        assert_eq!(line, 8);
+        assert!(msg.contains("number") && msg.contains("category"), "{msg}");
+    }
+
+    #[test]
+    fn target_must_be_a_column() {
+        let text = MINIMAL.replace("target = \"y\"", "target = \"z\"");
+        let (line, col, msg) = err_at(&text);
+        assert_eq!((line, col), (3, 10));
+        assert!(msg.contains("allowed: x, y"), "{msg}");
+    }
+
+    #[test]
+    fn duplicate_column_is_refused() {
+        let text = MINIMAL.replace("name = \"x\"", "name = \"y\"");
+        let (line, _, msg) = err_at(&text);
+        assert_eq!(line, 11);
+        assert!(msg.contains("twice"), "{msg}");
+    }
+
+    #[test]
+    fn classification_needs_category_target() {
+        let text = MINIMAL.replace("task = \"regression\"", "task = \"classification\"");
+        let (_, _, msg) = err_at(&text);
+        assert!(msg.contains("kind category"), "{msg}");
+    }
+
+    #[test]
+    fn plain_values_are_located_by_key() {
+        let text = format!("{MINIMAL}\n[training]\nbatch_size = 0\n");
+        let (line, col, msg) = err_at(&text);
+        assert_eq!((line, col), (16, 1));
+        assert!(msg.contains("batch_size"), "{msg}");
+    }
+
+    #[test]
+    fn holdout_fraction_bounds() {
+        let text = MINIMAL.replace("task = \"regression\"", "task = \"regression\"\nholdout_fraction = 1.5");
+        let (line, col, _) = err_at(&text);
+        assert_eq!((line, col), (5, 20));
+    }
+
+    #[test]
+    fn fingerprint_changes_with_schema_only() {
+        let a = parse(MINIMAL).unwrap();
+        let b = parse(&format!("{MINIMAL}\n[training]\nseed = 7\n")).unwrap();
+        assert_eq!(a.schema_fingerprint(), b.schema_fingerprint());
+        let c = parse(&MINIMAL.replace("name = \"x\"", "name = \"x2\"")).unwrap();
+        assert_ne!(a.schema_fingerprint(), c.schema_fingerprint());
+    }
+
+    #[test]
+    fn hh_mm() {
+        assert_eq!(parse_hh_mm("02:30"), Some(150));
+        assert_eq!(parse_hh_mm("24:00"), None);
+        assert_eq!(parse_hh_mm("2:30"), None);
+    }
+}

@@ -1,0 +1,20 @@
+//! tidegate: keeps a neural-network model on growing tabular data up to date.
+//!
+//! The data path runs one way (see DEVELOPERS.md): `ingest` turns a CSV file
+//! into an encoded batch, `store` commits it with its audit entry in one
+//! transaction, `audit` mirrors the hash-chained log to `audit.jsonl`.
+//! The `cli` module holds one file per command; `main.rs` only maps errors
+//! to exit codes.
+
+pub mod config;
+pub mod ids;
+pub mod schema;
+pub mod audit;
+pub mod fsutil;
+pub mod ingest;
+pub mod store;
+pub mod intake;
+pub mod state;
+pub mod cli;
+pub mod rng;
+pub mod demo;

@@ -1,0 +1,36 @@
+//! The `tidegate` binary: parse arguments, set up logging on stderr, run
+//! the command, map the outcome to an exit code.
+
+use std::process::ExitCode;
+
+use clap::Parser;
+use tidegate::cli::{self, Cli, Exit};
+
+fn main() -> ExitCode {
+    let parsed = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { Exit::Usage as u8 } else { 0 };
+            let _ = e.print();
+            return ExitCode::from(code);
+        }
+    };
+    let level = match (parsed.quiet, parsed.verbose) {
+        (true, _) => "error",
+        (false, 0) => "info",
+        (false, 1) => "debug",
+        (false, _) => "trace",
+    };
+    let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEGATE_LOG").unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("tidegate={level}")));
+    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_target(false).without_time().init();
+    match cli::run(&parsed) {
+        Ok(code) => ExitCode::from(code as u8),
+        Err(err) => {
+            let code = cli::exit_for(&err);
+            if code != Exit::Ok {
+                eprintln!("error: {err:#}");
+            }
+            ExitCode::from(code as u8)
+        }
+    }
+}

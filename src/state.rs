@@ -1,0 +1,229 @@
+//! The state directory: where each thing lives, the owner lock, creation,
+//! and the start-up recovery every owner runs before doing anything else.
+
+use std::fs;
+use std::io::{Read, Seek, Write};
+use std::os::unix::fs::{DirBuilderExt, MetadataExt};
+use std::path::{Path, PathBuf};
+
+use crate::audit::{Event, Mirror};
+use crate::config::Config;
+use crate::fsutil;
+use crate::schema::Schema;
+use crate::store::{Store, StoreError};
+
+/// Paths inside one state dir.
+#[derive(Debug, Clone)]
+pub struct StateDir {
+    root: PathBuf,
+}
+
+impl StateDir {
+    pub fn new(root: impl Into<PathBuf>) -> StateDir {
+        StateDir { root: root.into() }
+    }
+    pub fn root(&self) -> &Path {
+        &self.root
+    }
+    pub fn lock(&self) -> PathBuf {
+        self.root.join("LOCK")
+    }
+    pub fn store(&self) -> PathBuf {
+        self.root.join("store")
+    }
+    pub fn audit(&self) -> PathBuf {
+        self.root.join("audit.jsonl")
+    }
+    pub fn config(&self) -> PathBuf {
+        self.root.join("tidegate.toml")
+    }
+    pub fn inbox(&self) -> PathBuf {
+        self.root.join("inbox")
+    }
+    pub fn archive(&self) -> PathBuf {
+        self.root.join("archive")
+    }
+    pub fn rejected(&self) -> PathBuf {
+        self.root.join("rejected")
+    }
+    pub fn models(&self) -> PathBuf {
+        self.root.join("models")
+    }
+    pub fn serving(&self) -> PathBuf {
+        self.root.join("serving")
+    }
+    pub fn mirror(&self) -> Mirror {
+        Mirror::new(self.audit())
+    }
+    pub fn is_initialised(&self) -> bool {
+        self.config().is_file() && self.store().is_dir()
+    }
+}
+
+/// Failures of the state dir as a whole.
+#[derive(Debug, thiserror::Error)]
+pub enum StateError {
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error("{path}: {source}")]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("{path} already holds a tidegate state dir; pick another --state or remove it first")]
+    AlreadyInitialised { path: PathBuf },
+    #[error("{path} exists and is not empty; tidegate init needs a new or empty folder")]
+    NotEmpty { path: PathBuf },
+    #[error(transparent)]
+    Audit(#[from] crate::audit::MirrorError),
+}
+
+fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
+    move |source| StateError::Io { path: path.to_path_buf(), source }
+}
+
+/// The exclusive hold on a state dir; released when dropped (or when the
+/// process dies, however it dies).
+#[derive(Debug)]
+pub struct OwnerLock {
+    _file: fs::File,
+}
+
+/// Takes `LOCK` without waiting; a holder's PID is named in the error.
+pub fn take_lock(state: &StateDir) -> Result<OwnerLock, StateError> {
+    let path = state.lock();
+    let mut file = fs::OpenOptions::new().read(true).write(true).create(true).truncate(false).open(&path).map_err(io_at(&path))?;
+    match file.try_lock() {
+        Ok(()) => {}
+        Err(fs::TryLockError::WouldBlock) => {
+            let mut pid = String::new();
+            let _ = file.read_to_string(&mut pid);
+            let pid = pid.trim();
+            let pid = if pid.is_empty() { "unknown".to_string() } else { pid.to_string() };
+            return Err(StoreError::Locked { path: state.root().to_path_buf(), pid }.into());
+        }
+        Err(fs::TryLockError::Error(e)) => return Err(io_at(&path)(e)),
+    }
+    file.set_len(0).map_err(io_at(&path))?;
+    file.rewind().map_err(io_at(&path))?;
+    writeln!(file, "{}", std::process::id()).map_err(io_at(&path))?;
+    file.sync_all().map_err(io_at(&path))?;
+    Ok(OwnerLock { _file: file })
+}
+
+/// The process that owns a state dir: the lock, the open store and the
+/// audit mirror. Only one exists per state dir at a time.
+pub struct Owner {
+    pub state: StateDir,
+    pub config: Config,
+    pub store: Store,
+    pub mirror: Mirror,
+    _lock: OwnerLock,
+}
+
+/// Creates a state dir (mode 0700) from a config: folders, the config copy,
+/// the store and the first audit entry.
+pub fn create(state: &StateDir, config: &Config, config_text: &str, user: &str) -> Result<Owner, StateError> {
+    let root = state.root();
+    if state.config().exists() || state.store().exists() {
+        return Err(StateError::AlreadyInitialised { path: root.to_path_buf() });
+    }
+    if root.exists() {
+        // An empty folder, or one holding only a README, is fine.
+        let others = fs::read_dir(root)
+            .map_err(io_at(root))?
+            .filter_map(Result::ok)
+            .filter(|e| e.file_name() != "README.md")
+            .count();
+        if others > 0 {
+            return Err(StateError::NotEmpty { path: root.to_path_buf() });
+        }
+    }
+    let mut builder = fs::DirBuilder::new();
+    builder.recursive(true).mode(0o700);
+    builder.create(root).map_err(io_at(root))?;
+    use std::os::unix::fs::PermissionsExt;
+    fs::set_permissions(root, fs::Permissions::from_mode(0o700)).map_err(io_at(root))?;
+    let lock = take_lock(state)?;
+    for dir in [state.inbox(), state.inbox().join(".tmp"), state.archive(), state.rejected(), state.models()] {
+        builder.create(&dir).map_err(io_at(&dir))?;
+    }
+    let schema = Schema::from_config(config);
+    let fingerprint = config.schema_fingerprint();
+    let mut store = Store::create(&state.store(), &schema, &fingerprint)?;
+    let event = Event::Initialized {
+        schema_fingerprint: fingerprint,
+        config_hash: blake3::hash(config_text.as_bytes()).to_hex().to_string(),
+        columns: schema.columns.iter().map(|c| c.name.clone()).collect(),
+        target: schema.columns[schema.target].name.clone(),
+        task: schema.task.to_string(),
+    };
+    let entry = store.record(event, user, chrono::Utc::now())?;
+    let mirror = state.mirror();
+    mirror.append(&[entry.line().as_bytes()])?;
+    // The config copy is written last: its presence marks a finished init.
+    fsutil::write_atomic(&state.config(), config_text.as_bytes()).map_err(io_at(&state.config()))?;
+    fsutil::sync_dir(root).map_err(io_at(root))?;
+    Ok(Owner { state: state.clone(), config: config.clone(), store, mirror, _lock: lock })
+}
+
+/// What start-up recovery found and fixed.
+#[derive(Debug, Default, Clone, PartialEq)]
+pub struct Recovery {
+    pub stale_temps: usize,
+    pub audit_reappended: usize,
+    pub pending_archived: usize,
+    pub pending_dropped: usize,
+}
+
+/// Opens a state dir as its owner: takes the lock, opens the store, then
+/// repairs whatever a crash left (stale temps, unarchived accepted files,
+/// audit lines missing from `audit.jsonl`).
+pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), StateError> {
+    if !state.is_initialised() {
+        return Err(StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
+    }
+    let lock = take_lock(state)?;
+    let schema = Schema::from_config(config);
+    let store = Store::open(&state.store(), &schema, &config.schema_fingerprint())?;
+    let mirror = state.mirror();
+    let mut rec = Recovery::default();
+    for dir in [state.root().to_path_buf(), state.archive(), state.rejected(), state.models()] {
+        rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
+    }
+    let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
+    rec.pending_archived = archived;
+    rec.pending_dropped = dropped;
+    rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
+    Ok((Owner { state: state.clone(), config: config.clone(), store, mirror, _lock: lock }, rec))
+}
+
+/// The acting user: the login name, or the numeric uid when none is set.
+pub fn current_user() -> String {
+    for var in ["USER", "LOGNAME"] {
+        if let Ok(u) = std::env::var(var) {
+            if !u.is_empty() {
+                return u;
+            }
+        }
+    }
+    match fs::metadata("/proc/self") {
+        Ok(m) => format!("uid {}", m.uid()),
+        Err(_) => "unknown".into(),
+    }
+}
+
+/// The PID of the process holding `LOCK`, if any, read from /proc/locks
+/// so that asking never takes (and so never disturbs) the lock.
+pub fn owner_pid(state: &StateDir) -> Option<u32> {
+    let inode = fs::metadata(state.lock()).ok()?.ino();
+    let locks = fs::read_to_string("/proc/locks").ok()?;
+    locks.lines().find_map(|line| {
+        // "1: FLOCK  ADVISORY  WRITE 4242 fd:01:123456 0 EOF"
+        let fields: Vec<&str> = line.split_whitespace().collect();
+        let (pid, dev_ino) = (fields.get(4)?, fields.get(5)?);
+        let ino: u64 = dev_ino.rsplit(':').next()?.parse().ok()?;
+        if ino == inode && fields.get(1) == Some(&"FLOCK") { pid.parse().ok() } else { None }
+    })
+}

@@ -1,0 +1,438 @@
+//! The only user of sled: typed keys, trees, one transaction per change,
+//! durable flushes, and the read-back API for rows.
+//!
+//! Trees and their keys (integers big-endian, so scans come back in order):
+//!
+//! | tree      | key                                   | value                          |
+//! |-----------|---------------------------------------|--------------------------------|
+//! | `meta`    | name                                  | JSON or u64                    |
+//! | `batches` | `BatchId`                             | JSON `BatchRecord`             |
+//! | `hashes`  | blake3 of the file (32 bytes)         | `BatchId`                      |
+//! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s    |
+//! | `vocab`   | column `u32`, code `u32`              | the category text              |
+//! | `audit`   | `AuditSeq`                            | the entry's JSON line          |
+//!
+//! Every value stays under 64 KiB so sled never writes separate blob files.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree};
+use sled::{Transactional, Tree};
+
+use crate::audit::{self, Entry, Event};
+use crate::ids::{AuditSeq, BatchId};
+use crate::ingest::Batch;
+use crate::schema::{ColumnStats, RowMatrix, Schema, Vocab, Vocabularies};
+
+/// Largest number of cells in one chunk value (60 KiB).
+const CHUNK_CELLS: usize = 15 * 1024;
+
+/// Which side of the holdout split.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Split {
+    Train,
+    Holdout,
+}
+
+impl Split {
+    fn byte(self) -> u8 {
+        match self {
+            Split::Train => 0,
+            Split::Holdout => 1,
+        }
+    }
+}
+
+/// What the store knows about one accepted batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BatchRecord {
+    pub id: BatchId,
+    pub file: String,
+    pub hash: String,
+    pub accepted_at: String,
+    pub train_rows: u64,
+    pub holdout_rows: u64,
+    pub audit_seq: AuditSeq,
+    /// Number-column statistics of the batch's training rows.
+    pub train_stats: ColumnStats,
+}
+
+impl BatchRecord {
+    pub fn rows(&self) -> u64 {
+        self.train_rows + self.holdout_rows
+    }
+}
+
+/// Totals kept up to date in the same transaction as each batch.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Totals {
+    pub batches: u64,
+    pub train_rows: u64,
+    pub holdout_rows: u64,
+    /// Number-column statistics over all training rows.
+    pub train_stats: ColumnStats,
+}
+
+/// Store failures. Any of them means the process should stop: sled I/O
+/// errors and fsync failures are not retried.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("state dir {path} is in use by PID {pid}; stop that process or send the command to it")]
+    Locked { path: PathBuf, pid: String },
+    #[error("{path}: {source}")]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("store {path}: {source}")]
+    Sled {
+        path: PathBuf,
+        #[source]
+        source: sled::Error,
+    },
+    #[error("store {path} is damaged: {what}; run `tidegate verify` and restore from a backup")]
+    Corrupt { path: PathBuf, what: String },
+    #[error("store {path} was created for a different schema (fingerprint {stored}, config has {config}); put the old config back or run `tidegate migrate`")]
+    SchemaChanged { path: PathBuf, stored: String, config: String },
+    #[error("{path} is not an initialised state dir; run `tidegate init --config FILE` first")]
+    NotInitialised { path: PathBuf },
+}
+
+/// The open store of one state dir. Holding it means holding `state/LOCK`.
+pub struct Store {
+    path: PathBuf,
+    db: sled::Db,
+    meta: Tree,
+    batches: Tree,
+    hashes: Tree,
+    chunks: Tree,
+    vocab: Tree,
+    audit: Tree,
+    schema: Schema,
+    vocabs: Vocabularies,
+    totals: Totals,
+    last_audit: Option<(AuditSeq, String)>,
+}
+
+const META_SCHEMA: &[u8] = b"schema";
+const META_FINGERPRINT: &[u8] = b"schema_fingerprint";
+const META_TOTALS: &[u8] = b"totals";
+
+impl Store {
+    /// Creates a new store at `path` (which must not exist yet).
+    pub fn create(path: &Path, schema: &Schema, fingerprint: &str) -> Result<Store, StoreError> {
+        if path.join("db").exists() {
+            return Err(StoreError::Corrupt { path: path.to_path_buf(), what: "a store already exists here".into() });
+        }
+        let store = Store::open_raw(path, schema.clone())?;
+        let sl = |e| StoreError::Sled { path: path.to_path_buf(), source: e };
+        store.meta.insert(META_SCHEMA, json(schema)).map_err(sl)?;
+        store.meta.insert(META_FINGERPRINT, fingerprint.as_bytes()).map_err(sl)?;
+        store.meta.insert(META_TOTALS, json(&Totals::default())).map_err(sl)?;
+        store.sync()?;
+        Ok(store)
+    }
+
+    /// Opens an existing store and checks it was made for this schema.
+    pub fn open(path: &Path, schema: &Schema, fingerprint: &str) -> Result<Store, StoreError> {
+        if !path.join("db").exists() && !path.join("conf").exists() {
+            return Err(StoreError::NotInitialised { path: path.to_path_buf() });
+        }
+        let mut store = Store::open_raw(path, schema.clone())?;
+        let stored = store.meta.get(META_FINGERPRINT).map_err(|e| store.sled_err(e))?;
+        let stored = stored.map(|v| String::from_utf8_lossy(&v).into_owned()).unwrap_or_default();
+        if stored != fingerprint {
+            return Err(StoreError::SchemaChanged { path: path.to_path_buf(), stored, config: fingerprint.to_string() });
+        }
+        store.load_state()?;
+        Ok(store)
+    }
+
+    fn open_raw(path: &Path, schema: Schema) -> Result<Store, StoreError> {
+        let sl = |e| StoreError::Sled { path: path.to_path_buf(), source: e };
+        let db = sled::Config::new().path(path).mode(sled::Mode::HighThroughput).open().map_err(sl)?;
+        let tree = |name: &str| db.open_tree(name).map_err(sl);
+        Ok(Store {
+            path: path.to_path_buf(),
+            meta: tree("meta")?,
+            batches: tree("batches")?,
+            hashes: tree("hashes")?,
+            chunks: tree("chunks")?,
+            vocab: tree("vocab")?,
+            audit: tree("audit")?,
+            db,
+            schema,
+            vocabs: Vocabularies::new(),
+            totals: Totals::default(),
+            last_audit: None,
+        })
+    }
+
+    fn sled_err(&self, source: sled::Error) -> StoreError {
+        StoreError::Sled { path: self.path.clone(), source }
+    }
+
+    fn corrupt(&self, what: impl Into<String>) -> StoreError {
+        StoreError::Corrupt { path: self.path.clone(), what: what.into() }
+    }
+
+    fn load_state(&mut self) -> Result<(), StoreError> {
+        let totals = self.meta.get(META_TOTALS).map_err(|e| self.sled_err(e))?.ok_or_else(|| self.corrupt("meta has no totals"))?;
+        self.totals = serde_json::from_slice(&totals).map_err(|e| self.corrupt(format!("totals: {e}")))?;
+        let mut vocabs = BTreeMap::<usize, Vec<String>>::new();
+        for kv in self.vocab.iter() {
+            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+            let (col, code) = (u32_at(&k, 0), u32_at(&k, 4));
+            let values = vocabs.entry(col as usize).or_default();
+            if code as usize != values.len() {
+                return Err(self.corrupt(format!("vocabulary of column {col} skips code {}", values.len())));
+            }
+            values.push(String::from_utf8_lossy(&v).into_owned());
+        }
+        self.vocabs = vocabs.into_iter().map(|(c, v)| (c, Vocab::from_values(v))).collect();
+        if let Some(kv) = self.audit.last().map_err(|e| self.sled_err(e))? {
+            let seq = AuditSeq::from_key(&kv.0).ok_or_else(|| self.corrupt("bad audit key"))?;
+            let entry = Entry::from_line(&kv.1).map_err(|e| self.corrupt(format!("audit entry {seq}: {e}")))?;
+            self.last_audit = Some((seq, entry.hash));
+        }
+        Ok(())
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn schema(&self) -> &Schema {
+        &self.schema
+    }
+
+    pub fn vocabularies(&self) -> &Vocabularies {
+        &self.vocabs
+    }
+
+    pub fn totals(&self) -> &Totals {
+        &self.totals
+    }
+
+    /// The batch a file hash was accepted as, if any.
+    pub fn batch_of_hash(&self, hash: &blake3::Hash) -> Result<Option<BatchId>, StoreError> {
+        let v = self.hashes.get(hash.as_bytes()).map_err(|e| self.sled_err(e))?;
+        Ok(v.and_then(|v| BatchId::from_key(&v)))
+    }
+
+    pub fn batch(&self, id: BatchId) -> Result<Option<BatchRecord>, StoreError> {
+        let v = self.batches.get(id.key()).map_err(|e| self.sled_err(e))?;
+        v.map(|v| serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch {id}: {e}")))).transpose()
+    }
+
+    /// All accepted batches in order.
+    pub fn batches(&self) -> Result<Vec<BatchRecord>, StoreError> {
+        self.batches
+            .iter()
+            .map(|kv| {
+                let (_, v) = kv.map_err(|e| self.sled_err(e))?;
+                serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch record: {e}")))
+            })
+            .collect()
+    }
+
+    pub fn next_batch_id(&self) -> BatchId {
+        BatchId(self.totals.batches + 1)
+    }
+
+    /// Rows of one split, for batches in `from..=to` (all when `None`).
+    pub fn rows(&self, split: Split, from: Option<BatchId>, to: Option<BatchId>) -> Result<RowMatrix, StoreError> {
+        let width = self.schema.width();
+        let mut out = RowMatrix::new(width);
+        let lo = from.unwrap_or(BatchId(0));
+        let hi = to.unwrap_or(BatchId(u64::MAX));
+        for kv in self.chunks.range(lo.key()..) {
+            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+            let id = BatchId::from_key(&k[..8]).ok_or_else(|| self.corrupt("bad chunk key"))?;
+            if id > hi {
+                break;
+            }
+            if k[8] != split.byte() {
+                continue;
+            }
+            if v.len() % (4 * width) != 0 {
+                return Err(self.corrupt(format!("chunk of batch {id} is not whole rows")));
+            }
+            let cells: Vec<u32> = v.chunks_exact(4).map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes"))).collect();
+            out.extend(&RowMatrix::from_cells(width, cells));
+        }
+        Ok(out)
+    }
+
+    /// Audit entries in order, as stored.
+    pub fn audit_entries(&self) -> Result<Vec<(AuditSeq, Vec<u8>)>, StoreError> {
+        self.audit
+            .iter()
+            .map(|kv| {
+                let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+                Ok((AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?, v.to_vec()))
+            })
+            .collect()
+    }
+
+    /// Audit entries after `seq`, as stored.
+    pub fn audit_after(&self, seq: AuditSeq) -> Result<Vec<(AuditSeq, Vec<u8>)>, StoreError> {
+        self.audit
+            .range(seq.next().key()..)
+            .map(|kv| {
+                let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+                Ok((AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?, v.to_vec()))
+            })
+            .collect()
+    }
+
+    pub fn last_audit_seq(&self) -> AuditSeq {
+        self.last_audit.as_ref().map_or(AuditSeq(0), |(s, _)| *s)
+    }
+
+    /// Seals the next audit entry for `event` onto the chain.
+    fn seal(&self, event: Event, user: &str, time: chrono::DateTime<chrono::Utc>) -> Entry {
+        let (seq, prev) = match &self.last_audit {
+            Some((s, h)) => (s.next(), h.clone()),
+            None => (AuditSeq(1), audit::GENESIS.to_string()),
+        };
+        Entry::seal(seq, time, user, event, &prev)
+    }
+
+    /// Records an event that touches no data (rejections, duplicates, …).
+    pub fn record(&mut self, event: Event, user: &str, time: chrono::DateTime<chrono::Utc>) -> Result<Entry, StoreError> {
+        let entry = self.seal(event, user, time);
+        self.audit.insert(entry.seq.key(), entry.line().into_bytes()).map_err(|e| self.sled_err(e))?;
+        self.sync()?;
+        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        Ok(entry)
+    }
+
+    /// Commits an accepted batch: rows, batch record, hash index, new
+    /// vocabulary, totals and the audit entry in one transaction, then makes
+    /// it durable. Returns the batch record and the sealed audit entry.
+    pub fn commit_batch(
+        &mut self,
+        batch: &Batch,
+        file: &str,
+        hash: &blake3::Hash,
+        user: &str,
+        time: chrono::DateTime<chrono::Utc>,
+    ) -> Result<(BatchRecord, Entry), StoreError> {
+        let id = self.next_batch_id();
+        let train_stats = ColumnStats::of_rows(&self.schema, &batch.train);
+        let names = |ci: &usize| self.schema.columns[*ci].name.clone();
+        let new_categories: BTreeMap<String, Vec<String>> = batch.new_categories.iter().map(|(c, v)| (names(c), v.clone())).collect();
+        let event = Event::BatchAccepted {
+            batch: id,
+            file: file.to_string(),
+            hash: hash.to_hex().to_string(),
+            rows: batch.rows() as u64,
+            train_rows: batch.train.n_rows() as u64,
+            holdout_rows: batch.holdout.n_rows() as u64,
+            new_categories,
+        };
+        let entry = self.seal(event, user, time);
+        let record = BatchRecord {
+            id,
+            file: file.to_string(),
+            hash: hash.to_hex().to_string(),
+            accepted_at: entry.time.clone(),
+            train_rows: batch.train.n_rows() as u64,
+            holdout_rows: batch.holdout.n_rows() as u64,
+            audit_seq: entry.seq,
+            train_stats: train_stats.clone(),
+        };
+        let totals = Totals {
+            batches: self.totals.batches + 1,
+            train_rows: self.totals.train_rows + record.train_rows,
+            holdout_rows: self.totals.holdout_rows + record.holdout_rows,
+            train_stats: self.totals.train_stats.merge(&train_stats),
+        };
+        let mut chunk_values: Vec<(Vec<u8>, Vec<u8>)> = Vec::new();
+        for (split, rows) in [(Split::Train, &batch.train), (Split::Holdout, &batch.holdout)] {
+            let per_chunk = (CHUNK_CELLS / rows.width()).max(1) * rows.width();
+            for (i, cells) in rows.cells().chunks(per_chunk).enumerate() {
+                let mut key = Vec::with_capacity(13);
+                key.extend_from_slice(&id.key());
+                key.push(split.byte());
+                key.extend_from_slice(&u32::try_from(i).expect("fewer than 2^32 chunks").to_be_bytes());
+                let mut val = Vec::with_capacity(cells.len() * 4);
+                for c in cells {
+                    val.extend_from_slice(&c.to_le_bytes());
+                }
+                chunk_values.push((key, val));
+            }
+        }
+        let mut vocab_values: Vec<([u8; 8], Vec<u8>)> = Vec::new();
+        for (ci, values) in &batch.new_categories {
+            let start = self.vocabs.get(ci).map_or(0, Vocab::len);
+            for (k, v) in values.iter().enumerate() {
+                let mut key = [0u8; 8];
+                key[..4].copy_from_slice(&u32::try_from(*ci).expect("column index").to_be_bytes());
+                key[4..].copy_from_slice(&u32::try_from(start + k).expect("code").to_be_bytes());
+                vocab_values.push((key, v.as_bytes().to_vec()));
+            }
+        }
+        let record_json = json(&record);
+        let totals_json = json(&totals);
+        let line = entry.line().into_bytes();
+        let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.batches, &self.hashes, &self.chunks, &self.vocab, &self.audit).transaction(
+            |(meta, batches, hashes, chunks, vocab, audit): &(TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree)| {
+                if hashes.get(hash.as_bytes())?.is_some() {
+                    return Err(ConflictableTransactionError::Abort(StoreError::Corrupt {
+                        path: PathBuf::new(),
+                        what: "file hash already stored".into(),
+                    }));
+                }
+                for (k, v) in &chunk_values {
+                    chunks.insert(k.as_slice(), v.as_slice())?;
+                }
+                for (k, v) in &vocab_values {
+                    vocab.insert(&k[..], v.as_slice())?;
+                }
+                batches.insert(&id.key()[..], record_json.as_slice())?;
+                hashes.insert(&hash.as_bytes()[..], &id.key()[..])?;
+                meta.insert(META_TOTALS, totals_json.as_slice())?;
+                audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                Ok(())
+            },
+        );
+        match result {
+            Ok(()) => {}
+            Err(TransactionError::Abort(e)) => return Err(e),
+            Err(TransactionError::Storage(e)) => return Err(self.sled_err(e)),
+        }
+        self.sync()?;
+        for (ci, values) in &batch.new_categories {
+            let v = self.vocabs.entry(*ci).or_default();
+            for value in values {
+                v.code_or_insert(value);
+            }
+        }
+        self.totals = totals;
+        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        Ok((record, entry))
+    }
+
+    /// Makes everything written so far durable: sled's flush writes its log
+    /// but does not fsync on Linux, so the data file and folder are synced too.
+    pub fn sync(&self) -> Result<(), StoreError> {
+        self.db.flush().map_err(|e| self.sled_err(e))?;
+        crate::fsutil::sync_file(&self.path.join("db")).map_err(|source| StoreError::Io { path: self.path.join("db"), source })?;
+        crate::fsutil::sync_dir(&self.path).map_err(|source| StoreError::Io { path: self.path.clone(), source })?;
+        Ok(())
+    }
+}
+
+fn u32_at(b: &[u8], at: usize) -> u32 {
+    b.get(at..at + 4).and_then(|s| s.try_into().ok()).map_or(u32::MAX, u32::from_be_bytes)
+}
+
+fn json<T: Serialize>(v: &T) -> Vec<u8> {
+    serde_json::to_vec(v).expect("plain data serialises")
+}
