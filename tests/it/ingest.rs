@@ -1,0 +1,530 @@
+//! The intake path through the real binary: accepted, duplicate and refused
+//! files, the malformed-input set, the owner lock, `status` and `log`.
+
+use std::fs;
+
+use tidegate::config::Config;
+use tidegate::state::{self, StateDir};
+
+use crate::support::{Env, code, data, repo, stderr, stdout};
+
+fn small() -> Env {
+    Env::new(&data("small.toml"))
+}
+
+/// Rows in the store according to `status --json`.
+fn stored_rows(env: &Env) -> u64 {
+    env.status_json()["summary"]["rows"].as_u64().unwrap()
+}
+
+#[test]
+fn accepts_then_reports_duplicate() {
+    let env = small();
+    let out = env.ingest(&[data("good/plain.csv")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(
+        stdout(&out).contains("accepted: batch b000001 with 3 rows"),
+        "{}",
+        stdout(&out)
+    );
+    // The same bytes under another name are a duplicate.
+    let copy = env.dir.path().join("again.csv");
+    fs::copy(data("good/plain.csv"), &copy).unwrap();
+    let out = env.ingest(std::slice::from_ref(&copy));
+    assert_eq!(code(&out), 0);
+    assert!(
+        stdout(&out).contains("duplicate of batch b000001; nothing stored"),
+        "{}",
+        stdout(&out)
+    );
+    assert_eq!(stored_rows(&env), 3);
+    let dups = env.log_json(&["--kind", "batch-duplicate"]);
+    assert_eq!(dups.len(), 1);
+    assert_eq!(dups[0]["file"], "again.csv");
+    assert_eq!(dups[0]["duplicate_of"], 1);
+    // The accepted bytes are archived under the batch id; the source is left alone.
+    assert_eq!(
+        fs::read(env.state().join("archive/b000001.csv")).unwrap(),
+        fs::read(data("good/plain.csv")).unwrap()
+    );
+    assert!(copy.exists());
+}
+
+#[test]
+fn good_files_are_accepted_with_the_same_rows() {
+    // BOM, CRLF, a missing final newline, reordered columns, quoting, blank
+    // lines and spaces around values are all fine.
+    let env = small();
+    for name in [
+        "bom.csv",
+        "crlf.csv",
+        "no-trailing-newline.csv",
+        "reordered-columns.csv",
+        "rfc4180-quoting.csv",
+        "blank-lines.csv",
+        "spaces.csv",
+    ] {
+        let out = env.ingest(&[data(&format!("good/{name}"))]);
+        assert_eq!(code(&out), 0, "{name}: {}{}", stdout(&out), stderr(&out));
+        assert!(
+            stdout(&out).contains("accepted"),
+            "{name}: {}",
+            stdout(&out)
+        );
+    }
+    // bom, crlf, no-trailing-newline, reordered and blank-lines hold the same
+    // two rows, so the vocabulary of city is Oslo, Lima, then the quoted name.
+    let s = env.status_json();
+    let cities: Vec<&str> = s["summary"]["vocabularies"]["city"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert_eq!(cities, vec!["Oslo", "Lima", "Oslo, Norway"]);
+    assert_eq!(s["summary"]["rows"], 2 * 5 + 2 + 1);
+}
+
+/// (file, line, column, words the reason must contain)
+const BAD: &[(&str, u64, Option<&str>, &str)] = &[
+    ("empty.csv", 0, None, "the file is empty"),
+    ("header-only.csv", 0, None, "header but no rows"),
+    (
+        "ragged-short.csv",
+        3,
+        None,
+        "has 4 fields but the header has 5",
+    ),
+    (
+        "ragged-long.csv",
+        2,
+        None,
+        "has 6 fields but the header has 5",
+    ),
+    (
+        "unterminated-quote.csv",
+        3,
+        None,
+        "opened in this row is never closed",
+    ),
+    (
+        "nan.csv",
+        2,
+        Some("temp"),
+        "NaN and infinity are not accepted",
+    ),
+    ("inf.csv", 2, Some("y"), "NaN and infinity are not accepted"),
+    (
+        "overflow.csv",
+        2,
+        Some("y"),
+        "NaN and infinity are not accepted",
+    ),
+    (
+        "above-max.csv",
+        2,
+        Some("temp"),
+        "above the column's max of 60",
+    ),
+    (
+        "below-min.csv",
+        2,
+        Some("temp"),
+        "below the column's min of -50",
+    ),
+    ("unknown-column.csv", 1, None, "unknown column(s): extra"),
+    ("missing-column.csv", 1, None, "missing column(s): temp"),
+    (
+        "duplicate-header.csv",
+        1,
+        None,
+        "column(s) named twice: city",
+    ),
+    ("wrong-type.csv", 2, Some("temp"), "not a number"),
+    ("hex-number.csv", 2, Some("id"), "not a number"),
+    ("decimal-comma.csv", 2, Some("temp"), "not a number"),
+    (
+        "missing-required.csv",
+        2,
+        Some("y"),
+        "empty field in a required column",
+    ),
+    (
+        "missing-required-category.csv",
+        2,
+        Some("city"),
+        "empty field in a required column",
+    ),
+    (
+        "huge-field.csv",
+        2,
+        Some("city"),
+        "over the limit of 64 (data.max_field_bytes)",
+    ),
+    ("control-char.csv", 2, Some("city"), "control characters"),
+    (
+        "quoted-line-break.csv",
+        2,
+        Some("city"),
+        "line breaks inside a value",
+    ),
+    ("invalid-utf8.csv", 2, Some("city"), "not valid UTF-8"),
+    (
+        "invalid-utf8-header.csv",
+        1,
+        None,
+        "header is not valid UTF-8",
+    ),
+    ("nul-byte.csv", 2, None, "NUL byte"),
+    ("utf16.csv", 1, None, "NUL byte"),
+    ("binary.csv", 1, None, "NUL byte"),
+    (
+        "too-large.csv",
+        0,
+        None,
+        "over the limit of 4096 bytes (data.max_file_bytes)",
+    ),
+    ("many-bad-rows.csv", 2, Some("temp"), "not a number"),
+];
+
+#[test]
+fn malformed_files_are_refused_whole_with_reasons() {
+    let env = small();
+    assert!(BAD.len() >= 20);
+    let listed: std::collections::BTreeSet<String> = fs::read_dir(data("bad"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    let covered: std::collections::BTreeSet<String> = BAD.iter().map(|b| b.0.to_string()).collect();
+    assert_eq!(
+        listed, covered,
+        "every file under tests/data/bad has an expectation"
+    );
+    for (name, line, column, words) in BAD {
+        let out = env.ingest(&[data(&format!("bad/{name}"))]);
+        assert_eq!(code(&out), 65, "{name}: {}{}", stdout(&out), stderr(&out));
+        let text = stdout(&out);
+        assert!(text.contains("refused, nothing stored"), "{name}: {text}");
+        assert!(text.contains(words), "{name}: {text}");
+        // The JSON form names line, column and reason.
+        let out = env
+            .command()
+            .args(["--json", "ingest"])
+            .arg(data(&format!("bad/{name}")))
+            .output()
+            .unwrap();
+        let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+        assert_eq!(v["status"], "rejected", "{name}");
+        let first = &v["problems"][0];
+        assert_eq!(first["line"], *line, "{name}: {first}");
+        assert_eq!(first["column"].as_str(), *column, "{name}: {first}");
+        assert!(
+            first["reason"].as_str().unwrap().contains(words),
+            "{name}: {first}"
+        );
+    }
+    assert_eq!(
+        stored_rows(&env),
+        0,
+        "nothing from a refused file is stored"
+    );
+    let s = env.status_json();
+    assert_eq!(s["summary"]["batches"], 0);
+    assert_eq!(s["summary"]["rejected_files"], 2 * BAD.len());
+    // Each refused file that could be read is kept with its reasons.
+    let why: serde_json::Value = serde_json::from_slice(
+        &fs::read(env.state().join("rejected/many-bad-rows.csv.why.json")).unwrap(),
+    )
+    .unwrap();
+    assert_eq!(why["problems_total"], 150);
+    assert_eq!(why["problems_listed"], 100);
+    assert_eq!(why["problems"][0]["value"], "hot");
+    assert_eq!(
+        fs::read(env.state().join("rejected/many-bad-rows.csv")).unwrap(),
+        fs::read(data("bad/many-bad-rows.csv")).unwrap()
+    );
+}
+
+#[test]
+fn refused_file_message_names_file_line_column_and_fix() {
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    let out = env.ingest(&[repo("demo-data/night-05.csv")]);
+    assert_eq!(code(&out), 65);
+    assert_eq!(
+        stdout(&out).trim(),
+        format!(
+            "{}: rejected: refused, nothing stored (3 problems): line 41, column \"temp_c\" (field 4), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in rejected/night-05.csv.why.json",
+            repo("demo-data/night-05.csv").display()
+        )
+    );
+    let log = env.log_json(&["--kind", "batch-rejected"]);
+    assert_eq!(log[0]["problems"], 3);
+    assert_eq!(log[0]["kept_as"], "rejected/night-05.csv");
+}
+
+#[test]
+fn special_files_are_refused_without_reading() {
+    let env = small();
+    let dir = env.dir.path();
+    std::os::unix::fs::symlink(data("good/plain.csv"), dir.join("link.csv")).unwrap();
+    let out = env.ingest(&[dir.join("link.csv")]);
+    assert_eq!(code(&out), 65);
+    assert!(
+        stdout(&out).contains("is a symbolic link"),
+        "{}",
+        stdout(&out)
+    );
+    let out = env.ingest(&[data("good")]);
+    assert_eq!(code(&out), 65);
+    assert!(
+        stdout(&out).contains("not a regular file"),
+        "{}",
+        stdout(&out)
+    );
+    // A file that cannot be read at all is a failure of the run, not of the data.
+    let out = env.ingest(&[dir.join("missing.csv")]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("missing.csv") && stderr(&out).contains("No such file"),
+        "{}",
+        stderr(&out)
+    );
+    assert_eq!(stored_rows(&env), 0);
+}
+
+#[test]
+fn demo_batches_ingest_with_the_bad_night_refused() {
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    let mut files: Vec<_> = fs::read_dir(repo("demo-data"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "csv"))
+        .collect();
+    files.sort();
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 65, "one file is refused");
+    let text = stdout(&out);
+    assert_eq!(text.matches(": accepted:").count(), 11, "{text}");
+    assert_eq!(text.matches(": rejected:").count(), 1, "{text}");
+    assert_eq!(text.matches(": duplicate:").count(), 1, "{text}");
+    let s = env.status_json();
+    assert_eq!(s["summary"]["batches"], 11);
+    // The new shop appears as a new category value on its first night.
+    let log = env.log_json(&["--kind", "batch-accepted"]);
+    let new_shop: Vec<&serde_json::Value> = log
+        .iter()
+        .filter(|e| {
+            e["new_categories"]["shop"]
+                .as_array()
+                .is_some_and(|v| v.len() == 1)
+        })
+        .collect();
+    assert_eq!(new_shop.len(), 1);
+    assert_eq!(new_shop[0]["file"], "night-07.csv");
+    assert_eq!(new_shop[0]["new_categories"]["shop"][0], "Harwick Harbour");
+}
+
+#[test]
+fn committed_demo_files_match_the_generator() {
+    for (name, text) in tidegate::demo::files(tidegate::demo::SEED) {
+        let committed = fs::read_to_string(repo("demo-data").join(&name)).unwrap();
+        assert!(
+            committed == text,
+            "demo-data/{name} differs from the generator; run cargo run --release --example gen_demo_data"
+        );
+    }
+    // The demo config is the template users start from.
+    assert_eq!(
+        fs::read_to_string(repo("demo-data/tidegate.toml")).unwrap(),
+        tidegate::config::TEMPLATE
+    );
+}
+
+#[test]
+fn second_writer_is_refused_and_readers_still_answer() {
+    let env = small();
+    let out = env.ingest(&[data("good/plain.csv")]);
+    assert_eq!(code(&out), 0);
+    // This test process becomes the owner, like a running daemon would.
+    let config = Config::load(&data("small.toml")).unwrap();
+    let (owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+    let out = env.ingest(&[data("good/bom.csv")]);
+    assert_eq!(code(&out), 75, "{}", stderr(&out));
+    assert!(
+        stderr(&out).contains(&format!("is in use by PID {}", std::process::id())),
+        "{}",
+        stderr(&out)
+    );
+    // Read-only commands answer from files while the store is held.
+    let s = env.status_json();
+    assert_eq!(s["owner_pid"], std::process::id());
+    assert_eq!(s["summary"]["rows"], 3);
+    assert_eq!(env.log_json(&[]).len(), 2);
+    drop(owner);
+    assert_eq!(env.status_json()["owner_pid"], serde_json::Value::Null);
+    let out = env.ingest(&[data("good/bom.csv")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+}
+
+#[test]
+fn log_filters_and_json_lines() {
+    let env = small();
+    env.ingest(&[
+        data("good/plain.csv"),
+        data("bad/nan.csv"),
+        data("good/bom.csv"),
+        data("good/plain.csv"),
+    ]);
+    let all = env.log_json(&[]);
+    let kinds: Vec<&str> = all.iter().map(|e| e["kind"].as_str().unwrap()).collect();
+    assert_eq!(
+        kinds,
+        vec![
+            "initialized",
+            "batch-accepted",
+            "batch-rejected",
+            "batch-accepted",
+            "batch-duplicate"
+        ]
+    );
+    for (i, e) in all.iter().enumerate() {
+        assert_eq!(e["seq"], i as u64 + 1);
+        assert_eq!(e["user"], "tester");
+        assert_eq!(e["hash"].as_str().unwrap().len(), 64);
+    }
+    assert_eq!(all[1]["prev"], all[0]["hash"]);
+    assert_eq!(
+        env.log_json(&["--kind", "batch-accepted,batch-duplicate"])
+            .len(),
+        3
+    );
+    assert_eq!(
+        env.log_json(&["--limit", "2"])
+            .iter()
+            .map(|e| e["seq"].as_u64().unwrap())
+            .collect::<Vec<_>>(),
+        vec![4, 5]
+    );
+    assert_eq!(
+        env.log_json(&["--batch", "b000001"]).len(),
+        2,
+        "accepted and its duplicate"
+    );
+    assert_eq!(env.log_json(&["--since", "1h"]).len(), 5);
+    assert_eq!(env.log_json(&["--until", "2000-01-01"]).len(), 0);
+    let t = all[3]["time"].as_str().unwrap();
+    assert_eq!(env.log_json(&["--since", t]).len(), 2);
+    // The human table has a header and one row per entry.
+    let out = env.run(&["log"]);
+    let text = stdout(&out);
+    assert!(text.starts_with("seq  time (UTC)"), "{text}");
+    assert_eq!(text.lines().count(), 6);
+    // Bad filters are usage errors with a hint.
+    let out = env.run(&["log", "--since", "yesterday"]);
+    assert_eq!(code(&out), 2);
+    assert!(stderr(&out).contains("7d"), "{}", stderr(&out));
+    let out = env.run(&["log", "--kind", "promoted-ish"]);
+    assert_eq!(code(&out), 2);
+    assert!(stderr(&out).contains("batch-accepted"), "{}", stderr(&out));
+}
+
+#[test]
+fn status_json_shape() {
+    let env = small();
+    env.ingest(&[data("good/plain.csv")]);
+    let s = env.status_json();
+    assert_eq!(s["summary"]["batches"], 1);
+    assert_eq!(s["summary"]["rows"], 3);
+    assert_eq!(
+        s["summary"]["train_rows"].as_u64().unwrap()
+            + s["summary"]["holdout_rows"].as_u64().unwrap(),
+        3
+    );
+    assert_eq!(
+        s["summary"]["vocabularies"]["flag"],
+        serde_json::json!(["a", "b"])
+    );
+    assert_eq!(s["recent"].as_array().unwrap().len(), 2);
+    let out = env.run(&["status"]);
+    assert!(
+        stdout(&out).contains("rows        3 in 1 batches"),
+        "{}",
+        stdout(&out)
+    );
+}
+
+#[test]
+fn config_errors_exit_78_with_line_and_column() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("bad.toml");
+    let text = fs::read_to_string(data("small.toml"))
+        .unwrap()
+        .replace("target = \"y\"", "target = \"why\"");
+    fs::write(&cfg, text).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidegate"))
+        .arg("--state")
+        .arg(dir.path().join("s"))
+        .arg("--config")
+        .arg(&cfg)
+        .arg("init")
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 78);
+    assert!(stderr(&out).contains("bad.toml:3:10: target \"why\" is not one of the columns; allowed: id, city, temp, flag, y"), "{}", stderr(&out));
+    assert!(!dir.path().join("s").exists(), "nothing created");
+}
+
+#[test]
+fn init_refuses_to_overwrite_and_uninitialised_dirs_are_explained() {
+    let env = small();
+    let out = env.run_with_config(&data("small.toml"), &["init"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("already holds a tidegate state dir"),
+        "{}",
+        stderr(&out)
+    );
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidegate"))
+        .arg("--state")
+        .arg(dir.path().join("nope"))
+        .arg("status")
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("tidegate init --config FILE"),
+        "{}",
+        stderr(&out)
+    );
+    use std::os::unix::fs::PermissionsExt;
+    assert_eq!(
+        fs::metadata(env.state()).unwrap().permissions().mode() & 0o777,
+        0o700
+    );
+    // The template is a valid config.
+    let t = dir.path().join("t.toml");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidegate"))
+        .arg("init")
+        .arg("--template")
+        .arg(&t)
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(Config::load(&t).is_ok());
+}
+
+#[test]
+fn broken_pipe_is_success() {
+    let env = small();
+    env.ingest(&[data("good/plain.csv")]);
+    let mut child = env
+        .command()
+        .arg("log")
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    let status = child.wait().unwrap();
+    assert_eq!(status.code(), Some(0));
+}
