@@ -270,23 +270,23 @@ pub struct Filter {
 impl Filter {
     pub fn matches(&self, e: &Entry) -> bool {
         let t = e.timestamp();
-        if let (Some(s), Some(t)) = (self.since, t) {
-            if t < s {
-                return false;
-            }
+        if let (Some(s), Some(t)) = (self.since, t)
+            && t < s
+        {
+            return false;
         }
-        if let (Some(u), Some(t)) = (self.until, t) {
-            if t > u {
-                return false;
-            }
+        if let (Some(u), Some(t)) = (self.until, t)
+            && t > u
+        {
+            return false;
         }
         if !self.kinds.is_empty() && !self.kinds.iter().any(|k| k == e.event.kind()) {
             return false;
         }
-        if let Some(b) = self.batch {
-            if e.event.batch() != Some(b) {
-                return false;
-            }
+        if let Some(b) = self.batch
+            && e.event.batch() != Some(b)
+        {
+            return false;
         }
         true
     }
@@ -321,15 +321,13 @@ pub fn parse_when(s: &str, now: DateTime<Utc>) -> Result<DateTime<Utc>, String> 
             "w" => Some(604_800),
             _ => None,
         };
-        if let Some(secs) = secs {
-            if n >= 0 {
-                if let Some(t) = n
-                    .checked_mul(secs)
-                    .and_then(|x| now.checked_sub_signed(chrono::TimeDelta::try_seconds(x)?))
-                {
-                    return Ok(t);
-                }
-            }
+        if let Some(secs) = secs
+            && n >= 0
+            && let Some(t) = n
+                .checked_mul(secs)
+                .and_then(|x| now.checked_sub_signed(chrono::TimeDelta::try_seconds(x)?))
+        {
+            return Ok(t);
         }
     }
     Err(format!(

@@ -339,15 +339,15 @@ impl Config {
                     format!("column {name:?} is listed twice; each column name must be unique"),
                 );
             }
-            if col.kind == ColumnKind::Category {
-                for bound in [&col.min, &col.max].into_iter().flatten() {
-                    return fail(
-                        bound.span(),
-                        format!(
-                            "column {name:?} is a category; min and max apply to number columns only"
-                        ),
-                    );
-                }
+            if col.kind == ColumnKind::Category
+                && let Some(bound) = [&col.min, &col.max].into_iter().flatten().next()
+            {
+                return fail(
+                    bound.span(),
+                    format!(
+                        "column {name:?} is a category; min and max apply to number columns only"
+                    ),
+                );
             }
             for bound in [&col.min, &col.max].into_iter().flatten() {
                 if !bound.get_ref().is_finite() {
@@ -357,17 +357,17 @@ impl Config {
                     );
                 }
             }
-            if let (Some(lo), Some(hi)) = (&col.min, &col.max) {
-                if lo.get_ref() > hi.get_ref() {
-                    return fail(
-                        lo.span(),
-                        format!(
-                            "column {name:?} has min {} above max {}",
-                            lo.get_ref(),
-                            hi.get_ref()
-                        ),
-                    );
-                }
+            if let (Some(lo), Some(hi)) = (&col.min, &col.max)
+                && lo.get_ref() > hi.get_ref()
+            {
+                return fail(
+                    lo.span(),
+                    format!(
+                        "column {name:?} has min {} above max {}",
+                        lo.get_ref(),
+                        hi.get_ref()
+                    ),
+                );
             }
         }
         let target = data.target.get_ref();
@@ -553,13 +553,13 @@ impl Config {
                 "rescan_seconds must be at least 1".into(),
             );
         }
-        if let Some(at) = &d.train_at {
-            if parse_hh_mm(at).is_none() {
-                return fail(
-                    whole("train_at"),
-                    format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"),
-                );
-            }
+        if let Some(at) = &d.train_at
+            && parse_hh_mm(at).is_none()
+        {
+            return fail(
+                whole("train_at"),
+                format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"),
+            );
         }
         Ok(())
     }
@@ -622,11 +622,11 @@ fn key_span(text: &str, key: &str) -> Range<usize> {
     let mut offset = 0;
     for line in text.split_inclusive('\n') {
         let trimmed = line.trim_start();
-        if let Some(rest) = trimmed.strip_prefix(key) {
-            if rest.trim_start().starts_with('=') {
-                let start = offset + (line.len() - trimmed.len());
-                return start..start + key.len();
-            }
+        if let Some(rest) = trimmed.strip_prefix(key)
+            && rest.trim_start().starts_with('=')
+        {
+            let start = offset + (line.len() - trimmed.len());
+            return start..start + key.len();
         }
         offset += line.len();
     }

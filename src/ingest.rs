@@ -579,9 +579,7 @@ mod tests {
 
     fn refuse(text: &[u8]) -> Refusal {
         let (s, l) = schema();
-        parse(text, &s, &Vocabularies::new(), &l)
-            .err()
-            .expect("should be refused")
+        parse(text, &s, &Vocabularies::new(), &l).expect_err("should be refused")
     }
 
     /// All rows of a batch (train then holdout) as cells.

@@ -122,15 +122,15 @@ pub fn parse_number(col: &Column, text: &str) -> Result<Option<f32>, FieldProble
         // "1e999" parses to infinity: refuse it like an explicit "inf".
         return Err(FieldProblem::NotFinite);
     }
-    if let Some(m) = col.min {
-        if v < m {
-            return Err(FieldProblem::BelowMin(m));
-        }
+    if let Some(m) = col.min
+        && v < m
+    {
+        return Err(FieldProblem::BelowMin(m));
     }
-    if let Some(m) = col.max {
-        if v > m {
-            return Err(FieldProblem::AboveMax(m));
-        }
+    if let Some(m) = col.max
+        && v > m
+    {
+        return Err(FieldProblem::AboveMax(m));
     }
     Ok(Some(v))
 }
@@ -327,7 +327,7 @@ impl RowMatrix {
     /// Wraps cells; `cells.len()` must be a multiple of `width`.
     pub fn from_cells(width: usize, cells: Vec<u32>) -> RowMatrix {
         assert!(
-            width > 0 && cells.len() % width == 0,
+            width > 0 && cells.len().is_multiple_of(width),
             "cells do not fill whole rows"
         );
         RowMatrix { width, cells }
@@ -338,11 +338,7 @@ impl RowMatrix {
     }
 
     pub fn n_rows(&self) -> usize {
-        if self.width == 0 {
-            0
-        } else {
-            self.cells.len() / self.width
-        }
+        self.cells.len().checked_div(self.width).unwrap_or(0)
     }
 
     pub fn cells(&self) -> &[u32] {
@@ -483,10 +479,10 @@ impl FeatureSpec {
                         at += 1;
                     }
                     InputEncoding::OneHot { column, width } => {
-                        if let Some(code) = rows.code(r, column) {
-                            if (code as usize) < width {
-                                out[at + code as usize] = 1.0;
-                            }
+                        if let Some(code) = rows.code(r, column)
+                            && (code as usize) < width
+                        {
+                            out[at + code as usize] = 1.0;
                         }
                         at += width;
                     }

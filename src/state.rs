@@ -266,10 +266,10 @@ pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), Stat
 /// The acting user: the login name, or the numeric uid when none is set.
 pub fn current_user() -> String {
     for var in ["USER", "LOGNAME"] {
-        if let Ok(u) = std::env::var(var) {
-            if !u.is_empty() {
-                return u;
-            }
+        if let Ok(u) = std::env::var(var)
+            && !u.is_empty()
+        {
+            return u;
         }
     }
     match fs::metadata("/proc/self") {

@@ -103,10 +103,10 @@ pub fn exit_for(err: &anyhow::Error) -> Exit {
         if cause.downcast_ref::<ConfigError>().is_some() {
             return Exit::BadConfig;
         }
-        if let Some(e) = cause.downcast_ref::<std::io::Error>() {
-            if e.kind() == std::io::ErrorKind::BrokenPipe {
-                return Exit::Ok;
-            }
+        if let Some(e) = cause.downcast_ref::<std::io::Error>()
+            && e.kind() == std::io::ErrorKind::BrokenPipe
+        {
+            return Exit::Ok;
         }
     }
     Exit::Failure
