@@ -264,7 +264,7 @@ fn shorten(s: &str) -> String {
 
 /// Parses and validates the bytes of one file against the schema.
 ///
-/// `vocabs` is the vocabulary as stored; values not in it get new codes,
+/// `stored` is the vocabulary as stored; values not in it get new codes,
 /// reported in `Batch::new_categories` for the store to append.
 pub fn parse(
     bytes: &[u8],
@@ -272,6 +272,71 @@ pub fn parse(
     stored: &Vocabularies,
     limits: &Limits,
 ) -> Result<Batch, Refusal> {
+    let parsed = parse_rows(bytes, schema, stored, limits, Purpose::Store)?;
+    let width = schema.width();
+    let mut train = RowMatrix::new(width);
+    let mut holdout = RowMatrix::new(width);
+    for (r, &h) in parsed.holdout.iter().enumerate() {
+        if h {
+            holdout.push_row(parsed.rows.row(r));
+        } else {
+            train.push_row(parsed.rows.row(r));
+        }
+    }
+    Ok(Batch {
+        train,
+        holdout,
+        new_categories: parsed.new_categories,
+    })
+}
+
+/// Rows to be scored by a model, in file order.
+#[derive(Debug, Clone)]
+pub struct ScoringRows {
+    pub rows: RowMatrix,
+    /// Whether the file had the target column (so errors can be computed).
+    pub has_target: bool,
+    /// Category values the vocabulary does not know, per column index; the
+    /// model sees them as "none of the known values".
+    pub unseen: BTreeMap<usize, Vec<String>>,
+}
+
+/// Parses a file to be scored: the same checks as for storing, except that
+/// the target column may be absent or empty and nothing is split.
+pub fn parse_for_scoring(
+    bytes: &[u8],
+    schema: &Schema,
+    vocabs: &Vocabularies,
+    limits: &Limits,
+) -> Result<ScoringRows, Refusal> {
+    let parsed = parse_rows(bytes, schema, vocabs, limits, Purpose::Score)?;
+    Ok(ScoringRows {
+        rows: parsed.rows,
+        has_target: parsed.has_target,
+        unseen: parsed.new_categories,
+    })
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Purpose {
+    Store,
+    Score,
+}
+
+struct Parsed {
+    rows: RowMatrix,
+    holdout: Vec<bool>,
+    new_categories: BTreeMap<usize, Vec<String>>,
+    has_target: bool,
+}
+
+fn parse_rows(
+    bytes: &[u8],
+    schema: &Schema,
+    stored: &Vocabularies,
+    limits: &Limits,
+    purpose: Purpose,
+) -> Result<Parsed, Refusal> {
     if bytes.is_empty() {
         return Err(Refusal::whole_file(
             "the file is empty; expected a header line naming the columns, then rows",
@@ -308,10 +373,12 @@ pub fn parse(
         Some(Err(e)) => return Err(Refusal::header(format!("cannot read the header: {e}"))),
         Some(Ok(h)) => h,
     };
-    let order = match map_header(&header, schema) {
+    let optional_target = (purpose == Purpose::Score).then_some(schema.target);
+    let order = match map_header(&header, schema, optional_target) {
         Ok(o) => o,
         Err(reason) => return Err(Refusal::header(reason)),
     };
+    let has_target = order.contains(&schema.target);
     let n_fields = header.len();
     let odd_quotes = bytes.iter().filter(|&&b| b == b'"').count() % 2 == 1;
 
@@ -322,9 +389,15 @@ pub fn parse(
         total: 0,
     };
     let width = schema.width();
-    let mut train = RowMatrix::new(width);
-    let mut holdout = RowMatrix::new(width);
+    let mut rows = RowMatrix::new(width);
+    let mut holdout = Vec::new();
     let mut cells = vec![0u32; width];
+    if !has_target {
+        cells[schema.target] = match schema.columns[schema.target].kind {
+            ColumnKind::Number => schema::number_cell(None),
+            ColumnKind::Category => MISSING_CODE,
+        };
+    }
     let mut key: Vec<u8> = Vec::with_capacity(width * 8);
     let mut rows_seen = 0usize;
 
@@ -414,6 +487,15 @@ pub fn parse(
                 row_ok = false;
                 continue;
             }
+            // Scoring needs no target value.
+            let required = col.required && !(purpose == Purpose::Score && ci == schema.target);
+            if !required && text.trim().is_empty() {
+                cells[ci] = match col.kind {
+                    ColumnKind::Number => schema::number_cell(None),
+                    ColumnKind::Category => MISSING_CODE,
+                };
+                continue;
+            }
             match col.kind {
                 ColumnKind::Number => match schema::parse_number(col, text) {
                     Ok(v) => {
@@ -458,6 +540,10 @@ pub fn parse(
         if !row_ok {
             continue;
         }
+        rows.push_row(&cells);
+        if purpose == Purpose::Score {
+            continue;
+        }
         key.clear();
         for (ci, col) in schema.columns.iter().enumerate() {
             match col.kind {
@@ -479,11 +565,7 @@ pub fn parse(
                 },
             }
         }
-        if schema::is_holdout(&key, limits.holdout_fraction) {
-            holdout.push_row(&cells);
-        } else {
-            train.push_row(&cells);
-        }
+        holdout.push(schema::is_holdout(&key, limits.holdout_fraction));
     }
     if problems.total > 0 {
         return Err(Refusal {
@@ -496,15 +578,21 @@ pub fn parse(
             "the file has a header but no rows; nothing to add",
         ));
     }
-    Ok(Batch {
-        train,
+    Ok(Parsed {
+        rows,
         holdout,
         new_categories,
+        has_target,
     })
 }
 
 /// Maps each header field to its schema column, or explains what is wrong.
-fn map_header(header: &csv::ByteRecord, schema: &Schema) -> Result<Vec<usize>, String> {
+/// `optional` names a column that may be absent (the target, when scoring).
+fn map_header(
+    header: &csv::ByteRecord,
+    schema: &Schema,
+    optional: Option<usize>,
+) -> Result<Vec<usize>, String> {
     let mut order = Vec::with_capacity(header.len());
     let mut unknown = Vec::new();
     let mut seen = vec![false; schema.width()];
@@ -526,9 +614,9 @@ fn map_header(header: &csv::ByteRecord, schema: &Schema) -> Result<Vec<usize>, S
     let missing: Vec<&str> = schema
         .columns
         .iter()
-        .zip(&seen)
-        .filter(|(_, s)| !**s)
-        .map(|(c, _)| c.name.as_str())
+        .enumerate()
+        .filter(|(i, _)| !seen[*i] && Some(*i) != optional)
+        .map(|(_, c)| c.name.as_str())
         .collect();
     if twice.is_empty() && unknown.is_empty() && missing.is_empty() {
         return Ok(order);
@@ -736,5 +824,38 @@ mod tests {
             read_file(&d.path().join("none.csv"), 100),
             Err(ReadError::Io { .. })
         ));
+    }
+
+    #[test]
+    fn scoring_allows_a_missing_target_and_unseen_categories() {
+        let (s, l) = schema();
+        let city = s.index_of("city").unwrap();
+        let mut known = Vocabularies::new();
+        known.insert(city, schema::Vocab::from_values(vec!["Oslo".into()]));
+        let scored = parse_for_scoring(
+            b"temp,city,id,flag\n3,Oslo,1,a\n4,Quito,2,\n",
+            &s,
+            &known,
+            &l,
+        )
+        .unwrap();
+        assert!(!scored.has_target);
+        assert_eq!(scored.rows.n_rows(), 2);
+        assert_eq!(scored.rows.number(0, s.target), None);
+        assert_eq!(scored.rows.code(0, city), Some(0));
+        assert_eq!(scored.unseen[&city], vec!["Quito".to_string()]);
+        // File order is kept (no split).
+        assert_eq!(scored.rows.number(1, s.index_of("id").unwrap()), Some(2.0));
+        // With the target present, an empty target is fine when scoring but
+        // not when storing; other columns keep their rules.
+        let text = b"id,city,temp,flag,y\n1,Oslo,3,a,\n";
+        assert!(parse_for_scoring(text, &s, &known, &l).unwrap().has_target);
+        assert!(parse(text, &s, &known, &l).is_err());
+        let r = parse_for_scoring(b"id,city,flag,y\n1,Oslo,a,2\n", &s, &known, &l).unwrap_err();
+        assert!(
+            r.first().reason.contains("missing column(s): temp"),
+            "{}",
+            r.first()
+        );
     }
 }
