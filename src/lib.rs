@@ -18,3 +18,4 @@ pub mod rng;
 pub mod schema;
 pub mod state;
 pub mod store;
+pub mod verify;

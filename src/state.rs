@@ -228,6 +228,23 @@ pub struct Recovery {
 /// repairs whatever a crash left (stale temps, unarchived accepted files,
 /// audit lines missing from `audit.jsonl`).
 pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), StateError> {
+    open_with(state, config, true)
+}
+
+/// Like `open`, but leaves `audit.jsonl` as it is (for `verify`, which must
+/// report a log that lags or differs rather than repair it).
+pub fn open_untouched_log(
+    state: &StateDir,
+    config: &Config,
+) -> Result<(Owner, Recovery), StateError> {
+    open_with(state, config, false)
+}
+
+fn open_with(
+    state: &StateDir,
+    config: &Config,
+    catch_up_log: bool,
+) -> Result<(Owner, Recovery), StateError> {
     if !state.is_initialised() {
         return Err(StoreError::NotInitialised {
             path: state.root().to_path_buf(),
@@ -250,7 +267,9 @@ pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), Stat
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
     rec.pending_archived = archived;
     rec.pending_dropped = dropped;
-    rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
+    if catch_up_log {
+        rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
+    }
     Ok((
         Owner {
             state: state.clone(),

@@ -6,6 +6,7 @@ mod ingest;
 mod init;
 mod log;
 mod status;
+mod verify;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -69,6 +70,8 @@ pub enum Command {
     Status(status::Args),
     /// Query the audit log (reads audit.jsonl only).
     Log(log::Args),
+    /// Check the audit chain, the store against the log, and the archive.
+    Verify(verify::Args),
 }
 
 /// Runs a parsed command line.
@@ -79,6 +82,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Ingest(a) => ingest::run(cli, &state, a),
         Command::Status(a) => status::run(cli, &state, a),
         Command::Log(a) => log::run(cli, &state, a),
+        Command::Verify(a) => verify::run(cli, &state, a),
     }
 }
 

@@ -88,6 +88,12 @@ fn killed_ingests_never_lose_or_double_rows() {
         );
     }
 
+    let verified = env.run(&["verify"]);
+    assert!(
+        verified.status.success(),
+        "verify after the kills: {}",
+        String::from_utf8_lossy(&verified.stdout)
+    );
     let sd = StateDir::new(env.state());
     // Read what the finished run left before opening the store again (the
     // owner's start-up recovery would otherwise tidy up after a bug).

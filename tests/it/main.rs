@@ -4,3 +4,4 @@
 mod crash;
 mod ingest;
 mod support;
+mod tamper;

@@ -1,0 +1,30 @@
+//! `tidegate verify`: check the audit chain, the store against the log and
+//! the archive against the store; report the first problem and exit 1.
+
+use super::{Cli, Exit, emit};
+use crate::state::{self, StateDir};
+use crate::verify;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {}
+
+pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
+    let config = super::load_config(cli, state)?;
+    let (owner, _) = state::open_untouched_log(state, &config)?;
+    let result = verify::check(&owner)?;
+    let text = match (&result, cli.json) {
+        (Ok(r), true) => format!("{}\n", serde_json::json!({"ok": true, "report": r})),
+        (Err(p), true) => format!("{}\n", serde_json::json!({"ok": false, "problem": p})),
+        (Ok(r), false) => format!(
+            "ok: {} audit entries, {} batches, {} rows; chain, store and archive agree\n",
+            r.audit_entries, r.batches, r.rows
+        ),
+        (Err(p), false) => format!("problem: {p}\n"),
+    };
+    emit(&text)?;
+    Ok(if result.is_ok() {
+        Exit::Ok
+    } else {
+        Exit::Failure
+    })
+}
