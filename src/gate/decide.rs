@@ -20,6 +20,7 @@
 //! With `require_approval` a winner becomes `AwaitApproval`. Inputs that
 //! cannot be compared are a `Keep` carrying the reason, never a panic.
 
+use std::cmp::Ordering;
 use std::fmt;
 
 use super::paired::{PairedT, differences, paired_t};
@@ -418,7 +419,7 @@ fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> D
     if rows < need {
         shortfalls.push(Shortfall::TooFewRows { have: rows, need });
     }
-    if !(mean_loss_candidate < mean_loss_baseline) {
+    if mean_loss_candidate.partial_cmp(&mean_loss_baseline) != Some(Ordering::Less) {
         shortfalls.push(Shortfall::NotLower {
             baseline,
             mean_baseline: mean_loss_baseline,
@@ -478,9 +479,9 @@ fn guard(base: &Scores, cand: &Scores, new: bool, alpha: f64) -> Guard {
     };
     let status = match test {
         None => GuardStatus::NotTested,
-        // `!(p > alpha)` so that a NaN p fails safe.
-        Some(t) if !(t.p_less > alpha) => GuardStatus::Failed,
-        Some(_) => GuardStatus::Passed,
+        // Only a p clearly above alpha passes, so a NaN p fails safe.
+        Some(t) if t.p_less.partial_cmp(&alpha) == Some(Ordering::Greater) => GuardStatus::Passed,
+        Some(_) => GuardStatus::Failed,
     };
     Guard {
         rows,

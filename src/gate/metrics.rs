@@ -102,7 +102,7 @@ impl<'a> ProbTable<'a> {
                 have: classes,
             });
         }
-        if values.len() % classes != 0 {
+        if !values.len().is_multiple_of(classes) {
             return Err(InputError::BadProbabilities {
                 row: values.len() / classes,
                 problem: "the table length is not a multiple of the number of classes",
