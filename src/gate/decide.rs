@@ -733,7 +733,7 @@ mod tests {
         assert!(matches!(shortfalls[0], Shortfall::SmallImprovement { .. }));
         assert!(evidence.as_ref().is_some_and(|e| e.test.p_greater < 1e-10));
         assert!(
-            decision.reason().contains("below the required 1.000%"),
+            decision.reason().contains("below the required 1%"),
             "{}",
             decision.reason()
         );

@@ -136,8 +136,9 @@ impl<'a> ProbTable<'a> {
         self.classes
     }
 
-    pub fn row(&self, index: usize) -> &'a [f64] {
-        &self.values[index * self.classes..(index + 1) * self.classes]
+    /// Probabilities of row `index`, or `None` past the last row.
+    pub fn row(&self, index: usize) -> Option<&'a [f64]> {
+        self.values.chunks_exact(self.classes).nth(index)
     }
 
     fn iter(&self) -> impl Iterator<Item = &'a [f64]> {
@@ -164,10 +165,11 @@ impl<'a> ProbTable<'a> {
     }
 }
 
-/// Index of the largest probability; the first one on ties.
+/// Index of the largest probability; the first one on ties (0 for an
+/// empty slice, which a checked [`ProbTable`] never yields).
 pub fn predicted_class(probs: &[f64]) -> usize {
     let mut best = 0;
-    for (k, p) in probs.iter().enumerate() {
+    for (k, p) in probs.iter().enumerate().skip(1) {
         if *p > probs[best] {
             best = k;
         }
@@ -465,6 +467,10 @@ mod tests {
         // A confident miss costs −ln(PROB_FLOOR), not infinity.
         let losses = log_losses(&probs, &[0]).expect("valid");
         near(losses[0], -PROB_FLOOR.ln(), 1e-12);
+        assert_eq!(probs.row(0), Some(&[0.0, 1.0][..]));
+        assert_eq!(probs.row(1), None);
+        assert_eq!(predicted_class(&[]), 0);
+        assert_eq!(predicted_class(&[0.4, 0.4, 0.2]), 0, "first on ties");
     }
 
     #[test]

@@ -128,17 +128,50 @@ pub(crate) fn check_same_len(
     }
 }
 
-/// Formats a statistic for a sentence: four significant digits, switching to
-/// scientific notation for very small or large magnitudes.
+/// Formats a statistic for a sentence: four significant digits without
+/// trailing zeros, in scientific notation for very small or large
+/// magnitudes (0.05, 48.86, 1.942e-6).
 pub(crate) fn show(x: f64) -> String {
     if x == 0.0 || !x.is_finite() {
         return format!("{x}");
     }
     let magnitude = x.abs();
+    let trim = |digits: &str| -> String {
+        if digits.contains('.') {
+            digits
+                .trim_end_matches('0')
+                .trim_end_matches('.')
+                .to_string()
+        } else {
+            digits.to_string()
+        }
+    };
     if (1e-3..1e6).contains(&magnitude) {
-        let digits = 3 - magnitude.log10().floor() as i32;
-        format!("{x:.prec$}", prec = digits.max(0) as usize)
+        let decimals = (3 - magnitude.log10().floor() as i32).max(0) as usize;
+        trim(&format!("{x:.decimals$}"))
     } else {
-        format!("{x:.3e}")
+        let text = format!("{x:.3e}");
+        match text.split_once('e') {
+            Some((mantissa, exponent)) => format!("{}e{exponent}", trim(mantissa)),
+            None => text,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::show;
+
+    #[test]
+    fn numbers_in_sentences() {
+        assert_eq!(show(0.05), "0.05");
+        assert_eq!(show(1.0), "1");
+        assert_eq!(show(48.8612), "48.86");
+        assert_eq!(show(-0.5), "-0.5");
+        assert_eq!(show(1.9423e-6), "1.942e-6");
+        assert_eq!(show(4.0e-5), "4e-5");
+        assert_eq!(show(123_456.0), "123456");
+        assert_eq!(show(f64::INFINITY), "inf");
+        assert_eq!(show(0.0), "0");
     }
 }

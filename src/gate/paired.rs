@@ -352,6 +352,10 @@ pub struct SignFlip {
 /// Largest n for which all 2^n sign assignments are enumerated.
 pub const SIGN_FLIP_EXACT_MAX: usize = 20;
 
+/// Suggested number of Monte Carlo draws above the exact limit: the
+/// standard error of a p-value near 0.05 is then about 0.002.
+pub const SIGN_FLIP_DRAWS: usize = 9_999;
+
 /// Sign-flip permutation test: under "no difference" each d_i is as likely
 /// to have had the opposite sign.
 ///
