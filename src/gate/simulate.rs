@@ -7,7 +7,7 @@
 //! 1 + s². Equal s means no real difference; a smaller candidate s is a real
 //! improvement of known size. A share of the rows is flagged new at random.
 
-use super::decide::{Policy, Scores, decide};
+use super::decide::{Policy, Scores, decide, regression_check};
 use crate::rng::Rng;
 
 /// Holdout rows per trial in the asserted runs.
@@ -65,6 +65,37 @@ fn relative_gain(sd_serving: f64, sd_candidate: f64) -> f64 {
     (s - c) / s
 }
 
+/// Share of trials in which the fresh-data check reports a regression of a
+/// serving model with error sd `sd_serving` against a predecessor with
+/// `sd_previous`.
+fn rollback_rate(trials: usize, rows: usize, seed: u64, sd_serving: f64, sd_previous: f64) -> f64 {
+    let mut rng = Rng::new(seed);
+    let mut flagged = 0usize;
+    for _ in 0..trials {
+        let (mut serving, mut previous) = (Vec::with_capacity(rows), Vec::with_capacity(rows));
+        for _ in 0..rows {
+            let noise = rng.normal();
+            serving.push((noise + sd_serving * rng.normal()).powi(2));
+            previous.push((noise + sd_previous * rng.normal()).powi(2));
+        }
+        if regression_check(&serving, &previous, 0.05).regressed() {
+            flagged += 1;
+        }
+    }
+    flagged as f64 / trials as f64
+}
+
+#[test]
+fn false_rollback_rate_without_a_real_difference() {
+    // Same reasoning and bound as for false promotions: a one-sided test at
+    // alpha = 0.05 on 400 trials, 8% allows ~2.7 standard errors of noise.
+    let rate = rollback_rate(400, ROWS, 13, 0.5, 0.5);
+    assert!(rate <= 0.08, "false-rollback rate {rate}");
+    // A real regression (error sd 0.2 → 0.5) is caught most of the time.
+    let caught = rollback_rate(400, ROWS, 14, 0.5, 0.2);
+    assert!(caught >= 0.85, "regression detection rate {caught}");
+}
+
 #[test]
 fn false_promotion_rate_without_a_real_difference() {
     // No real difference (both error sd 0.5), min_improvement 0 so only the
@@ -115,5 +146,9 @@ fn print_rates() {
                 100.0 * gain
             );
         }
+        let false_alarm = rollback_rate(trials, rows, 103, 0.5, 0.5);
+        println!("  fresh-data check, no real difference: regression reported {false_alarm:.4}");
+        let caught = rollback_rate(trials, rows, 104, 0.5, 0.2);
+        println!("  fresh-data check, error sd 0.2 -> 0.5: regression reported {caught:.4}");
     }
 }
