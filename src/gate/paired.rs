@@ -298,8 +298,9 @@ pub struct McNemar {
 /// counts. With b + c = 0 there is no evidence: statistic 0, p = 1.
 /// (The correction is floored at zero, so b = c gives statistic 0.)
 pub fn mcnemar(b: u64, c: u64) -> McNemar {
-    let total = (b + c) as f64;
-    let statistic = if b + c == 0 {
+    // Counts are summed as f64 so that no pair of counts can overflow.
+    let total = b as f64 + c as f64;
+    let statistic = if total == 0.0 {
         0.0
     } else {
         let gap = (b.abs_diff(c) as f64 - 1.0).max(0.0);
@@ -439,8 +440,7 @@ pub fn sign_flip(d: &[f64], draws: usize, seed: u64) -> Result<SignFlip, InputEr
 mod tests {
     use super::*;
 
-    /// Darwin's Zea mays differences (cross- minus self-fertilised height,
-    /// eighths of an inch in decimals), as analysed by Fisher (1935);
+    /// Darwin's Zea mays pair differences as analysed by Fisher (1935);
     /// values from CHECKS.md.
     const DARWIN: [f64; 15] = [
         6.125, -8.375, 1.0, 2.0, 0.75, 2.875, 3.5, 5.125, 1.75, 3.625, 7.0, 3.0, 9.375, 7.5, -6.0,
@@ -542,6 +542,7 @@ mod tests {
         // No discordant rows, or equal counts: no evidence.
         assert_eq!(mcnemar(0, 0).p, 1.0);
         assert_eq!(mcnemar(7, 7).statistic, 0.0);
+        assert_eq!(mcnemar(u64::MAX, u64::MAX).p, 1.0);
     }
 
     #[test]
