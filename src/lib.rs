@@ -11,6 +11,7 @@ pub mod cli;
 pub mod config;
 pub mod demo;
 pub mod fsutil;
+pub mod gate;
 pub mod ids;
 pub mod ingest;
 pub mod intake;
