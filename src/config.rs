@@ -531,8 +531,8 @@ impl Config {
             ),
             (
                 "alpha",
-                g.alpha > 0.0 && g.alpha < 1.0,
-                "alpha must be between 0 and 1 (exclusive); 0.05 is usual",
+                g.alpha > 0.0 && g.alpha <= 0.5,
+                "alpha must be in (0, 0.5]: a one-sided test at a higher level can pass a worse model; 0.05 is usual",
             ),
         ];
         for (key, ok, msg) in checks {
