@@ -15,7 +15,7 @@ use std::path::{Path, PathBuf};
 use chrono::{DateTime, SecondsFormat, Utc};
 use serde::{Deserialize, Serialize};
 
-use crate::ids::{AuditSeq, BatchId};
+use crate::ids::{AuditSeq, BatchId, ModelId};
 
 /// `prev` of the first entry.
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
@@ -60,6 +60,72 @@ pub enum Event {
         file_hash: String,
         duplicate_of: BatchId,
     },
+    /// A retrain cycle began.
+    CycleStarted {
+        cycle: u64,
+        serving: Option<ModelId>,
+        /// Batches the serving model has not been trained on.
+        new_batches: Vec<BatchId>,
+        /// Candidate kinds to train ("warm", "cold").
+        candidates: Vec<String>,
+    },
+    /// A candidate finished training and was scored on the holdout rows.
+    CandidateTrained {
+        cycle: u64,
+        model: ModelId,
+        /// "warm" or "cold".
+        run: String,
+        parent: Option<ModelId>,
+        trained_through: BatchId,
+        epochs: usize,
+        seconds: f64,
+        stop: String,
+        holdout_rows: usize,
+        holdout_loss: f64,
+        /// blake3 of the checkpoint's manifest.json (which holds the other files' hashes).
+        manifest_hash: String,
+    },
+    /// A candidate became the serving model.
+    Promoted {
+        cycle: u64,
+        model: ModelId,
+        previous: Option<ModelId>,
+        evidence: GateEvidence,
+    },
+    /// The gate kept the serving model; the candidate stays on disk.
+    Kept {
+        cycle: u64,
+        model: ModelId,
+        serving: Option<ModelId>,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        evidence: Option<GateEvidence>,
+        reason: String,
+    },
+    /// The candidate won the gate and waits for a person's decision.
+    AwaitingApproval {
+        cycle: u64,
+        model: ModelId,
+        serving: Option<ModelId>,
+        evidence: GateEvidence,
+    },
+}
+
+/// The gate's numbers as written in the log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GateEvidence {
+    /// What the candidate was compared with: "serving" or "trivial".
+    pub baseline: String,
+    pub rows: usize,
+    pub mean_loss_baseline: f64,
+    pub mean_loss_candidate: f64,
+    pub relative_improvement: Option<f64>,
+    /// Paired t statistic; absent when it is infinite (all differences equal).
+    pub t: Option<f64>,
+    /// One-sided p-value that the candidate is better.
+    pub p: f64,
+    pub new_rows: usize,
+    pub old_rows: usize,
+    pub reason: String,
 }
 
 impl Event {
@@ -70,6 +136,11 @@ impl Event {
             Event::BatchAccepted { .. } => "batch-accepted",
             Event::BatchRejected { .. } => "batch-rejected",
             Event::BatchDuplicate { .. } => "batch-duplicate",
+            Event::CycleStarted { .. } => "cycle-started",
+            Event::CandidateTrained { .. } => "candidate-trained",
+            Event::Promoted { .. } => "promoted",
+            Event::Kept { .. } => "kept",
+            Event::AwaitingApproval { .. } => "awaiting-approval",
         }
     }
 
@@ -79,7 +150,23 @@ impl Event {
         "batch-accepted",
         "batch-rejected",
         "batch-duplicate",
+        "cycle-started",
+        "candidate-trained",
+        "promoted",
+        "kept",
+        "awaiting-approval",
     ];
+
+    /// The model an event is about, if any.
+    pub fn model(&self) -> Option<ModelId> {
+        match self {
+            Event::CandidateTrained { model, .. }
+            | Event::Promoted { model, .. }
+            | Event::Kept { model, .. }
+            | Event::AwaitingApproval { model, .. } => Some(*model),
+            _ => None,
+        }
+    }
 
     /// The batch an event is about, if any.
     pub fn batch(&self) -> Option<BatchId> {
@@ -135,6 +222,48 @@ impl Event {
             Event::BatchDuplicate {
                 file, duplicate_of, ..
             } => format!("{file} is a duplicate of batch {duplicate_of}; nothing stored"),
+            Event::CycleStarted {
+                cycle,
+                serving,
+                new_batches,
+                candidates,
+            } => format!(
+                "cycle {cycle}: {} candidate(s) against {}, {} new batch(es)",
+                candidates.join(" + "),
+                serving.map_or_else(|| "the trivial predictor".to_string(), |m| m.to_string()),
+                new_batches.len()
+            ),
+            Event::CandidateTrained {
+                model,
+                run,
+                epochs,
+                seconds,
+                holdout_loss,
+                ..
+            } => {
+                format!(
+                    "{model} ({run}): {epochs} epochs in {seconds:.1} s, holdout loss {holdout_loss:.4}"
+                )
+            }
+            Event::Promoted {
+                model,
+                previous,
+                evidence,
+                ..
+            } => format!(
+                "{model} serves (was {}): {}",
+                previous.map_or_else(|| "none".to_string(), |m| m.to_string()),
+                evidence.reason
+            ),
+            Event::Kept { model, reason, .. } => format!("{model} kept, not promoted: {reason}"),
+            Event::AwaitingApproval {
+                model, evidence, ..
+            } => {
+                format!(
+                    "{model} won the gate and awaits approval: {}",
+                    evidence.reason
+                )
+            }
         }
     }
 }
@@ -263,6 +392,7 @@ pub struct Filter {
     pub until: Option<DateTime<Utc>>,
     pub kinds: Vec<String>,
     pub batch: Option<BatchId>,
+    pub model: Option<ModelId>,
     /// Keep only the newest this many (after the other filters).
     pub limit: Option<usize>,
 }
@@ -285,6 +415,11 @@ impl Filter {
         }
         if let Some(b) = self.batch
             && e.event.batch() != Some(b)
+        {
+            return false;
+        }
+        if let Some(m) = self.model
+            && e.event.model() != Some(m)
         {
             return false;
         }

@@ -222,6 +222,7 @@ pub struct Recovery {
     pub audit_reappended: usize,
     pub pending_archived: usize,
     pub pending_dropped: usize,
+    pub serving_rewritten: bool,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
@@ -267,6 +268,16 @@ fn open_with(
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
     rec.pending_archived = archived;
     rec.pending_dropped = dropped;
+    // The store is the authority on which model serves; the `serving` file
+    // is its mirror for read-only commands, rewritten if a crash left it behind.
+    if let Some(id) = store.serving()? {
+        let want = format!("{id}\n");
+        if fs::read_to_string(state.serving()).ok().as_deref() != Some(want.as_str()) {
+            fsutil::write_atomic(&state.serving(), want.as_bytes())
+                .map_err(io_at(&state.serving()))?;
+            rec.serving_rewritten = true;
+        }
+    }
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
     }

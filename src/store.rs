@@ -24,7 +24,7 @@ use sled::transaction::{ConflictableTransactionError, TransactionError, Transact
 use sled::{Transactional, Tree};
 
 use crate::audit::{self, Entry, Event};
-use crate::ids::{AuditSeq, BatchId};
+use crate::ids::{AuditSeq, BatchId, ModelId};
 use crate::ingest::Batch;
 use crate::schema::{ColumnStats, RowMatrix, Schema, Vocab, Vocabularies};
 
@@ -129,6 +129,12 @@ pub struct Store {
 const META_SCHEMA: &[u8] = b"schema";
 const META_FINGERPRINT: &[u8] = b"schema_fingerprint";
 const META_TOTALS: &[u8] = b"totals";
+/// `ModelId` of the serving model.
+pub const META_SERVING: &[u8] = b"serving";
+/// `ModelId` the next trained model gets.
+pub const META_NEXT_MODEL: &[u8] = b"next_model";
+/// Retrain cycles started so far (u64, big-endian).
+pub const META_CYCLES: &[u8] = b"cycles";
 
 impl Store {
     /// Creates a new store at `path` (which must not exist yet).
@@ -376,6 +382,68 @@ impl Store {
             None => (AuditSeq(1), audit::GENESIS.to_string()),
         };
         Entry::seal(seq, time, user, event, &prev)
+    }
+
+    /// Records an event together with changes to `meta` keys, in one
+    /// transaction (promotion: the serving pointer and its audit entry).
+    pub fn record_with_meta(
+        &mut self,
+        event: Event,
+        user: &str,
+        time: chrono::DateTime<chrono::Utc>,
+        meta_values: &[(&[u8], Vec<u8>)],
+    ) -> Result<Entry, StoreError> {
+        let entry = self.seal(event, user, time);
+        let line = entry.line().into_bytes();
+        let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.audit)
+            .transaction(|(meta, audit): &(TransactionalTree, TransactionalTree)| {
+                for (k, v) in meta_values {
+                    meta.insert(*k, v.as_slice())?;
+                }
+                audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                Ok(())
+            });
+        match result {
+            Ok(()) => {}
+            Err(TransactionError::Abort(e)) => return Err(e),
+            Err(TransactionError::Storage(e)) => return Err(self.sled_err(e)),
+        }
+        self.sync()?;
+        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        Ok(entry)
+    }
+
+    /// A `meta` value.
+    pub fn meta_value(&self, key: &[u8]) -> Result<Option<Vec<u8>>, StoreError> {
+        Ok(self
+            .meta
+            .get(key)
+            .map_err(|e| self.sled_err(e))?
+            .map(|v| v.to_vec()))
+    }
+
+    /// The serving model according to the store (the authority; the
+    /// `serving` file is its mirror for readers).
+    pub fn serving(&self) -> Result<Option<ModelId>, StoreError> {
+        Ok(self
+            .meta_value(META_SERVING)?
+            .and_then(|v| ModelId::from_key(&v)))
+    }
+
+    /// The id the next trained model gets.
+    pub fn next_model_id(&self) -> Result<ModelId, StoreError> {
+        Ok(self
+            .meta_value(META_NEXT_MODEL)?
+            .and_then(|v| ModelId::from_key(&v))
+            .unwrap_or(ModelId(1)))
+    }
+
+    /// Number of retrain cycles recorded so far.
+    pub fn cycles(&self) -> Result<u64, StoreError> {
+        Ok(self
+            .meta_value(META_CYCLES)?
+            .and_then(|v| Some(u64::from_be_bytes(v.try_into().ok()?)))
+            .unwrap_or(0))
     }
 
     /// Records an event that touches no data (rejections, duplicates, …).

@@ -20,6 +20,9 @@ pub struct Args {
     /// Only entries about this batch.
     #[arg(long, value_name = "ID")]
     batch: Option<BatchId>,
+    /// Only entries about this model version.
+    #[arg(long, value_name = "ID")]
+    model: Option<crate::ids::ModelId>,
     /// Only the newest N matching entries.
     #[arg(long, value_name = "N")]
     limit: Option<usize>,
@@ -58,6 +61,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         until,
         kinds: args.kind.clone(),
         batch: args.batch,
+        model: args.model,
         limit: args.limit,
     };
     let shown = filter.apply(&entries);

@@ -28,6 +28,11 @@ pub struct Summary {
     /// Category values per column, in order of first appearance.
     pub vocabularies: BTreeMap<String, Vec<String>>,
     pub audit_entries: u64,
+    /// The serving model according to the log.
+    pub serving: Option<crate::ids::ModelId>,
+    pub models_trained: u64,
+    /// The last gate decision, in words.
+    pub last_decision: Option<String>,
 }
 
 impl Summary {
@@ -59,7 +64,15 @@ impl Summary {
                 }
                 Event::BatchRejected { .. } => s.rejected_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
-                Event::Initialized { .. } => {}
+                Event::Promoted { model, .. } => {
+                    s.serving = Some(*model);
+                    s.last_decision = Some(e.event.summary());
+                }
+                Event::Kept { .. } | Event::AwaitingApproval { .. } => {
+                    s.last_decision = Some(e.event.summary())
+                }
+                Event::CandidateTrained { .. } => s.models_trained += 1,
+                Event::Initialized { .. } | Event::CycleStarted { .. } => {}
             }
         }
         s
@@ -100,6 +113,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         "rows        {} in {} batches ({} train, {} holdout)\n",
         summary.rows, summary.batches, summary.train_rows, summary.holdout_rows
     ));
+    out.push_str(&format!(
+        "serving     {}\n",
+        summary
+            .serving
+            .map_or_else(|| "no model yet".to_string(), |m| m.to_string())
+    ));
+    if let Some(d) = &summary.last_decision {
+        out.push_str(&format!("last gate   {d}\n"));
+    }
     out.push_str(&format!(
         "files       {} rejected, {} duplicates\n",
         summary.rejected_files, summary.duplicate_files
