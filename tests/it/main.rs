@@ -1,2 +1,4 @@
 //! The integration suite: one test binary (so the build stays fast) that
 //! drives the real library and the real `tidegate` binary on temp dirs.
+
+mod training;
