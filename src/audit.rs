@@ -74,12 +74,7 @@ impl Event {
     }
 
     /// Every kind name, for `log --kind` validation.
-    pub const KINDS: &'static [&'static str] = &[
-        "initialized",
-        "batch-accepted",
-        "batch-rejected",
-        "batch-duplicate",
-    ];
+    pub const KINDS: &'static [&'static str] = &["initialized", "batch-accepted", "batch-rejected", "batch-duplicate"];
 
     /// The batch an event is about, if any.
     pub fn batch(&self) -> Option<BatchId> {
@@ -93,48 +88,20 @@ impl Event {
     /// One line saying what happened, for tables.
     pub fn summary(&self) -> String {
         match self {
-            Event::Initialized {
-                target,
-                task,
-                columns,
-                ..
-            } => {
-                format!(
-                    "state created: {task} of {target} from {} columns",
-                    columns.len()
-                )
+            Event::Initialized { target, task, columns, .. } => {
+                format!("state created: {task} of {target} from {} columns", columns.len())
             }
-            Event::BatchAccepted {
-                batch,
-                file,
-                rows,
-                train_rows,
-                holdout_rows,
-                new_categories,
-                ..
-            } => {
-                let mut s = format!(
-                    "{batch} from {file}: {rows} rows ({train_rows} train, {holdout_rows} holdout)"
-                );
+            Event::BatchAccepted { batch, file, rows, train_rows, holdout_rows, new_categories, .. } => {
+                let mut s = format!("{batch} from {file}: {rows} rows ({train_rows} train, {holdout_rows} holdout)");
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
                 }
                 s
             }
-            Event::BatchRejected {
-                file,
-                problems,
-                first_problem,
-                ..
-            } => {
-                format!(
-                    "{file} refused ({problems} problem{}): {first_problem}",
-                    if *problems == 1 { "" } else { "s" }
-                )
+            Event::BatchRejected { file, problems, first_problem, .. } => {
+                format!("{file} refused ({problems} problem{}): {first_problem}", if *problems == 1 { "" } else { "s" })
             }
-            Event::BatchDuplicate {
-                file, duplicate_of, ..
-            } => format!("{file} is a duplicate of batch {duplicate_of}; nothing stored"),
+            Event::BatchDuplicate { file, duplicate_of, .. } => format!("{file} is a duplicate of batch {duplicate_of}; nothing stored"),
         }
     }
 }
@@ -184,9 +151,7 @@ impl Entry {
     }
 
     pub fn timestamp(&self) -> Option<DateTime<Utc>> {
-        DateTime::parse_from_rfc3339(&self.time)
-            .ok()
-            .map(|t| t.with_timezone(&Utc))
+        DateTime::parse_from_rfc3339(&self.time).ok().map(|t| t.with_timezone(&Utc))
     }
 }
 
@@ -217,38 +182,23 @@ impl std::fmt::Display for ChainProblem {
 
 /// Checks that `lines` form an intact, contiguous chain from entry 1.
 /// Returns the parsed entries, or the first problem.
-pub fn verify_chain<'a>(
-    lines: impl IntoIterator<Item = &'a [u8]>,
-) -> Result<Vec<Entry>, ChainProblem> {
+pub fn verify_chain<'a>(lines: impl IntoIterator<Item = &'a [u8]>) -> Result<Vec<Entry>, ChainProblem> {
     let mut prev = GENESIS.to_string();
     let mut out = Vec::new();
     for (i, line) in lines.into_iter().enumerate() {
         let expected = i as u64 + 1;
-        let fail = |reason: String| ChainProblem {
-            seq: expected,
-            reason,
-        };
-        let value: serde_json::Value =
-            serde_json::from_slice(line).map_err(|e| fail(format!("not valid JSON: {e}")))?;
-        let stated = value
-            .get("hash")
-            .and_then(|h| h.as_str())
-            .ok_or_else(|| fail("has no hash".into()))?
-            .to_string();
+        let fail = |reason: String| ChainProblem { seq: expected, reason };
+        let value: serde_json::Value = serde_json::from_slice(line).map_err(|e| fail(format!("not valid JSON: {e}")))?;
+        let stated = value.get("hash").and_then(|h| h.as_str()).ok_or_else(|| fail("has no hash".into()))?.to_string();
         let entry = Entry::from_line(line).map_err(|e| fail(format!("not a valid entry: {e}")))?;
         if entry.seq.0 != expected {
-            return Err(fail(format!(
-                "sequence number is {} where {expected} was expected (an entry was deleted, inserted or moved)",
-                entry.seq.0
-            )));
+            return Err(fail(format!("sequence number is {} where {expected} was expected (an entry was deleted, inserted or moved)", entry.seq.0)));
         }
         if entry.prev != prev {
             return Err(fail("does not follow the entry before it (prev hash differs): an entry before it was changed, deleted or moved".into()));
         }
         if content_hash(&value) != stated {
-            return Err(fail(
-                "content does not match its hash: the entry was edited".into(),
-            ));
+            return Err(fail("content does not match its hash: the entry was edited".into()));
         }
         prev = stated;
         out.push(entry);
@@ -323,29 +273,20 @@ pub fn parse_when(s: &str, now: DateTime<Utc>) -> Result<DateTime<Utc>, String> 
         };
         if let Some(secs) = secs {
             if n >= 0 {
-                if let Some(t) = n
-                    .checked_mul(secs)
-                    .and_then(|x| now.checked_sub_signed(chrono::TimeDelta::try_seconds(x)?))
-                {
+                if let Some(t) = n.checked_mul(secs).and_then(|x| now.checked_sub_signed(chrono::TimeDelta::try_seconds(x)?)) {
                     return Ok(t);
                 }
             }
         }
     }
-    Err(format!(
-        "{s:?} is not a time: use RFC 3339 (2026-12-01T08:00:00Z), a date (2026-12-01) or a span back from now (30m, 12h, 7d, 2w)"
-    ))
+    Err(format!("{s:?} is not a time: use RFC 3339 (2026-12-01T08:00:00Z), a date (2026-12-01) or a span back from now (30m, 12h, 7d, 2w)"))
 }
 
 /// Failures of the `audit.jsonl` file.
 #[derive(Debug, thiserror::Error)]
 pub enum MirrorError {
     #[error("{path}:{line}: not an audit entry ({reason}); run `tidegate verify`")]
-    BadLine {
-        path: PathBuf,
-        line: usize,
-        reason: String,
-    },
+    BadLine { path: PathBuf, line: usize, reason: String },
     #[error("{path}: {source}")]
     Io {
         path: PathBuf,
@@ -369,10 +310,7 @@ impl Mirror {
     }
 
     fn io(&self, source: std::io::Error) -> MirrorError {
-        MirrorError::Io {
-            path: self.path.clone(),
-            source,
-        }
+        MirrorError::Io { path: self.path.clone(), source }
     }
 
     /// The complete lines of the file (a missing file has none). A trailing
@@ -384,11 +322,7 @@ impl Mirror {
             Err(e) => return Err(self.io(e)),
         };
         let complete = bytes.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
-        Ok(bytes[..complete]
-            .split(|&b| b == b'\n')
-            .filter(|l| !l.is_empty())
-            .map(<[u8]>::to_vec)
-            .collect())
+        Ok(bytes[..complete].split(|&b| b == b'\n').filter(|l| !l.is_empty()).map(<[u8]>::to_vec).collect())
     }
 
     /// Every entry in the file, parsed (without checking the chain; that is
@@ -398,11 +332,7 @@ impl Mirror {
             .iter()
             .enumerate()
             .map(|(i, l)| {
-                Entry::from_line(l).map_err(|e| MirrorError::BadLine {
-                    path: self.path.clone(),
-                    line: i + 1,
-                    reason: e.to_string(),
-                })
+                Entry::from_line(l).map_err(|e| MirrorError::BadLine { path: self.path.clone(), line: i + 1, reason: e.to_string() })
             })
             .collect()
     }
@@ -417,11 +347,7 @@ impl Mirror {
             buf.extend_from_slice(l);
             buf.push(b'\n');
         }
-        let mut f = fs::OpenOptions::new()
-            .create(true)
-            .append(true)
-            .open(&self.path)
-            .map_err(|e| self.io(e))?;
+        let mut f = fs::OpenOptions::new().create(true).append(true).open(&self.path).map_err(|e| self.io(e))?;
         f.write_all(&buf).map_err(|e| self.io(e))?;
         f.sync_all().map_err(|e| self.io(e))?;
         Ok(())
@@ -438,22 +364,12 @@ impl Mirror {
         };
         let complete = bytes.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
         if complete < bytes.len() {
-            let f = fs::OpenOptions::new()
-                .write(true)
-                .open(&self.path)
-                .map_err(|e| self.io(e))?;
+            let f = fs::OpenOptions::new().write(true).open(&self.path).map_err(|e| self.io(e))?;
             f.set_len(complete as u64).map_err(|e| self.io(e))?;
             f.sync_all().map_err(|e| self.io(e))?;
         }
-        let have = bytes[..complete]
-            .split(|&b| b == b'\n')
-            .filter(|l| !l.is_empty())
-            .count();
-        let missing: Vec<&[u8]> = stored
-            .iter()
-            .skip(have)
-            .map(|(_, l)| l.as_slice())
-            .collect();
+        let have = bytes[..complete].split(|&b| b == b'\n').filter(|l| !l.is_empty()).count();
+        let missing: Vec<&[u8]> = stored.iter().skip(have).map(|(_, l)| l.as_slice()).collect();
         self.append(&missing)?;
         Ok(missing.len())
     }
@@ -475,11 +391,7 @@ mod tests {
                     AuditSeq(i),
                     t("2026-12-01T00:00:00Z") + chrono::TimeDelta::hours(i as i64),
                     "ana",
-                    Event::BatchDuplicate {
-                        file: format!("f{i}.csv"),
-                        hash: "ab".into(),
-                        duplicate_of: BatchId(i),
-                    },
+                    Event::BatchDuplicate { file: format!("f{i}.csv"), hash: "ab".into(), duplicate_of: BatchId(i) },
                     &prev,
                 );
                 prev = e.hash.clone();
@@ -508,10 +420,7 @@ mod tests {
     #[test]
     fn edit_is_found_at_the_edited_entry() {
         let mut l = lines(&chain(5));
-        l[2] = String::from_utf8(l[2].clone())
-            .unwrap()
-            .replace("f3.csv", "g3.csv")
-            .into_bytes();
+        l[2] = String::from_utf8(l[2].clone()).unwrap().replace("f3.csv", "g3.csv").into_bytes();
         assert_eq!(check(&l).unwrap_err().seq, 3);
     }
 
@@ -544,33 +453,14 @@ mod tests {
     #[test]
     fn filters() {
         let entries = chain(6);
-        let f = Filter {
-            since: Some(t("2026-12-01T02:00:00Z")),
-            until: Some(t("2026-12-01T05:00:00Z")),
-            ..Filter::default()
-        };
+        let f = Filter { since: Some(t("2026-12-01T02:00:00Z")), until: Some(t("2026-12-01T05:00:00Z")), ..Filter::default() };
         let seqs: Vec<u64> = f.apply(&entries).iter().map(|e| e.seq.0).collect();
         assert_eq!(seqs, vec![2, 3, 4, 5]);
-        let f = Filter {
-            limit: Some(2),
-            ..Filter::default()
-        };
-        assert_eq!(
-            f.apply(&entries)
-                .iter()
-                .map(|e| e.seq.0)
-                .collect::<Vec<_>>(),
-            vec![5, 6]
-        );
-        let f = Filter {
-            kinds: vec!["batch-accepted".into()],
-            ..Filter::default()
-        };
+        let f = Filter { limit: Some(2), ..Filter::default() };
+        assert_eq!(f.apply(&entries).iter().map(|e| e.seq.0).collect::<Vec<_>>(), vec![5, 6]);
+        let f = Filter { kinds: vec!["batch-accepted".into()], ..Filter::default() };
         assert!(f.apply(&entries).is_empty());
-        let f = Filter {
-            batch: Some(BatchId(4)),
-            ..Filter::default()
-        };
+        let f = Filter { batch: Some(BatchId(4)), ..Filter::default() };
         assert_eq!(f.apply(&entries).len(), 1);
     }
 
@@ -579,14 +469,8 @@ mod tests {
         let now = t("2026-12-08T12:00:00Z");
         assert_eq!(parse_when("7d", now).unwrap(), t("2026-12-01T12:00:00Z"));
         assert_eq!(parse_when("90m", now).unwrap(), t("2026-12-08T10:30:00Z"));
-        assert_eq!(
-            parse_when("2026-12-01", now).unwrap(),
-            t("2026-12-01T00:00:00Z")
-        );
-        assert_eq!(
-            parse_when("2026-12-01T01:00:00+01:00", now).unwrap(),
-            t("2026-12-01T00:00:00Z")
-        );
+        assert_eq!(parse_when("2026-12-01", now).unwrap(), t("2026-12-01T00:00:00Z"));
+        assert_eq!(parse_when("2026-12-01T01:00:00+01:00", now).unwrap(), t("2026-12-01T00:00:00Z"));
         assert!(parse_when("yesterday", now).is_err());
         assert!(parse_when("-3d", now).is_err());
         assert!(parse_when("d", now).is_err());
@@ -597,10 +481,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let m = Mirror::new(dir.path().join("audit.jsonl"));
         let entries = chain(4);
-        let stored: Vec<(AuditSeq, Vec<u8>)> = entries
-            .iter()
-            .map(|e| (e.seq, e.line().into_bytes()))
-            .collect();
+        let stored: Vec<(AuditSeq, Vec<u8>)> = entries.iter().map(|e| (e.seq, e.line().into_bytes())).collect();
         m.append(&[&stored[0].1]).unwrap();
         // A crash in the middle of writing entry 2.
         let mut f = fs::OpenOptions::new().append(true).open(m.path()).unwrap();

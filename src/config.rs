@@ -293,7 +293,10 @@ impl Config {
     /// Parses and validates config text; `path` is only used in messages.
     pub fn parse(text: &str, path: &Path) -> Result<Config, ConfigError> {
         let config: Config = toml::from_str(text).map_err(|e| {
-            let (line, column) = e.span().map(|s| line_col(text, s.start)).unwrap_or((1, 1));
+            let (line, column) = e
+                .span()
+                .map(|s| line_col(text, s.start))
+                .unwrap_or((1, 1));
             ConfigError::Invalid {
                 path: path.to_path_buf(),
                 line,
@@ -328,61 +331,34 @@ impl Config {
             if name.is_empty() || name.trim() != name || name.chars().any(char::is_control) {
                 return fail(
                     col.name.span(),
-                    format!(
-                        "column name {name:?} must be non-empty, without surrounding spaces or control characters"
-                    ),
+                    format!("column name {name:?} must be non-empty, without surrounding spaces or control characters"),
                 );
             }
             if !seen.insert(name.as_str()) {
-                return fail(
-                    col.name.span(),
-                    format!("column {name:?} is listed twice; each column name must be unique"),
-                );
+                return fail(col.name.span(), format!("column {name:?} is listed twice; each column name must be unique"));
             }
             if col.kind == ColumnKind::Category {
                 for bound in [&col.min, &col.max].into_iter().flatten() {
-                    return fail(
-                        bound.span(),
-                        format!(
-                            "column {name:?} is a category; min and max apply to number columns only"
-                        ),
-                    );
+                    return fail(bound.span(), format!("column {name:?} is a category; min and max apply to number columns only"));
                 }
             }
             for bound in [&col.min, &col.max].into_iter().flatten() {
                 if !bound.get_ref().is_finite() {
-                    return fail(
-                        bound.span(),
-                        format!("bound of column {name:?} must be a finite number"),
-                    );
+                    return fail(bound.span(), format!("bound of column {name:?} must be a finite number"));
                 }
             }
             if let (Some(lo), Some(hi)) = (&col.min, &col.max) {
                 if lo.get_ref() > hi.get_ref() {
-                    return fail(
-                        lo.span(),
-                        format!(
-                            "column {name:?} has min {} above max {}",
-                            lo.get_ref(),
-                            hi.get_ref()
-                        ),
-                    );
+                    return fail(lo.span(), format!("column {name:?} has min {} above max {}", lo.get_ref(), hi.get_ref()));
                 }
             }
         }
         let target = data.target.get_ref();
         let Some(target_col) = data.columns.iter().find(|c| c.name.get_ref() == target) else {
-            let names: Vec<&str> = data
-                .columns
-                .iter()
-                .map(|c| c.name.get_ref().as_str())
-                .collect();
+            let names: Vec<&str> = data.columns.iter().map(|c| c.name.get_ref().as_str()).collect();
             return fail(
                 data.target.span(),
-                format!(
-                    "target {target:?} is not one of the columns; allowed: {}",
-                    names.join(", ")
-                ),
+                format!("target {target:?} is not one of the columns; allowed: {}", names.join(", ")),
             );
         };
         let wanted = match data.task {
@@ -392,23 +368,14 @@ impl Config {
         if target_col.kind != wanted {
             return fail(
                 data.target.span(),
-                format!(
-                    "task {} needs a target column of kind {wanted}, but {target:?} is {}",
-                    data.task, target_col.kind
-                ),
+                format!("task {} needs a target column of kind {wanted}, but {target:?} is {}", data.task, target_col.kind),
             );
         }
         if !target_col.required {
-            return fail(
-                target_col.name.span(),
-                format!("target column {target:?} must be required"),
-            );
+            return fail(target_col.name.span(), format!("target column {target:?} must be required"));
         }
         if data.columns.len() < 2 {
-            return fail(
-                data.target.span(),
-                "add at least one input column besides the target".into(),
-            );
+            return fail(data.target.span(), "add at least one input column besides the target".into());
         }
         let hf = *data.holdout_fraction.get_ref();
         if !(hf > 0.0 && hf < 1.0) {
@@ -419,70 +386,23 @@ impl Config {
         }
         let whole = |key: &str| key_span(text, key);
         if data.max_field_bytes == 0 {
-            return fail(
-                whole("max_field_bytes"),
-                "max_field_bytes must be at least 1".into(),
-            );
+            return fail(whole("max_field_bytes"), "max_field_bytes must be at least 1".into());
         }
         if data.max_file_bytes == 0 {
-            return fail(
-                whole("max_file_bytes"),
-                "max_file_bytes must be at least 1".into(),
-            );
+            return fail(whole("max_file_bytes"), "max_file_bytes must be at least 1".into());
         }
         let t = &self.training;
         let checks: [(&str, bool, &str); 10] = [
-            (
-                "batch_size",
-                t.batch_size >= 1,
-                "batch_size must be at least 1",
-            ),
-            (
-                "learning_rate",
-                t.learning_rate > 0.0 && t.learning_rate.is_finite(),
-                "learning_rate must be a positive number",
-            ),
-            (
-                "warm_learning_rate",
-                t.warm_learning_rate
-                    .is_none_or(|r| r > 0.0 && r.is_finite()),
-                "warm_learning_rate must be a positive number",
-            ),
-            (
-                "max_seconds",
-                t.max_seconds > 0.0 && t.max_seconds.is_finite(),
-                "max_seconds must be a positive number",
-            ),
-            (
-                "validation_fraction",
-                t.validation_fraction > 0.0 && t.validation_fraction < 1.0,
-                "validation_fraction must be between 0 and 1 (exclusive)",
-            ),
-            (
-                "replay_ratio",
-                t.replay_ratio >= 0.0 && t.replay_ratio.is_finite(),
-                "replay_ratio must be 0 or more",
-            ),
-            (
-                "shrink",
-                t.shrink > 0.0 && t.shrink <= 1.0,
-                "shrink must be in (0, 1]; 1 turns shrink-and-perturb off",
-            ),
-            (
-                "perturb",
-                t.perturb >= 0.0 && t.perturb <= 1.0,
-                "perturb must be in [0, 1]; 0 turns shrink-and-perturb off",
-            ),
-            (
-                "cold_epochs",
-                t.cold_epochs >= 1,
-                "cold_epochs must be at least 1",
-            ),
-            (
-                "warm_epochs",
-                t.warm_epochs >= 1,
-                "warm_epochs must be at least 1",
-            ),
+            ("batch_size", t.batch_size >= 1, "batch_size must be at least 1"),
+            ("learning_rate", t.learning_rate > 0.0 && t.learning_rate.is_finite(), "learning_rate must be a positive number"),
+            ("warm_learning_rate", t.warm_learning_rate.is_none_or(|r| r > 0.0 && r.is_finite()), "warm_learning_rate must be a positive number"),
+            ("max_seconds", t.max_seconds > 0.0 && t.max_seconds.is_finite(), "max_seconds must be a positive number"),
+            ("validation_fraction", t.validation_fraction > 0.0 && t.validation_fraction < 1.0, "validation_fraction must be between 0 and 1 (exclusive)"),
+            ("replay_ratio", t.replay_ratio >= 0.0 && t.replay_ratio.is_finite(), "replay_ratio must be 0 or more"),
+            ("shrink", t.shrink > 0.0 && t.shrink <= 1.0, "shrink must be in (0, 1]; 1 turns shrink-and-perturb off"),
+            ("perturb", t.perturb >= 0.0 && t.perturb <= 1.0, "perturb must be in [0, 1]; 0 turns shrink-and-perturb off"),
+            ("cold_epochs", t.cold_epochs >= 1, "cold_epochs must be at least 1"),
+            ("warm_epochs", t.warm_epochs >= 1, "warm_epochs must be at least 1"),
         ];
         for (key, ok, msg) in checks {
             if !ok {
@@ -491,31 +411,11 @@ impl Config {
         }
         let m = &self.model;
         let checks: [(&str, bool, &str); 5] = [
-            (
-                "hidden",
-                m.hidden.iter().all(|&w| (1..=65536).contains(&w)),
-                "hidden layer widths must be between 1 and 65536",
-            ),
-            (
-                "dropout",
-                (0.0..1.0).contains(&m.dropout),
-                "dropout must be in [0, 1)",
-            ),
-            (
-                "l2",
-                m.l2 >= 0.0 && m.l2.is_finite(),
-                "l2 must be 0 or more",
-            ),
-            (
-                "l1",
-                m.l1 >= 0.0 && m.l1.is_finite(),
-                "l1 must be 0 or more",
-            ),
-            (
-                "init_scale",
-                m.init_scale > 0.0 && m.init_scale.is_finite(),
-                "init_scale must be a positive number",
-            ),
+            ("hidden", m.hidden.iter().all(|&w| (1..=65536).contains(&w)), "hidden layer widths must be between 1 and 65536"),
+            ("dropout", (0.0..1.0).contains(&m.dropout), "dropout must be in [0, 1)"),
+            ("l2", m.l2 >= 0.0 && m.l2.is_finite(), "l2 must be 0 or more"),
+            ("l1", m.l1 >= 0.0 && m.l1.is_finite(), "l1 must be 0 or more"),
+            ("init_scale", m.init_scale > 0.0 && m.init_scale.is_finite(), "init_scale must be a positive number"),
         ];
         for (key, ok, msg) in checks {
             if !ok {
@@ -524,16 +424,8 @@ impl Config {
         }
         let g = &self.gate;
         let checks: [(&str, bool, &str); 2] = [
-            (
-                "min_improvement",
-                g.min_improvement >= 0.0 && g.min_improvement < 1.0,
-                "min_improvement is relative: use a value in [0, 1), e.g. 0.01 for 1%",
-            ),
-            (
-                "alpha",
-                g.alpha > 0.0 && g.alpha < 1.0,
-                "alpha must be between 0 and 1 (exclusive); 0.05 is usual",
-            ),
+            ("min_improvement", g.min_improvement >= 0.0 && g.min_improvement < 1.0, "min_improvement is relative: use a value in [0, 1), e.g. 0.01 for 1%"),
+            ("alpha", g.alpha > 0.0 && g.alpha < 1.0, "alpha must be between 0 and 1 (exclusive); 0.05 is usual"),
         ];
         for (key, ok, msg) in checks {
             if !ok {
@@ -542,23 +434,14 @@ impl Config {
         }
         let d = &self.daemon;
         if !(d.settle_seconds >= 0.0 && d.settle_seconds.is_finite()) {
-            return fail(
-                whole("settle_seconds"),
-                "settle_seconds must be 0 or more".into(),
-            );
+            return fail(whole("settle_seconds"), "settle_seconds must be 0 or more".into());
         }
         if !(d.rescan_seconds >= 1.0 && d.rescan_seconds.is_finite()) {
-            return fail(
-                whole("rescan_seconds"),
-                "rescan_seconds must be at least 1".into(),
-            );
+            return fail(whole("rescan_seconds"), "rescan_seconds must be at least 1".into());
         }
         if let Some(at) = &d.train_at {
             if parse_hh_mm(at).is_none() {
-                return fail(
-                    whole("train_at"),
-                    format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"),
-                );
+                return fail(whole("train_at"), format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"));
             }
         }
         Ok(())
@@ -660,12 +543,7 @@ kind = "number"
 
     fn err_at(text: &str) -> (usize, usize, String) {
         match parse(text) {
-            Err(ConfigError::Invalid {
-                line,
-                column,
-                message,
-                ..
-            }) => (line, column, message),
+            Err(ConfigError::Invalid { line, column, message, .. }) => (line, column, message),
             other => panic!("expected an invalid-config error, got {other:?}"),
         }
     }
@@ -687,10 +565,7 @@ kind = "number"
 
     #[test]
     fn unknown_key_points_at_its_line() {
-        let text = MINIMAL.replace(
-            "task = \"regression\"",
-            "task = \"regression\"\ntargte = \"y\"",
-        );
+        let text = MINIMAL.replace("task = \"regression\"", "task = \"regression\"\ntargte = \"y\"");
         let (line, col, msg) = err_at(&text);
         assert_eq!((line, col), (5, 1), "{msg}");
         assert!(msg.contains("targte"), "{msg}");
@@ -698,10 +573,7 @@ kind = "number"
 
     #[test]
     fn bad_enum_value_says_what_is_allowed() {
-        let text = MINIMAL.replace(
-            "kind = \"number\"\n\n[[data.columns]]\nname = \"y\"",
-            "kind = \"text\"\n\n[[data.columns]]\nname = \"y\"",
-        );
+        let text = MINIMAL.replace("kind = \"number\"\n\n[[data.columns]]\nname = \"y\"", "kind = \"text\"\n\n[[data.columns]]\nname = \"y\"");
         let (line, _, msg) = err_at(&text);
         assert_eq!(line, 8);
         assert!(msg.contains("number") && msg.contains("category"), "{msg}");
@@ -740,10 +612,7 @@ kind = "number"
 
     #[test]
     fn holdout_fraction_bounds() {
-        let text = MINIMAL.replace(
-            "task = \"regression\"",
-            "task = \"regression\"\nholdout_fraction = 1.5",
-        );
+        let text = MINIMAL.replace("task = \"regression\"", "task = \"regression\"\nholdout_fraction = 1.5");
         let (line, col, _) = err_at(&text);
         assert_eq!((line, col), (5, 20));
     }

@@ -15,25 +15,8 @@ use crate::rng::Rng;
 /// Seed of the committed demo files.
 pub const SEED: u64 = 20_260_302;
 
-const TOWNS: [&str; 8] = [
-    "Ashby",
-    "Brackwell",
-    "Corrin",
-    "Dunmore",
-    "Elstead",
-    "Farrow",
-    "Glenholm",
-    "Harwick",
-];
-const STREETS: [&str; 7] = [
-    "Market St",
-    "Quay",
-    "Station Rd",
-    "High St",
-    "Mill Lane",
-    "Church Sq",
-    "Bridge End",
-];
+const TOWNS: [&str; 8] = ["Ashby", "Brackwell", "Corrin", "Dunmore", "Elstead", "Farrow", "Glenholm", "Harwick"];
+const STREETS: [&str; 7] = ["Market St", "Quay", "Station Rd", "High St", "Mill Lane", "Church Sq", "Bridge End"];
 /// Bread lines and their typical daily sales per shop.
 const BREADS: [(&str, f64); 12] = [
     ("white tin", 62.0),
@@ -89,12 +72,7 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
     let mut rng = Rng::new(seed);
     let mut shop_states: Vec<ShopState> = shops()
         .into_iter()
-        .map(|name| ShopState {
-            name,
-            scale: 0.0,
-            warmth: 0.0,
-            prev: vec![None; BREADS.len()],
-        })
+        .map(|name| ShopState { name, scale: 0.0, warmth: 0.0, prev: vec![None; BREADS.len()] })
         .collect();
     for s in &mut shop_states {
         s.scale = 0.6 + 0.9 * rng.uniform();
@@ -104,27 +82,17 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
     // Nights start on Monday 2 March 2026.
     for night in 1..=NIGHTS {
         if night == NEW_SHOP_NIGHT {
-            shop_states.push(ShopState {
-                name: NEW_SHOP.into(),
-                scale: 1.3,
-                warmth: 1.2,
-                prev: vec![None; BREADS.len()],
-            });
+            shop_states.push(ShopState { name: NEW_SHOP.into(), scale: 1.3, warmth: 1.2, prev: vec![None; BREADS.len()] });
         }
         let day = night - 1;
         let weekday = day % 7;
         let season = (day as f64 / 40.0).sin();
         let temp = 9.0 + 6.0 * season + 3.0 * rng.normal();
-        let mut csv =
-            String::from("shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n");
+        let mut csv = String::from("shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n");
         for s in &mut shop_states {
             // Each shop has its own weather, close to the region's.
             let t = (temp + 1.5 * rng.normal()).clamp(-15.0, 35.0);
-            let rain = if rng.uniform() < 0.35 {
-                (rng.normal().abs() * 6.0).min(60.0)
-            } else {
-                0.0
-            };
+            let rain = if rng.uniform() < 0.35 { (rng.normal().abs() * 6.0).min(60.0) } else { 0.0 };
             for (bi, (bread, base)) in BREADS.iter().enumerate() {
                 // Some lines are sold out or not baked on some days.
                 if rng.uniform() < 0.06 {
@@ -141,34 +109,16 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                     _ => 1.0,
                 };
                 // Warm days sell fewer dense loaves and more light ones.
-                let heat = if *base > 30.0 {
-                    1.0 + 0.012 * s.warmth * (t - 10.0)
-                } else {
-                    1.0 - 0.01 * s.warmth * (t - 10.0)
-                };
+                let heat = if *base > 30.0 { 1.0 + 0.012 * s.warmth * (t - 10.0) } else { 1.0 - 0.01 * s.warmth * (t - 10.0) };
                 let wet = 1.0 - 0.012 * rain;
-                let shift = if night >= SHIFT_NIGHT && s.name.starts_with(SHIFT_TOWN) {
-                    1.45
-                } else {
-                    1.0
-                };
-                let mean =
-                    base * s.scale * WEEKDAY_FACTOR[weekday] * heat * wet * promo_factor * shift;
+                let shift = if night >= SHIFT_NIGHT && s.name.starts_with(SHIFT_TOWN) { 1.45 } else { 1.0 };
+                let mean = base * s.scale * WEEKDAY_FACTOR[weekday] * heat * wet * promo_factor * shift;
                 let sold = (mean + (mean.sqrt() + 1.0) * rng.normal()).round().max(0.0);
                 let prev = s.prev[bi];
                 s.prev[bi] = Some(sold);
                 let prev_text = prev.map_or(String::new(), |p| format!("{p}"));
-                let shop_field = if s.name.contains(',') {
-                    format!("\"{}\"", s.name)
-                } else {
-                    s.name.clone()
-                };
-                writeln!(
-                    csv,
-                    "{shop_field},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}",
-                    WEEKDAYS[weekday]
-                )
-                .expect("write to String");
+                let shop_field = if s.name.contains(',') { format!("\"{}\"", s.name) } else { s.name.clone() };
+                writeln!(csv, "{shop_field},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}", WEEKDAYS[weekday]).expect("write to String");
             }
         }
         if night == BAD_NIGHT {

@@ -18,10 +18,7 @@ pub fn sync_dir(path: &Path) -> std::io::Result<()> {
 }
 
 fn temp_path(dest: &Path) -> PathBuf {
-    let name = dest
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
+    let name = dest.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
     let dir = dest.parent().unwrap_or(Path::new("."));
     dir.join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
 }
@@ -31,11 +28,7 @@ fn temp_path(dest: &Path) -> PathBuf {
 pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let tmp = temp_path(dest);
     let result = (|| {
-        let mut f = fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)?;
+        let mut f = fs::OpenOptions::new().write(true).create(true).truncate(true).open(&tmp)?;
         f.write_all(bytes)?;
         f.sync_all()?;
         fs::rename(&tmp, dest)?;
@@ -52,11 +45,7 @@ pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
 pub fn write_new(dest: &Path, bytes: &[u8]) -> std::io::Result<bool> {
     let tmp = temp_path(dest);
     let result = (|| {
-        let mut f = fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)?;
+        let mut f = fs::OpenOptions::new().write(true).create(true).truncate(true).open(&tmp)?;
         f.write_all(bytes)?;
         f.sync_all()?;
         drop(f);
@@ -111,11 +100,7 @@ mod tests {
         assert!(!write_new(&p, b"three").unwrap());
         assert_eq!(fs::read(&p).unwrap(), b"two");
         assert!(write_new(&d.path().join("y"), b"new").unwrap());
-        assert_eq!(
-            fs::read_dir(d.path()).unwrap().count(),
-            2,
-            "no temp files left"
-        );
+        assert_eq!(fs::read_dir(d.path()).unwrap().count(), 2, "no temp files left");
         fs::write(d.path().join(format!("{TEMP_PREFIX}9-z")), b"stale").unwrap();
         assert_eq!(remove_stale_temps(d.path()).unwrap(), 1);
     }

@@ -38,26 +38,12 @@ pub struct RawFile {
 pub enum ReadError {
     #[error("{path}: is a symbolic link; tidegate only takes regular files (copy the file itself)")]
     Symlink { path: PathBuf },
-    #[error(
-        "{path}: is not a regular file (a directory, FIFO, socket or device); tidegate only takes regular files"
-    )]
+    #[error("{path}: is not a regular file (a directory, FIFO, socket or device); tidegate only takes regular files")]
     NotRegular { path: PathBuf },
-    #[error(
-        "{path}: is {size} bytes, over the limit of {limit} bytes (data.max_file_bytes); split the file or raise the limit"
-    )]
-    TooLarge {
-        path: PathBuf,
-        size: u64,
-        limit: u64,
-    },
-    #[error(
-        "{path}: changed size while it was read ({before} then {after} bytes); publish files by writing elsewhere and renaming"
-    )]
-    Changed {
-        path: PathBuf,
-        before: u64,
-        after: u64,
-    },
+    #[error("{path}: is {size} bytes, over the limit of {limit} bytes (data.max_file_bytes); split the file or raise the limit")]
+    TooLarge { path: PathBuf, size: u64, limit: u64 },
+    #[error("{path}: changed size while it was read ({before} then {after} bytes); publish files by writing elsewhere and renaming")]
+    Changed { path: PathBuf, before: u64, after: u64 },
     #[error("{path}: cannot read: {source}")]
     Io {
         path: PathBuf,
@@ -76,63 +62,35 @@ impl ReadError {
 /// Reads a regular file once, refusing links, special files and files over
 /// the limit before any byte is read.
 pub fn read_file(path: &Path, max_bytes: u64) -> Result<RawFile, ReadError> {
-    let io = |source| ReadError::Io {
-        path: path.to_path_buf(),
-        source,
-    };
+    let io = |source| ReadError::Io { path: path.to_path_buf(), source };
     let meta = fs::symlink_metadata(path).map_err(io)?;
     if meta.file_type().is_symlink() {
-        return Err(ReadError::Symlink {
-            path: path.to_path_buf(),
-        });
+        return Err(ReadError::Symlink { path: path.to_path_buf() });
     }
     if !meta.file_type().is_file() {
-        return Err(ReadError::NotRegular {
-            path: path.to_path_buf(),
-        });
+        return Err(ReadError::NotRegular { path: path.to_path_buf() });
     }
     if meta.len() > max_bytes {
-        return Err(ReadError::TooLarge {
-            path: path.to_path_buf(),
-            size: meta.len(),
-            limit: max_bytes,
-        });
+        return Err(ReadError::TooLarge { path: path.to_path_buf(), size: meta.len(), limit: max_bytes });
     }
     let mut file = open_no_follow(path).map_err(io)?;
     let opened = file.metadata().map_err(io)?;
     if !opened.file_type().is_file() {
-        return Err(ReadError::NotRegular {
-            path: path.to_path_buf(),
-        });
+        return Err(ReadError::NotRegular { path: path.to_path_buf() });
     }
     let mut bytes = Vec::with_capacity(usize::try_from(opened.len()).unwrap_or(0));
     // Read one byte past the limit so a file that grows is still caught.
-    file.by_ref()
-        .take(max_bytes + 1)
-        .read_to_end(&mut bytes)
-        .map_err(io)?;
+    file.by_ref().take(max_bytes + 1).read_to_end(&mut bytes).map_err(io)?;
     let read = bytes.len() as u64;
     if read > max_bytes {
-        return Err(ReadError::TooLarge {
-            path: path.to_path_buf(),
-            size: read,
-            limit: max_bytes,
-        });
+        return Err(ReadError::TooLarge { path: path.to_path_buf(), size: read, limit: max_bytes });
     }
     let after = file.metadata().map_err(io)?.len();
     if read != opened.len() || after != read {
-        return Err(ReadError::Changed {
-            path: path.to_path_buf(),
-            before: opened.len(),
-            after: after.max(read),
-        });
+        return Err(ReadError::Changed { path: path.to_path_buf(), before: opened.len(), after: after.max(read) });
     }
     let hash = blake3::hash(&bytes);
-    Ok(RawFile {
-        path: path.to_path_buf(),
-        bytes,
-        hash,
-    })
+    Ok(RawFile { path: path.to_path_buf(), bytes, hash })
 }
 
 fn open_no_follow(path: &Path) -> std::io::Result<fs::File> {
@@ -141,10 +99,7 @@ fn open_no_follow(path: &Path) -> std::io::Result<fs::File> {
     // open, and a FIFO swapped in does not block the open.
     const O_NOFOLLOW: i32 = 0o400000;
     const O_NONBLOCK: i32 = 0o4000;
-    fs::OpenOptions::new()
-        .read(true)
-        .custom_flags(O_NOFOLLOW | O_NONBLOCK)
-        .open(path)
+    fs::OpenOptions::new().read(true).custom_flags(O_NOFOLLOW | O_NONBLOCK).open(path)
 }
 
 /// One reason a file was refused.
@@ -190,29 +145,11 @@ pub struct Refusal {
 
 impl Refusal {
     fn whole_file(reason: impl Into<String>) -> Refusal {
-        Refusal {
-            problems: vec![Problem {
-                line: 0,
-                column: None,
-                field: None,
-                value: None,
-                reason: reason.into(),
-            }],
-            total: 1,
-        }
+        Refusal { problems: vec![Problem { line: 0, column: None, field: None, value: None, reason: reason.into() }], total: 1 }
     }
 
     fn header(reason: impl Into<String>) -> Refusal {
-        Refusal {
-            problems: vec![Problem {
-                line: 1,
-                column: None,
-                field: None,
-                value: None,
-                reason: reason.into(),
-            }],
-            total: 1,
-        }
+        Refusal { problems: vec![Problem { line: 1, column: None, field: None, value: None, reason: reason.into() }], total: 1 }
     }
 
     /// The first problem, for one-line messages.
@@ -266,41 +203,26 @@ fn shorten(s: &str) -> String {
 ///
 /// `vocabs` is the vocabulary as stored; values not in it get new codes,
 /// reported in `Batch::new_categories` for the store to append.
-pub fn parse(
-    bytes: &[u8],
-    schema: &Schema,
-    stored: &Vocabularies,
-    limits: &Limits,
-) -> Result<Batch, Refusal> {
+pub fn parse(bytes: &[u8], schema: &Schema, stored: &Vocabularies, limits: &Limits) -> Result<Batch, Refusal> {
     if bytes.is_empty() {
-        return Err(Refusal::whole_file(
-            "the file is empty; expected a header line naming the columns, then rows",
-        ));
+        return Err(Refusal::whole_file("the file is empty; expected a header line naming the columns, then rows"));
     }
     if bytes.contains(&0) {
-        let line = 1 + bytes[..bytes.iter().position(|&b| b == 0).unwrap_or(0)]
-            .iter()
-            .filter(|&&b| b == b'\n')
-            .count() as u64;
+        let line = 1 + bytes[..bytes.iter().position(|&b| b == 0).unwrap_or(0)].iter().filter(|&&b| b == b'\n').count() as u64;
         return Err(Refusal {
             problems: vec![Problem {
                 line,
                 column: None,
                 field: None,
                 value: None,
-                reason:
-                    "the file contains a NUL byte; it is binary or in UTF-16, save it as UTF-8 text"
-                        .into(),
+                reason: "the file contains a NUL byte; it is binary or in UTF-16, save it as UTF-8 text".into(),
             }],
             total: 1,
         });
     }
     // A UTF-8 byte order mark is allowed and skipped.
     let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .from_reader(bytes);
+    let mut reader = csv::ReaderBuilder::new().has_headers(false).flexible(true).from_reader(bytes);
     let mut records = reader.byte_records();
 
     let header = match records.next() {
@@ -316,10 +238,7 @@ pub fn parse(
 
     let mut vocabs: HashMap<usize, schema::Vocab> = HashMap::new();
     let mut new_categories: BTreeMap<usize, Vec<String>> = BTreeMap::new();
-    let mut problems = Problems {
-        listed: Vec::new(),
-        total: 0,
-    };
+    let mut problems = Problems { listed: Vec::new(), total: 0 };
     let width = schema.width();
     let mut train = RowMatrix::new(width);
     let mut holdout = RowMatrix::new(width);
@@ -332,13 +251,7 @@ pub fn parse(
             Ok(r) => r,
             Err(e) => {
                 let line = e.position().map_or(0, |p| p.line());
-                problems.push(Problem {
-                    line,
-                    column: None,
-                    field: None,
-                    value: None,
-                    reason: format!("cannot read the row: {e}"),
-                });
+                problems.push(Problem { line, column: None, field: None, value: None, reason: format!("cannot read the row: {e}") });
                 continue;
             }
         };
@@ -363,36 +276,17 @@ pub fn parse(
             let ci = order[fi];
             let col = &schema.columns[ci];
             let mut bad = |value: &str, reason: String| {
-                problems.push(Problem {
-                    line,
-                    column: Some(col.name.clone()),
-                    field: Some(fi + 1),
-                    value: Some(shorten(value)),
-                    reason,
-                });
+                problems.push(Problem { line, column: Some(col.name.clone()), field: Some(fi + 1), value: Some(shorten(value)), reason });
             };
             if raw.len() > limits.max_field_bytes {
-                bad(
-                    &String::from_utf8_lossy(&raw[..raw.len().min(80)]),
-                    format!(
-                        "the field is {} bytes, over the limit of {} (data.max_field_bytes)",
-                        raw.len(),
-                        limits.max_field_bytes
-                    ),
-                );
+                bad(&String::from_utf8_lossy(&raw[..raw.len().min(80)]), format!("the field is {} bytes, over the limit of {} (data.max_field_bytes)", raw.len(), limits.max_field_bytes));
                 row_ok = false;
                 continue;
             }
             let text = match std::str::from_utf8(raw) {
                 Ok(t) => t,
                 Err(e) => {
-                    bad(
-                        &String::from_utf8_lossy(raw),
-                        format!(
-                            "not valid UTF-8 (at byte {} of the field); save the file as UTF-8",
-                            e.valid_up_to() + 1
-                        ),
-                    );
+                    bad(&String::from_utf8_lossy(raw), format!("not valid UTF-8 (at byte {} of the field); save the file as UTF-8", e.valid_up_to() + 1));
                     row_ok = false;
                     continue;
                 }
@@ -423,17 +317,12 @@ pub fn parse(
                             cells[ci] = MISSING_CODE;
                         }
                     } else if t.chars().any(char::is_control) {
-                        bad(
-                            text,
-                            "category values may not contain control characters".into(),
-                        );
+                        bad(text, "category values may not contain control characters".into());
                         row_ok = false;
                     } else {
                         // A refused file is dropped whole, so codes handed
                         // out here for a bad row never reach the store.
-                        let vocab = vocabs
-                            .entry(ci)
-                            .or_insert_with(|| stored.get(&ci).cloned().unwrap_or_default());
+                        let vocab = vocabs.entry(ci).or_insert_with(|| stored.get(&ci).cloned().unwrap_or_default());
                         let (code, added) = vocab.code_or_insert(t);
                         if added {
                             new_categories.entry(ci).or_default().push(t.to_string());
@@ -456,10 +345,7 @@ pub fn parse(
                 ColumnKind::Category => match cells[ci] {
                     MISSING_CODE => key.push(2),
                     code => {
-                        let v = vocabs
-                            .get(&ci)
-                            .and_then(|v| v.value(code))
-                            .unwrap_or_default();
+                        let v = vocabs.get(&ci).and_then(|v| v.value(code)).unwrap_or_default();
                         key.push(1);
                         key.extend_from_slice(&(v.len() as u32).to_le_bytes());
                         key.extend_from_slice(v.as_bytes());
@@ -474,21 +360,12 @@ pub fn parse(
         }
     }
     if problems.total > 0 {
-        return Err(Refusal {
-            problems: problems.listed,
-            total: problems.total,
-        });
+        return Err(Refusal { problems: problems.listed, total: problems.total });
     }
     if rows_seen == 0 {
-        return Err(Refusal::whole_file(
-            "the file has a header but no rows; nothing to add",
-        ));
+        return Err(Refusal::whole_file("the file has a header but no rows; nothing to add"));
     }
-    Ok(Batch {
-        train,
-        holdout,
-        new_categories,
-    })
+    Ok(Batch { train, holdout, new_categories })
 }
 
 /// Maps each header field to its schema column, or explains what is wrong.
@@ -511,13 +388,7 @@ fn map_header(header: &csv::ByteRecord, schema: &Schema) -> Result<Vec<usize>, S
             None => unknown.push(name.to_string()),
         }
     }
-    let missing: Vec<&str> = schema
-        .columns
-        .iter()
-        .zip(&seen)
-        .filter(|(_, s)| !**s)
-        .map(|(c, _)| c.name.as_str())
-        .collect();
+    let missing: Vec<&str> = schema.columns.iter().zip(&seen).filter(|(_, s)| !**s).map(|(c, _)| c.name.as_str()).collect();
     if twice.is_empty() && unknown.is_empty() && missing.is_empty() {
         return Ok(order);
     }
@@ -532,9 +403,5 @@ fn map_header(header: &csv::ByteRecord, schema: &Schema) -> Result<Vec<usize>, S
         parts.push(format!("unknown column(s): {}", unknown.join(", ")));
     }
     let expected: Vec<&str> = schema.columns.iter().map(|c| c.name.as_str()).collect();
-    Err(format!(
-        "the header does not match the config: {}; expected these columns (any order): {}",
-        parts.join("; "),
-        expected.join(", ")
-    ))
+    Err(format!("the header does not match the config: {}; expected these columns (any order): {}", parts.join("; "), expected.join(", ")))
 }

@@ -40,28 +40,14 @@ pub enum Source {
 /// How one file ended.
 #[derive(Debug, Clone)]
 pub enum Outcome {
-    Accepted {
-        batch: BatchRecord,
-        entry: Entry,
-    },
-    Duplicate {
-        of: BatchId,
-        entry: Entry,
-    },
-    Rejected {
-        refusal: Refusal,
-        kept_as: Option<PathBuf>,
-        entry: Entry,
-    },
+    Accepted { batch: BatchRecord, entry: Entry },
+    Duplicate { of: BatchId, entry: Entry },
+    Rejected { refusal: Refusal, kept_as: Option<PathBuf>, entry: Entry },
     /// The file was already stored by an ingest that was interrupted before
     /// archiving; archiving is now finished and nothing new was logged.
-    Completed {
-        batch: BatchId,
-    },
+    Completed { batch: BatchId },
     /// The file changed while it was read; it will be tried again later.
-    NotReady {
-        reason: String,
-    },
+    NotReady { reason: String },
 }
 
 impl Outcome {
@@ -85,23 +71,15 @@ struct Why<'a> {
 const WHAT_TO_DO: &str = "Nothing from this file was stored. Fix the listed rows (or the config), then publish the corrected file again; a file is taken whole or not at all.";
 
 fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
-    move |source| StateError::Io {
-        path: path.to_path_buf(),
-        source,
-    }
+    move |source| StateError::Io { path: path.to_path_buf(), source }
 }
 
 fn display_name(path: &Path) -> String {
-    path.file_name().map_or_else(
-        || path.display().to_string(),
-        |n| n.to_string_lossy().into_owned(),
-    )
+    path.file_name().map_or_else(|| path.display().to_string(), |n| n.to_string_lossy().into_owned())
 }
 
 fn pending_path(state: &StateDir, hash: &blake3::Hash) -> PathBuf {
-    state
-        .archive()
-        .join(format!(".pending-{}.csv", hash.to_hex()))
+    state.archive().join(format!(".pending-{}.csv", hash.to_hex()))
 }
 
 /// Path of an accepted batch's archived file.
@@ -111,13 +89,7 @@ pub fn archive_path(state: &StateDir, batch: BatchId) -> PathBuf {
 
 /// Takes one file through the whole path. Errors are failures of the
 /// machine (I/O, store), never of the file: a bad file is an `Outcome`.
-pub fn take_file(
-    owner: &mut Owner,
-    path: &Path,
-    source: Source,
-    user: &str,
-    now: DateTime<Utc>,
-) -> Result<Outcome, StateError> {
+pub fn take_file(owner: &mut Owner, path: &Path, source: Source, user: &str, now: DateTime<Utc>) -> Result<Outcome, StateError> {
     let limits = Limits {
         max_file_bytes: owner.config.data.max_file_bytes,
         max_field_bytes: owner.config.data.max_field_bytes,
@@ -127,21 +99,10 @@ pub fn take_file(
     let raw = match ingest::read_file(path, limits.max_file_bytes) {
         Ok(r) => r,
         Err(ReadError::Changed { .. }) if source == Source::Inbox => {
-            return Ok(Outcome::NotReady {
-                reason: "the file changed while it was read".into(),
-            });
+            return Ok(Outcome::NotReady { reason: "the file changed while it was read".into() });
         }
         Err(e) if e.is_refusal() => {
-            let refusal = Refusal {
-                problems: vec![ingest::Problem {
-                    line: 0,
-                    column: None,
-                    field: None,
-                    value: None,
-                    reason: e.to_string(),
-                }],
-                total: 1,
-            };
+            let refusal = Refusal { problems: vec![ingest::Problem { line: 0, column: None, field: None, value: None, reason: e.to_string() }], total: 1 };
             return reject(owner, path, &name, None, refusal, source, user, now);
         }
         Err(ReadError::Io { path, source }) => return Err(StateError::Io { path, source }),
@@ -157,11 +118,7 @@ pub fn take_file(
             return Ok(Outcome::Completed { batch: of });
         }
         let kept = archive_path(&owner.state, of).with_extension("");
-        let event = Event::BatchDuplicate {
-            file: name,
-            hash: raw.hash.to_hex().to_string(),
-            duplicate_of: of,
-        };
+        let event = Event::BatchDuplicate { file: name, hash: raw.hash.to_hex().to_string(), duplicate_of: of };
         let entry = owner.store.record(event, user, now)?;
         owner.mirror.append(&[entry.line().as_bytes()])?;
         if source == Source::Inbox {
@@ -174,29 +131,19 @@ pub fn take_file(
         }
         return Ok(Outcome::Duplicate { of, entry });
     }
-    let batch = match ingest::parse(
-        &raw.bytes,
-        owner.store.schema(),
-        owner.store.vocabularies(),
-        &limits,
-    ) {
+    let batch = match ingest::parse(&raw.bytes, owner.store.schema(), owner.store.vocabularies(), &limits) {
         Ok(b) => b,
         Err(refusal) => return reject(owner, path, &name, Some(&raw), refusal, source, user, now),
     };
     let pending = pending_path(&owner.state, &raw.hash);
     fsutil::write_atomic(&pending, &raw.bytes).map_err(io_at(&pending))?;
-    let (record, entry) = owner
-        .store
-        .commit_batch(&batch, &name, &raw.hash, user, now)?;
+    let (record, entry) = owner.store.commit_batch(&batch, &name, &raw.hash, user, now)?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let archived = archive_path(&owner.state, record.id);
     fs::rename(&pending, &archived).map_err(io_at(&archived))?;
     fsutil::sync_dir(&owner.state.archive()).map_err(io_at(&archived))?;
     remove_source(path, source)?;
-    Ok(Outcome::Accepted {
-        batch: record,
-        entry,
-    })
+    Ok(Outcome::Accepted { batch: record, entry })
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -250,12 +197,7 @@ fn reject(
     let mut text = serde_json::to_vec_pretty(&why).expect("plain data serialises");
     text.push(b'\n');
     fsutil::write_atomic(&why_path, &text).map_err(io_at(&why_path))?;
-    let rel = |p: &Path| {
-        p.strip_prefix(owner.state.root())
-            .unwrap_or(p)
-            .display()
-            .to_string()
-    };
+    let rel = |p: &Path| p.strip_prefix(owner.state.root()).unwrap_or(p).display().to_string();
     let event = Event::BatchRejected {
         file: name.to_string(),
         hash: hash.unwrap_or_default(),
@@ -268,11 +210,7 @@ fn reject(
     if raw.is_some() {
         remove_source(path, source)?;
     }
-    Ok(Outcome::Rejected {
-        refusal,
-        kept_as,
-        entry,
-    })
+    Ok(Outcome::Rejected { refusal, kept_as, entry })
 }
 
 fn remove_source(path: &Path, source: Source) -> Result<(), StateError> {
@@ -302,10 +240,7 @@ pub fn settle_pending(state: &StateDir, store: &Store) -> Result<(usize, usize),
     for entry in entries {
         let entry = entry.map_err(io_at(&dir))?;
         let name = entry.file_name().to_string_lossy().into_owned();
-        let Some(hex) = name
-            .strip_prefix(".pending-")
-            .and_then(|n| n.strip_suffix(".csv"))
-        else {
+        let Some(hex) = name.strip_prefix(".pending-").and_then(|n| n.strip_suffix(".csv")) else {
             continue;
         };
         let batch = match blake3::Hash::from_hex(hex) {

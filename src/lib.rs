@@ -6,17 +6,17 @@
 //! The `cli` module holds one file per command; `main.rs` only maps errors
 //! to exit codes.
 
-pub mod audit;
-pub mod cli;
 pub mod config;
-pub mod demo;
-pub mod fsutil;
 pub mod ids;
-pub mod ingest;
-pub mod intake;
-pub mod model;
-pub mod rng;
 pub mod schema;
-pub mod state;
+pub mod audit;
+pub mod fsutil;
+pub mod ingest;
 pub mod store;
+pub mod intake;
+pub mod state;
+pub mod cli;
+pub mod rng;
+pub mod demo;
+pub mod model;
 pub mod train;

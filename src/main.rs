@@ -21,14 +21,8 @@ fn main() -> ExitCode {
         (false, 1) => "debug",
         (false, _) => "trace",
     };
-    let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEGATE_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("tidegate={level}")));
-    tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        .with_writer(std::io::stderr)
-        .with_target(false)
-        .without_time()
-        .init();
+    let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEGATE_LOG").unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("tidegate={level}")));
+    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_target(false).without_time().init();
     match cli::run(&parsed) {
         Ok(code) => ExitCode::from(code as u8),
         Err(err) => {

@@ -72,10 +72,7 @@ mod tests {
         }
         let mean = s / n as f64;
         let var = s2 / n as f64 - mean * mean;
-        assert!(
-            mean.abs() < 0.02 && (var - 1.0).abs() < 0.03,
-            "{mean} {var}"
-        );
+        assert!(mean.abs() < 0.02 && (var - 1.0).abs() < 0.03, "{mean} {var}");
         let mut v: Vec<usize> = (0..10).collect();
         r.shuffle(&mut v);
         v.sort();

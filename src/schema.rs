@@ -89,17 +89,9 @@ pub enum FieldProblem {
 impl std::fmt::Display for FieldProblem {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
-            FieldProblem::Missing => write!(
-                f,
-                "empty field in a required column; fill it in or mark the column required = false"
-            ),
-            FieldProblem::NotANumber => {
-                write!(f, "not a number; write a decimal number such as 12.5")
-            }
-            FieldProblem::NotFinite => write!(
-                f,
-                "NaN and infinity are not accepted; leave the field empty for missing (if the column allows it)"
-            ),
+            FieldProblem::Missing => write!(f, "empty field in a required column; fill it in or mark the column required = false"),
+            FieldProblem::NotANumber => write!(f, "not a number; write a decimal number such as 12.5"),
+            FieldProblem::NotFinite => write!(f, "NaN and infinity are not accepted; leave the field empty for missing (if the column allows it)"),
             FieldProblem::BelowMin(m) => write!(f, "below the column's min of {m}"),
             FieldProblem::AboveMax(m) => write!(f, "above the column's max of {m}"),
         }
@@ -111,11 +103,7 @@ impl std::fmt::Display for FieldProblem {
 pub fn parse_number(col: &Column, text: &str) -> Result<Option<f32>, FieldProblem> {
     let t = text.trim();
     if t.is_empty() {
-        return if col.required {
-            Err(FieldProblem::Missing)
-        } else {
-            Ok(None)
-        };
+        return if col.required { Err(FieldProblem::Missing) } else { Ok(None) };
     }
     let v: f32 = t.parse().map_err(|_| FieldProblem::NotANumber)?;
     if !v.is_finite() {
@@ -237,19 +225,11 @@ impl RunningStats {
     }
 
     pub fn population_variance(&self) -> f64 {
-        if self.count == 0 {
-            0.0
-        } else {
-            self.m2 / self.count as f64
-        }
+        if self.count == 0 { 0.0 } else { self.m2 / self.count as f64 }
     }
 
     pub fn sample_variance(&self) -> f64 {
-        if self.count < 2 {
-            0.0
-        } else {
-            self.m2 / (self.count - 1) as f64
-        }
+        if self.count < 2 { 0.0 } else { self.m2 / (self.count - 1) as f64 }
     }
 
     pub fn std_dev(&self) -> f64 {
@@ -311,25 +291,16 @@ pub struct RowMatrix {
 
 impl RowMatrix {
     pub fn new(width: usize) -> RowMatrix {
-        RowMatrix {
-            width,
-            cells: Vec::new(),
-        }
+        RowMatrix { width, cells: Vec::new() }
     }
 
     pub fn with_capacity(width: usize, rows: usize) -> RowMatrix {
-        RowMatrix {
-            width,
-            cells: Vec::with_capacity(width * rows),
-        }
+        RowMatrix { width, cells: Vec::with_capacity(width * rows) }
     }
 
     /// Wraps cells; `cells.len()` must be a multiple of `width`.
     pub fn from_cells(width: usize, cells: Vec<u32>) -> RowMatrix {
-        assert!(
-            width > 0 && cells.len() % width == 0,
-            "cells do not fill whole rows"
-        );
+        assert!(width > 0 && cells.len() % width == 0, "cells do not fill whole rows");
         RowMatrix { width, cells }
     }
 
@@ -338,11 +309,7 @@ impl RowMatrix {
     }
 
     pub fn n_rows(&self) -> usize {
-        if self.width == 0 {
-            0
-        } else {
-            self.cells.len() / self.width
-        }
+        if self.width == 0 { 0 } else { self.cells.len() / self.width }
     }
 
     pub fn cells(&self) -> &[u32] {
@@ -448,12 +415,7 @@ impl FeatureSpec {
             Task::Regression => 1,
             Task::Classification => vocabs.get(&schema.target).map_or(0, Vocab::len),
         };
-        FeatureSpec {
-            inputs,
-            target: schema.target,
-            task: schema.task,
-            outputs,
-        }
+        FeatureSpec { inputs, target: schema.target, task: schema.task, outputs }
     }
 
     /// Width of the network's input.
@@ -513,13 +475,7 @@ mod tests {
     use super::*;
 
     fn col(kind: ColumnKind) -> Column {
-        Column {
-            name: "c".into(),
-            kind,
-            min: Some(0.0),
-            max: Some(10.0),
-            required: true,
-        }
+        Column { name: "c".into(), kind, min: Some(0.0), max: Some(10.0), required: true }
     }
 
     #[test]
@@ -561,10 +517,7 @@ mod tests {
         assert_eq!(parse_number(&c, "abc"), Err(FieldProblem::NotANumber));
         assert_eq!(parse_number(&c, "-1"), Err(FieldProblem::BelowMin(0.0)));
         assert_eq!(parse_number(&c, "11"), Err(FieldProblem::AboveMax(10.0)));
-        let opt = Column {
-            required: false,
-            ..c
-        };
+        let opt = Column { required: false, ..c };
         assert_eq!(parse_number(&opt, ""), Ok(None));
     }
 
@@ -582,9 +535,7 @@ mod tests {
     #[test]
     fn holdout_share_is_close_to_fraction() {
         let n = 20_000;
-        let hits = (0..n)
-            .filter(|i: &u32| is_holdout(&i.to_le_bytes(), 0.2))
-            .count();
+        let hits = (0..n).filter(|i: &u32| is_holdout(&i.to_le_bytes(), 0.2)).count();
         let share = hits as f64 / f64::from(n);
         // Binomial sd at n = 20000, p = 0.2 is 0.0028; allow 4 sd.
         assert!((share - 0.2).abs() < 0.012, "share {share}");
@@ -595,27 +546,9 @@ mod tests {
     fn features_standardise_and_one_hot() {
         let schema = Schema {
             columns: vec![
-                Column {
-                    name: "x".into(),
-                    kind: ColumnKind::Number,
-                    min: None,
-                    max: None,
-                    required: false,
-                },
-                Column {
-                    name: "k".into(),
-                    kind: ColumnKind::Category,
-                    min: None,
-                    max: None,
-                    required: false,
-                },
-                Column {
-                    name: "y".into(),
-                    kind: ColumnKind::Number,
-                    min: None,
-                    max: None,
-                    required: true,
-                },
+                Column { name: "x".into(), kind: ColumnKind::Number, min: None, max: None, required: false },
+                Column { name: "k".into(), kind: ColumnKind::Category, min: None, max: None, required: false },
+                Column { name: "y".into(), kind: ColumnKind::Number, min: None, max: None, required: true },
             ],
             target: 2,
             task: Task::Regression,

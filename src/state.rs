@@ -80,10 +80,7 @@ pub enum StateError {
 }
 
 fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
-    move |source| StateError::Io {
-        path: path.to_path_buf(),
-        source,
-    }
+    move |source| StateError::Io { path: path.to_path_buf(), source }
 }
 
 /// The exclusive hold on a state dir; released when dropped (or when the
@@ -96,29 +93,15 @@ pub struct OwnerLock {
 /// Takes `LOCK` without waiting; a holder's PID is named in the error.
 pub fn take_lock(state: &StateDir) -> Result<OwnerLock, StateError> {
     let path = state.lock();
-    let mut file = fs::OpenOptions::new()
-        .read(true)
-        .write(true)
-        .create(true)
-        .truncate(false)
-        .open(&path)
-        .map_err(io_at(&path))?;
+    let mut file = fs::OpenOptions::new().read(true).write(true).create(true).truncate(false).open(&path).map_err(io_at(&path))?;
     match file.try_lock() {
         Ok(()) => {}
         Err(fs::TryLockError::WouldBlock) => {
             let mut pid = String::new();
             let _ = file.read_to_string(&mut pid);
             let pid = pid.trim();
-            let pid = if pid.is_empty() {
-                "unknown".to_string()
-            } else {
-                pid.to_string()
-            };
-            return Err(StoreError::Locked {
-                path: state.root().to_path_buf(),
-                pid,
-            }
-            .into());
+            let pid = if pid.is_empty() { "unknown".to_string() } else { pid.to_string() };
+            return Err(StoreError::Locked { path: state.root().to_path_buf(), pid }.into());
         }
         Err(fs::TryLockError::Error(e)) => return Err(io_at(&path)(e)),
     }
@@ -141,17 +124,10 @@ pub struct Owner {
 
 /// Creates a state dir (mode 0700) from a config: folders, the config copy,
 /// the store and the first audit entry.
-pub fn create(
-    state: &StateDir,
-    config: &Config,
-    config_text: &str,
-    user: &str,
-) -> Result<Owner, StateError> {
+pub fn create(state: &StateDir, config: &Config, config_text: &str, user: &str) -> Result<Owner, StateError> {
     let root = state.root();
     if state.config().exists() || state.store().exists() {
-        return Err(StateError::AlreadyInitialised {
-            path: root.to_path_buf(),
-        });
+        return Err(StateError::AlreadyInitialised { path: root.to_path_buf() });
     }
     if root.exists() {
         // An empty folder, or one holding only a README, is fine.
@@ -161,9 +137,7 @@ pub fn create(
             .filter(|e| e.file_name() != "README.md")
             .count();
         if others > 0 {
-            return Err(StateError::NotEmpty {
-                path: root.to_path_buf(),
-            });
+            return Err(StateError::NotEmpty { path: root.to_path_buf() });
         }
     }
     let mut builder = fs::DirBuilder::new();
@@ -172,13 +146,7 @@ pub fn create(
     use std::os::unix::fs::PermissionsExt;
     fs::set_permissions(root, fs::Permissions::from_mode(0o700)).map_err(io_at(root))?;
     let lock = take_lock(state)?;
-    for dir in [
-        state.inbox(),
-        state.inbox().join(".tmp"),
-        state.archive(),
-        state.rejected(),
-        state.models(),
-    ] {
+    for dir in [state.inbox(), state.inbox().join(".tmp"), state.archive(), state.rejected(), state.models()] {
         builder.create(&dir).map_err(io_at(&dir))?;
     }
     let schema = Schema::from_config(config);
@@ -195,16 +163,9 @@ pub fn create(
     let mirror = state.mirror();
     mirror.append(&[entry.line().as_bytes()])?;
     // The config copy is written last: its presence marks a finished init.
-    fsutil::write_atomic(&state.config(), config_text.as_bytes())
-        .map_err(io_at(&state.config()))?;
+    fsutil::write_atomic(&state.config(), config_text.as_bytes()).map_err(io_at(&state.config()))?;
     fsutil::sync_dir(root).map_err(io_at(root))?;
-    Ok(Owner {
-        state: state.clone(),
-        config: config.clone(),
-        store,
-        mirror,
-        _lock: lock,
-    })
+    Ok(Owner { state: state.clone(), config: config.clone(), store, mirror, _lock: lock })
 }
 
 /// What start-up recovery found and fixed.
@@ -221,38 +182,21 @@ pub struct Recovery {
 /// audit lines missing from `audit.jsonl`).
 pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), StateError> {
     if !state.is_initialised() {
-        return Err(StoreError::NotInitialised {
-            path: state.root().to_path_buf(),
-        }
-        .into());
+        return Err(StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
     }
     let lock = take_lock(state)?;
     let schema = Schema::from_config(config);
     let store = Store::open(&state.store(), &schema, &config.schema_fingerprint())?;
     let mirror = state.mirror();
     let mut rec = Recovery::default();
-    for dir in [
-        state.root().to_path_buf(),
-        state.archive(),
-        state.rejected(),
-        state.models(),
-    ] {
+    for dir in [state.root().to_path_buf(), state.archive(), state.rejected(), state.models()] {
         rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
     }
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
     rec.pending_archived = archived;
     rec.pending_dropped = dropped;
     rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
-    Ok((
-        Owner {
-            state: state.clone(),
-            config: config.clone(),
-            store,
-            mirror,
-            _lock: lock,
-        },
-        rec,
-    ))
+    Ok((Owner { state: state.clone(), config: config.clone(), store, mirror, _lock: lock }, rec))
 }
 
 /// The acting user: the login name, or the numeric uid when none is set.
@@ -280,10 +224,6 @@ pub fn owner_pid(state: &StateDir) -> Option<u32> {
         let fields: Vec<&str> = line.split_whitespace().collect();
         let (pid, dev_ino) = (fields.get(4)?, fields.get(5)?);
         let ino: u64 = dev_ino.rsplit(':').next()?.parse().ok()?;
-        if ino == inode && fields.get(1) == Some(&"FLOCK") {
-            pid.parse().ok()
-        } else {
-            None
-        }
+        if ino == inode && fields.get(1) == Some(&"FLOCK") { pid.parse().ok() } else { None }
     })
 }

@@ -96,14 +96,8 @@ pub enum StoreError {
     },
     #[error("store {path} is damaged: {what}; run `tidegate verify` and restore from a backup")]
     Corrupt { path: PathBuf, what: String },
-    #[error(
-        "store {path} was created for a different schema (fingerprint {stored}, config has {config}); put the old config back or run `tidegate migrate`"
-    )]
-    SchemaChanged {
-        path: PathBuf,
-        stored: String,
-        config: String,
-    },
+    #[error("store {path} was created for a different schema (fingerprint {stored}, config has {config}); put the old config back or run `tidegate migrate`")]
+    SchemaChanged { path: PathBuf, stored: String, config: String },
     #[error("{path} is not an initialised state dir; run `tidegate init --config FILE` first")]
     NotInitialised { path: PathBuf },
 }
@@ -132,25 +126,13 @@ impl Store {
     /// Creates a new store at `path` (which must not exist yet).
     pub fn create(path: &Path, schema: &Schema, fingerprint: &str) -> Result<Store, StoreError> {
         if path.join("db").exists() {
-            return Err(StoreError::Corrupt {
-                path: path.to_path_buf(),
-                what: "a store already exists here".into(),
-            });
+            return Err(StoreError::Corrupt { path: path.to_path_buf(), what: "a store already exists here".into() });
         }
         let store = Store::open_raw(path, schema.clone())?;
-        let sl = |e| StoreError::Sled {
-            path: path.to_path_buf(),
-            source: e,
-        };
+        let sl = |e| StoreError::Sled { path: path.to_path_buf(), source: e };
         store.meta.insert(META_SCHEMA, json(schema)).map_err(sl)?;
-        store
-            .meta
-            .insert(META_FINGERPRINT, fingerprint.as_bytes())
-            .map_err(sl)?;
-        store
-            .meta
-            .insert(META_TOTALS, json(&Totals::default()))
-            .map_err(sl)?;
+        store.meta.insert(META_FINGERPRINT, fingerprint.as_bytes()).map_err(sl)?;
+        store.meta.insert(META_TOTALS, json(&Totals::default())).map_err(sl)?;
         store.sync()?;
         Ok(store)
     }
@@ -158,39 +140,21 @@ impl Store {
     /// Opens an existing store and checks it was made for this schema.
     pub fn open(path: &Path, schema: &Schema, fingerprint: &str) -> Result<Store, StoreError> {
         if !path.join("db").exists() && !path.join("conf").exists() {
-            return Err(StoreError::NotInitialised {
-                path: path.to_path_buf(),
-            });
+            return Err(StoreError::NotInitialised { path: path.to_path_buf() });
         }
         let mut store = Store::open_raw(path, schema.clone())?;
-        let stored = store
-            .meta
-            .get(META_FINGERPRINT)
-            .map_err(|e| store.sled_err(e))?;
-        let stored = stored
-            .map(|v| String::from_utf8_lossy(&v).into_owned())
-            .unwrap_or_default();
+        let stored = store.meta.get(META_FINGERPRINT).map_err(|e| store.sled_err(e))?;
+        let stored = stored.map(|v| String::from_utf8_lossy(&v).into_owned()).unwrap_or_default();
         if stored != fingerprint {
-            return Err(StoreError::SchemaChanged {
-                path: path.to_path_buf(),
-                stored,
-                config: fingerprint.to_string(),
-            });
+            return Err(StoreError::SchemaChanged { path: path.to_path_buf(), stored, config: fingerprint.to_string() });
         }
         store.load_state()?;
         Ok(store)
     }
 
     fn open_raw(path: &Path, schema: Schema) -> Result<Store, StoreError> {
-        let sl = |e| StoreError::Sled {
-            path: path.to_path_buf(),
-            source: e,
-        };
-        let db = sled::Config::new()
-            .path(path)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(sl)?;
+        let sl = |e| StoreError::Sled { path: path.to_path_buf(), source: e };
+        let db = sled::Config::new().path(path).mode(sled::Mode::HighThroughput).open().map_err(sl)?;
         let tree = |name: &str| db.open_tree(name).map_err(sl);
         Ok(Store {
             path: path.to_path_buf(),
@@ -209,48 +173,30 @@ impl Store {
     }
 
     fn sled_err(&self, source: sled::Error) -> StoreError {
-        StoreError::Sled {
-            path: self.path.clone(),
-            source,
-        }
+        StoreError::Sled { path: self.path.clone(), source }
     }
 
     fn corrupt(&self, what: impl Into<String>) -> StoreError {
-        StoreError::Corrupt {
-            path: self.path.clone(),
-            what: what.into(),
-        }
+        StoreError::Corrupt { path: self.path.clone(), what: what.into() }
     }
 
     fn load_state(&mut self) -> Result<(), StoreError> {
-        let totals = self
-            .meta
-            .get(META_TOTALS)
-            .map_err(|e| self.sled_err(e))?
-            .ok_or_else(|| self.corrupt("meta has no totals"))?;
-        self.totals =
-            serde_json::from_slice(&totals).map_err(|e| self.corrupt(format!("totals: {e}")))?;
+        let totals = self.meta.get(META_TOTALS).map_err(|e| self.sled_err(e))?.ok_or_else(|| self.corrupt("meta has no totals"))?;
+        self.totals = serde_json::from_slice(&totals).map_err(|e| self.corrupt(format!("totals: {e}")))?;
         let mut vocabs = BTreeMap::<usize, Vec<String>>::new();
         for kv in self.vocab.iter() {
             let (k, v) = kv.map_err(|e| self.sled_err(e))?;
             let (col, code) = (u32_at(&k, 0), u32_at(&k, 4));
             let values = vocabs.entry(col as usize).or_default();
             if code as usize != values.len() {
-                return Err(self.corrupt(format!(
-                    "vocabulary of column {col} skips code {}",
-                    values.len()
-                )));
+                return Err(self.corrupt(format!("vocabulary of column {col} skips code {}", values.len())));
             }
             values.push(String::from_utf8_lossy(&v).into_owned());
         }
-        self.vocabs = vocabs
-            .into_iter()
-            .map(|(c, v)| (c, Vocab::from_values(v)))
-            .collect();
+        self.vocabs = vocabs.into_iter().map(|(c, v)| (c, Vocab::from_values(v))).collect();
         if let Some(kv) = self.audit.last().map_err(|e| self.sled_err(e))? {
             let seq = AuditSeq::from_key(&kv.0).ok_or_else(|| self.corrupt("bad audit key"))?;
-            let entry = Entry::from_line(&kv.1)
-                .map_err(|e| self.corrupt(format!("audit entry {seq}: {e}")))?;
+            let entry = Entry::from_line(&kv.1).map_err(|e| self.corrupt(format!("audit entry {seq}: {e}")))?;
             self.last_audit = Some((seq, entry.hash));
         }
         Ok(())
@@ -274,17 +220,13 @@ impl Store {
 
     /// The batch a file hash was accepted as, if any.
     pub fn batch_of_hash(&self, hash: &blake3::Hash) -> Result<Option<BatchId>, StoreError> {
-        let v = self
-            .hashes
-            .get(hash.as_bytes())
-            .map_err(|e| self.sled_err(e))?;
+        let v = self.hashes.get(hash.as_bytes()).map_err(|e| self.sled_err(e))?;
         Ok(v.and_then(|v| BatchId::from_key(&v)))
     }
 
     pub fn batch(&self, id: BatchId) -> Result<Option<BatchRecord>, StoreError> {
         let v = self.batches.get(id.key()).map_err(|e| self.sled_err(e))?;
-        v.map(|v| serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch {id}: {e}"))))
-            .transpose()
+        v.map(|v| serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch {id}: {e}")))).transpose()
     }
 
     /// All accepted batches in order.
@@ -303,12 +245,7 @@ impl Store {
     }
 
     /// Rows of one split, for batches in `from..=to` (all when `None`).
-    pub fn rows(
-        &self,
-        split: Split,
-        from: Option<BatchId>,
-        to: Option<BatchId>,
-    ) -> Result<RowMatrix, StoreError> {
+    pub fn rows(&self, split: Split, from: Option<BatchId>, to: Option<BatchId>) -> Result<RowMatrix, StoreError> {
         let width = self.schema.width();
         let mut out = RowMatrix::new(width);
         let lo = from.unwrap_or(BatchId(0));
@@ -325,10 +262,7 @@ impl Store {
             if v.len() % (4 * width) != 0 {
                 return Err(self.corrupt(format!("chunk of batch {id} is not whole rows")));
             }
-            let cells: Vec<u32> = v
-                .chunks_exact(4)
-                .map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes")))
-                .collect();
+            let cells: Vec<u32> = v.chunks_exact(4).map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes"))).collect();
             out.extend(&RowMatrix::from_cells(width, cells));
         }
         Ok(out)
@@ -340,10 +274,7 @@ impl Store {
             .iter()
             .map(|kv| {
                 let (k, v) = kv.map_err(|e| self.sled_err(e))?;
-                Ok((
-                    AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?,
-                    v.to_vec(),
-                ))
+                Ok((AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?, v.to_vec()))
             })
             .collect()
     }
@@ -354,10 +285,7 @@ impl Store {
             .range(seq.next().key()..)
             .map(|kv| {
                 let (k, v) = kv.map_err(|e| self.sled_err(e))?;
-                Ok((
-                    AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?,
-                    v.to_vec(),
-                ))
+                Ok((AuditSeq::from_key(&k).ok_or_else(|| self.corrupt("bad audit key"))?, v.to_vec()))
             })
             .collect()
     }
@@ -376,16 +304,9 @@ impl Store {
     }
 
     /// Records an event that touches no data (rejections, duplicates, …).
-    pub fn record(
-        &mut self,
-        event: Event,
-        user: &str,
-        time: chrono::DateTime<chrono::Utc>,
-    ) -> Result<Entry, StoreError> {
+    pub fn record(&mut self, event: Event, user: &str, time: chrono::DateTime<chrono::Utc>) -> Result<Entry, StoreError> {
         let entry = self.seal(event, user, time);
-        self.audit
-            .insert(entry.seq.key(), entry.line().into_bytes())
-            .map_err(|e| self.sled_err(e))?;
+        self.audit.insert(entry.seq.key(), entry.line().into_bytes()).map_err(|e| self.sled_err(e))?;
         self.sync()?;
         self.last_audit = Some((entry.seq, entry.hash.clone()));
         Ok(entry)
@@ -405,11 +326,7 @@ impl Store {
         let id = self.next_batch_id();
         let train_stats = ColumnStats::of_rows(&self.schema, &batch.train);
         let names = |ci: &usize| self.schema.columns[*ci].name.clone();
-        let new_categories: BTreeMap<String, Vec<String>> = batch
-            .new_categories
-            .iter()
-            .map(|(c, v)| (names(c), v.clone()))
-            .collect();
+        let new_categories: BTreeMap<String, Vec<String>> = batch.new_categories.iter().map(|(c, v)| (names(c), v.clone())).collect();
         let event = Event::BatchAccepted {
             batch: id,
             file: file.to_string(),
@@ -437,20 +354,13 @@ impl Store {
             train_stats: self.totals.train_stats.merge(&train_stats),
         };
         let mut chunk_values: Vec<(Vec<u8>, Vec<u8>)> = Vec::new();
-        for (split, rows) in [
-            (Split::Train, &batch.train),
-            (Split::Holdout, &batch.holdout),
-        ] {
+        for (split, rows) in [(Split::Train, &batch.train), (Split::Holdout, &batch.holdout)] {
             let per_chunk = (CHUNK_CELLS / rows.width()).max(1) * rows.width();
             for (i, cells) in rows.cells().chunks(per_chunk).enumerate() {
                 let mut key = Vec::with_capacity(13);
                 key.extend_from_slice(&id.key());
                 key.push(split.byte());
-                key.extend_from_slice(
-                    &u32::try_from(i)
-                        .expect("fewer than 2^32 chunks")
-                        .to_be_bytes(),
-                );
+                key.extend_from_slice(&u32::try_from(i).expect("fewer than 2^32 chunks").to_be_bytes());
                 let mut val = Vec::with_capacity(cells.len() * 4);
                 for c in cells {
                     val.extend_from_slice(&c.to_le_bytes());
@@ -471,42 +381,27 @@ impl Store {
         let record_json = json(&record);
         let totals_json = json(&totals);
         let line = entry.line().into_bytes();
-        let result: Result<(), TransactionError<StoreError>> = (
-            &self.meta,
-            &self.batches,
-            &self.hashes,
-            &self.chunks,
-            &self.vocab,
-            &self.audit,
-        )
-            .transaction(
-                |(meta, batches, hashes, chunks, vocab, audit): &(
-                    TransactionalTree,
-                    TransactionalTree,
-                    TransactionalTree,
-                    TransactionalTree,
-                    TransactionalTree,
-                    TransactionalTree,
-                )| {
-                    if hashes.get(hash.as_bytes())?.is_some() {
-                        return Err(ConflictableTransactionError::Abort(StoreError::Corrupt {
-                            path: PathBuf::new(),
-                            what: "file hash already stored".into(),
-                        }));
-                    }
-                    for (k, v) in &chunk_values {
-                        chunks.insert(k.as_slice(), v.as_slice())?;
-                    }
-                    for (k, v) in &vocab_values {
-                        vocab.insert(&k[..], v.as_slice())?;
-                    }
-                    batches.insert(&id.key()[..], record_json.as_slice())?;
-                    hashes.insert(&hash.as_bytes()[..], &id.key()[..])?;
-                    meta.insert(META_TOTALS, totals_json.as_slice())?;
-                    audit.insert(&entry.seq.key()[..], line.as_slice())?;
-                    Ok(())
-                },
-            );
+        let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.batches, &self.hashes, &self.chunks, &self.vocab, &self.audit).transaction(
+            |(meta, batches, hashes, chunks, vocab, audit): &(TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree, TransactionalTree)| {
+                if hashes.get(hash.as_bytes())?.is_some() {
+                    return Err(ConflictableTransactionError::Abort(StoreError::Corrupt {
+                        path: PathBuf::new(),
+                        what: "file hash already stored".into(),
+                    }));
+                }
+                for (k, v) in &chunk_values {
+                    chunks.insert(k.as_slice(), v.as_slice())?;
+                }
+                for (k, v) in &vocab_values {
+                    vocab.insert(&k[..], v.as_slice())?;
+                }
+                batches.insert(&id.key()[..], record_json.as_slice())?;
+                hashes.insert(&hash.as_bytes()[..], &id.key()[..])?;
+                meta.insert(META_TOTALS, totals_json.as_slice())?;
+                audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                Ok(())
+            },
+        );
         match result {
             Ok(()) => {}
             Err(TransactionError::Abort(e)) => return Err(e),
@@ -528,22 +423,14 @@ impl Store {
     /// but does not fsync on Linux, so the data file and folder are synced too.
     pub fn sync(&self) -> Result<(), StoreError> {
         self.db.flush().map_err(|e| self.sled_err(e))?;
-        crate::fsutil::sync_file(&self.path.join("db")).map_err(|source| StoreError::Io {
-            path: self.path.join("db"),
-            source,
-        })?;
-        crate::fsutil::sync_dir(&self.path).map_err(|source| StoreError::Io {
-            path: self.path.clone(),
-            source,
-        })?;
+        crate::fsutil::sync_file(&self.path.join("db")).map_err(|source| StoreError::Io { path: self.path.join("db"), source })?;
+        crate::fsutil::sync_dir(&self.path).map_err(|source| StoreError::Io { path: self.path.clone(), source })?;
         Ok(())
     }
 }
 
 fn u32_at(b: &[u8], at: usize) -> u32 {
-    b.get(at..at + 4)
-        .and_then(|s| s.try_into().ok())
-        .map_or(u32::MAX, u32::from_be_bytes)
+    b.get(at..at + 4).and_then(|s| s.try_into().ok()).map_or(u32::MAX, u32::from_be_bytes)
 }
 
 fn json<T: Serialize>(v: &T) -> Vec<u8> {

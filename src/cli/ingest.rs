@@ -30,13 +30,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         let (status, detail, json) = match &outcome {
             Outcome::Accepted { batch, entry } => (
                 "accepted",
-                format!(
-                    "batch {} with {} rows ({} train, {} holdout)",
-                    batch.id,
-                    batch.rows(),
-                    batch.train_rows,
-                    batch.holdout_rows
-                ),
+                format!("batch {} with {} rows ({} train, {} holdout)", batch.id, batch.rows(), batch.train_rows, batch.holdout_rows),
                 serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch.id, "rows": batch.rows(), "train_rows": batch.train_rows, "holdout_rows": batch.holdout_rows, "audit_seq": entry.seq}),
             ),
             Outcome::Duplicate { of, entry } => (
@@ -46,26 +40,13 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             ),
             Outcome::Completed { batch } => (
                 "accepted",
-                format!(
-                    "already stored as batch {batch} by an interrupted run; archiving finished"
-                ),
+                format!("already stored as batch {batch} by an interrupted run; archiving finished"),
                 serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch, "recovered": true}),
             ),
-            Outcome::Rejected {
-                refusal,
-                kept_as,
-                entry,
-            } => {
+            Outcome::Rejected { refusal, kept_as, entry } => {
                 exit = Exit::BadData;
-                let why = kept_as
-                    .as_ref()
-                    .map(|p| format!("{}.why.json", shown(state, p)));
-                let mut d = format!(
-                    "refused, nothing stored ({} problem{}): {}",
-                    refusal.total,
-                    if refusal.total == 1 { "" } else { "s" },
-                    refusal.first()
-                );
+                let why = kept_as.as_ref().map(|p| format!("{}.why.json", shown(state, p)));
+                let mut d = format!("refused, nothing stored ({} problem{}): {}", refusal.total, if refusal.total == 1 { "" } else { "s" }, refusal.first());
                 if let Some(w) = &why {
                     d.push_str(&format!("; all problems in {w}"));
                 }
@@ -77,11 +58,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             }
             Outcome::NotReady { reason } => {
                 exit = Exit::Failure;
-                (
-                    "not-ready",
-                    reason.clone(),
-                    serde_json::json!({"file": shown_file, "status": "not-ready", "reason": reason}),
-                )
+                ("not-ready", reason.clone(), serde_json::json!({"file": shown_file, "status": "not-ready", "reason": reason}))
             }
         };
         if cli.json {

@@ -22,27 +22,16 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             return Ok(Exit::Ok);
         }
         if dest.exists() {
-            anyhow::bail!(
-                "{} already exists; choose another name or remove it first",
-                dest.display()
-            );
+            anyhow::bail!("{} already exists; choose another name or remove it first", dest.display());
         }
-        crate::fsutil::write_atomic(dest, TEMPLATE.as_bytes())
-            .with_context(|| format!("cannot write {}", dest.display()))?;
-        tracing::info!(
-            "wrote a config template to {}; edit its [data] section, then run: tidegate init --config {}",
-            dest.display(),
-            dest.display()
-        );
+        crate::fsutil::write_atomic(dest, TEMPLATE.as_bytes()).with_context(|| format!("cannot write {}", dest.display()))?;
+        tracing::info!("wrote a config template to {}; edit its [data] section, then run: tidegate init --config {}", dest.display(), dest.display());
         return Ok(Exit::Ok);
     }
     let Some(config_path) = &cli.config else {
-        anyhow::bail!(
-            "tidegate init needs --config FILE (write a starting point with: tidegate init --template tidegate.toml)"
-        );
+        anyhow::bail!("tidegate init needs --config FILE (write a starting point with: tidegate init --template tidegate.toml)");
     };
-    let text = std::fs::read_to_string(config_path)
-        .with_context(|| format!("cannot read config {}", config_path.display()))?;
+    let text = std::fs::read_to_string(config_path).with_context(|| format!("cannot read config {}", config_path.display()))?;
     let config = Config::parse(&text, config_path)?;
     let owner = state::create(state, &config, &text, &state::current_user())?;
     let summary = serde_json::json!({

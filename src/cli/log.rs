@@ -35,31 +35,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             return Ok(Exit::Usage);
         }
     };
-    if let Some(bad) = args
-        .kind
-        .iter()
-        .find(|k| !Event::KINDS.contains(&k.as_str()))
-    {
-        eprintln!(
-            "error: unknown kind {bad:?}; known kinds: {}",
-            Event::KINDS.join(", ")
-        );
+    if let Some(bad) = args.kind.iter().find(|k| !Event::KINDS.contains(&k.as_str())) {
+        eprintln!("error: unknown kind {bad:?}; known kinds: {}", Event::KINDS.join(", "));
         return Ok(Exit::Usage);
     }
     if !state.audit().exists() {
-        return Err(crate::store::StoreError::NotInitialised {
-            path: state.root().to_path_buf(),
-        }
-        .into());
+        return Err(crate::store::StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
     }
     let entries = state.mirror().entries()?;
-    let filter = Filter {
-        since,
-        until,
-        kinds: args.kind.clone(),
-        batch: args.batch,
-        limit: args.limit,
-    };
+    let filter = Filter { since, until, kinds: args.kind.clone(), batch: args.batch, limit: args.limit };
     let shown = filter.apply(&entries);
     let mut out = String::new();
     if cli.json {
@@ -70,15 +54,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     } else {
         let rows: Vec<Vec<String>> = shown
             .iter()
-            .map(|e| {
-                vec![
-                    e.seq.0.to_string(),
-                    e.time.clone(),
-                    e.user.clone(),
-                    e.event.kind().to_string(),
-                    e.event.summary(),
-                ]
-            })
+            .map(|e| vec![e.seq.0.to_string(), e.time.clone(), e.user.clone(), e.event.kind().to_string(), e.event.summary()])
             .collect();
         out = table(&["seq", "time (UTC)", "user", "kind", "what"], &rows);
     }

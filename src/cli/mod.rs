@@ -28,20 +28,10 @@ pub enum Exit {
 }
 
 #[derive(Debug, Parser)]
-#[command(
-    name = "tidegate",
-    version,
-    about = "Keeps a tabular neural-network model up to date as data arrives, with a paired-test gate and an audit log."
-)]
+#[command(name = "tidegate", version, about = "Keeps a tabular neural-network model up to date as data arrives, with a paired-test gate and an audit log.")]
 pub struct Cli {
     /// State directory.
-    #[arg(
-        long,
-        global = true,
-        env = "TIDEGATE_STATE",
-        default_value = "state",
-        value_name = "DIR"
-    )]
+    #[arg(long, global = true, env = "TIDEGATE_STATE", default_value = "state", value_name = "DIR")]
     pub state: PathBuf,
     /// Config file (default: the copy in the state dir; for init: the one to use).
     #[arg(long, global = true, value_name = "FILE")]
@@ -119,10 +109,7 @@ pub(crate) fn load_config(cli: &Cli, state: &StateDir) -> anyhow::Result<Config>
         None => {
             let p = state.config();
             if !p.exists() {
-                return Err(StoreError::NotInitialised {
-                    path: state.root().to_path_buf(),
-                }
-                .into());
+                return Err(StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
             }
             p
         }
@@ -142,8 +129,7 @@ pub(crate) fn emit(text: &str) -> anyhow::Result<()> {
 
 /// A state-relative path for messages.
 pub(crate) fn shown(state: &StateDir, p: &Path) -> String {
-    p.strip_prefix(state.root())
-        .map_or_else(|_| p.display().to_string(), |r| r.display().to_string())
+    p.strip_prefix(state.root()).map_or_else(|_| p.display().to_string(), |r| r.display().to_string())
 }
 
 /// Renders rows as a left-aligned text table with a header.

@@ -33,28 +33,16 @@ pub struct Summary {
 impl Summary {
     /// Folds the log into totals.
     pub fn from_entries(entries: &[Entry]) -> Summary {
-        let mut s = Summary {
-            audit_entries: entries.len() as u64,
-            ..Summary::default()
-        };
+        let mut s = Summary { audit_entries: entries.len() as u64, ..Summary::default() };
         for e in entries {
             match &e.event {
-                Event::BatchAccepted {
-                    rows,
-                    train_rows,
-                    holdout_rows,
-                    new_categories,
-                    ..
-                } => {
+                Event::BatchAccepted { rows, train_rows, holdout_rows, new_categories, .. } => {
                     s.batches += 1;
                     s.rows += rows;
                     s.train_rows += train_rows;
                     s.holdout_rows += holdout_rows;
                     for (col, values) in new_categories {
-                        s.vocabularies
-                            .entry(col.clone())
-                            .or_default()
-                            .extend(values.iter().cloned());
+                        s.vocabularies.entry(col.clone()).or_default().extend(values.iter().cloned());
                     }
                 }
                 Event::BatchRejected { .. } => s.rejected_files += 1,
@@ -68,10 +56,7 @@ impl Summary {
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     if !state.is_initialised() {
-        return Err(crate::store::StoreError::NotInitialised {
-            path: state.root().to_path_buf(),
-        }
-        .into());
+        return Err(crate::store::StoreError::NotInitialised { path: state.root().to_path_buf() }.into());
     }
     let entries = state.mirror().entries()?;
     let summary = Summary::from_entries(&entries);
@@ -91,38 +76,18 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     out.push_str(&format!("state dir   {}\n", state.root().display()));
     out.push_str(&format!(
         "owner       {}\n",
-        owner.map_or_else(
-            || "none (no daemon or writer running)".to_string(),
-            |p| format!("PID {p}")
-        )
+        owner.map_or_else(|| "none (no daemon or writer running)".to_string(), |p| format!("PID {p}"))
     ));
     out.push_str(&format!(
         "rows        {} in {} batches ({} train, {} holdout)\n",
         summary.rows, summary.batches, summary.train_rows, summary.holdout_rows
     ));
-    out.push_str(&format!(
-        "files       {} rejected, {} duplicates\n",
-        summary.rejected_files, summary.duplicate_files
-    ));
+    out.push_str(&format!("files       {} rejected, {} duplicates\n", summary.rejected_files, summary.duplicate_files));
     for (col, values) in &summary.vocabularies {
-        out.push_str(&format!(
-            "vocabulary  {col}: {} ({})\n",
-            values.len(),
-            values.join(", ")
-        ));
+        out.push_str(&format!("vocabulary  {col}: {} ({})\n", values.len(), values.join(", ")));
     }
     out.push_str("\nrecent events\n");
-    let rows: Vec<Vec<String>> = recent
-        .iter()
-        .map(|e| {
-            vec![
-                e.seq.0.to_string(),
-                e.time.clone(),
-                e.event.kind().to_string(),
-                e.event.summary(),
-            ]
-        })
-        .collect();
+    let rows: Vec<Vec<String>> = recent.iter().map(|e| vec![e.seq.0.to_string(), e.time.clone(), e.event.kind().to_string(), e.event.summary()]).collect();
     out.push_str(&table(&["seq", "time (UTC)", "kind", "what"], &rows));
     emit(&out)?;
     Ok(Exit::Ok)
@@ -139,47 +104,14 @@ mod tests {
         let mut cats = BTreeMap::new();
         cats.insert("shop".to_string(), vec!["Quay".to_string()]);
         let events = [
-            Event::BatchAccepted {
-                batch: BatchId(1),
-                file: "a".into(),
-                hash: "h".into(),
-                rows: 10,
-                train_rows: 8,
-                holdout_rows: 2,
-                new_categories: cats.clone(),
-            },
-            Event::BatchRejected {
-                file: "b".into(),
-                hash: "h2".into(),
-                problems: 3,
-                first_problem: "x".into(),
-                kept_as: None,
-            },
-            Event::BatchDuplicate {
-                file: "c".into(),
-                hash: "h".into(),
-                duplicate_of: BatchId(1),
-            },
-            Event::BatchAccepted {
-                batch: BatchId(2),
-                file: "d".into(),
-                hash: "h3".into(),
-                rows: 5,
-                train_rows: 4,
-                holdout_rows: 1,
-                new_categories: BTreeMap::new(),
-            },
+            Event::BatchAccepted { batch: BatchId(1), file: "a".into(), hash: "h".into(), rows: 10, train_rows: 8, holdout_rows: 2, new_categories: cats.clone() },
+            Event::BatchRejected { file: "b".into(), hash: "h2".into(), problems: 3, first_problem: "x".into(), kept_as: None },
+            Event::BatchDuplicate { file: "c".into(), hash: "h".into(), duplicate_of: BatchId(1) },
+            Event::BatchAccepted { batch: BatchId(2), file: "d".into(), hash: "h3".into(), rows: 5, train_rows: 4, holdout_rows: 1, new_categories: BTreeMap::new() },
         ];
-        let entries: Vec<Entry> = events
-            .into_iter()
-            .enumerate()
-            .map(|(i, ev)| Entry::seal(AuditSeq(i as u64 + 1), t, "u", ev, "p"))
-            .collect();
+        let entries: Vec<Entry> = events.into_iter().enumerate().map(|(i, ev)| Entry::seal(AuditSeq(i as u64 + 1), t, "u", ev, "p")).collect();
         let s = Summary::from_entries(&entries);
-        assert_eq!(
-            (s.batches, s.rows, s.train_rows, s.holdout_rows),
-            (2, 15, 12, 3)
-        );
+        assert_eq!((s.batches, s.rows, s.train_rows, s.holdout_rows), (2, 15, 12, 3));
         assert_eq!((s.rejected_files, s.duplicate_files), (1, 1));
         assert_eq!(s.vocabularies, cats);
     }
