@@ -447,11 +447,12 @@ impl Run<'_> {
                 }
             }
             self.report(epoch, batches, batches, Some(tl), vl);
-            if let Some((_, best_epoch, _)) = &best {
-                if cfg.patience > 0 && epoch - best_epoch >= cfg.patience {
-                    stop = StopReason::EarlyStop;
-                    break;
-                }
+            if let Some((_, best_epoch, _)) = &best
+                && cfg.patience > 0
+                && epoch - best_epoch >= cfg.patience
+            {
+                stop = StopReason::EarlyStop;
+                break;
             }
         }
 

@@ -222,10 +222,10 @@ impl Net {
             h = layer.forward(h);
             if i < last {
                 h = activation::apply(self.activation, h);
-                if let Some(rng) = dropout_rng.as_deref_mut() {
-                    if self.dropout > 0.0 {
-                        h = apply_dropout(h, self.dropout, rng);
-                    }
+                if let Some(rng) = dropout_rng.as_deref_mut()
+                    && self.dropout > 0.0
+                {
+                    h = apply_dropout(h, self.dropout, rng);
                 }
             }
         }
@@ -487,7 +487,7 @@ impl Model {
     /// for a row-major feature matrix, computed on `backend` in chunks.
     pub fn raw_outputs(&self, features: &[f32], backend: Backend) -> Result<Vec<f32>, ModelError> {
         let width = self.spec.width();
-        if width == 0 || features.len() % width != 0 {
+        if width == 0 || !features.len().is_multiple_of(width) {
             return Err(ModelError::FeatureWidth {
                 len: features.len(),
                 width,

@@ -192,7 +192,7 @@ fn tanh_network_with_tiny_weights_is_close_to_linear() {
     let x: Vec<f32> = (0..n * 4).map(|_| rng.normal() as f32).collect();
     let got = values(net.forward(tensor2(&x, n, &device(Backend::Flex)), None));
     for r in 0..n {
-        let mut h = vec![0.0f64; 16];
+        let mut h = [0.0f64; 16];
         for (j, hj) in h.iter_mut().enumerate() {
             for i in 0..4 {
                 *hj += f64::from(x[r * 4 + i]) * f64::from(weights[0].weight[i * 16 + j]);
