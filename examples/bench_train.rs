@@ -3,7 +3,8 @@
 //! batch 1024 with a linearly scaled rate), and prediction rows/s per
 //! backend, with a hand-written f32 forward pass as the in-run reference.
 //!
-//! Run: `cargo run --release --example bench_train [-- EPOCHS [ROWS]]`
+//! Run: `cargo run --release --example bench_train [-- EPOCHS [ROWS [FILTER]]]`;
+//! FILTER keeps only the runs whose name contains it ("predict" for prediction).
 
 use std::time::Instant;
 
@@ -87,6 +88,7 @@ pub fn main() {
     let args: Vec<String> = std::env::args().collect();
     let epochs: usize = args.get(1).and_then(|a| a.parse().ok()).unwrap_or(6);
     let n: usize = args.get(2).and_then(|a| a.parse().ok()).unwrap_or(100_000);
+    let filter = args.get(3).cloned().unwrap_or_default();
     let (schema, rows) = data(n, 1);
     let spec = FeatureSpec::new(
         &schema,
@@ -153,6 +155,9 @@ pub fn main() {
     ];
     let mut trained: Option<Model> = None;
     for (name, backend, net, batch, lr) in runs {
+        if !name.contains(&filter) && !(filter == "predict" && trained.is_none()) {
+            continue;
+        }
         let cfg = TrainingConfig {
             backend,
             batch_size: batch,
@@ -182,6 +187,9 @@ pub fn main() {
     }
 
     let model = trained.expect("first run trained");
+    if !filter.is_empty() && filter != "predict" {
+        return;
+    }
     let x = spec.encode_inputs(&rows);
     println!(
         "{:<34} {:>14} {:>14}",

@@ -418,7 +418,7 @@ fn same_seed_same_weights_and_a_pinned_golden_value() {
 }
 
 const GOLDEN_FLEX_RELEASE: &str =
-    "b3ae91e8bcfb96ce9d1f6faab5b9f60fe851e725750377bd0565bb886d06cae1";
+    "8546514ec4565a37d8be1a069980b94e4514c02e5a7ada679faa43475861f778";
 
 #[test]
 fn both_backends_learn_the_same_function() {
