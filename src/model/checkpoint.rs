@@ -341,6 +341,14 @@ impl Checkpoint {
                     message,
                 }
             })?;
+        let digest = model.weights_digest();
+        if digest != manifest.weights_digest {
+            return Err(ModelError::Hash {
+                path: dir.join(WEIGHTS_FILE),
+                expected: manifest.weights_digest.clone(),
+                found: digest,
+            });
+        }
         Ok(Checkpoint { manifest, model })
     }
 }
@@ -351,6 +359,16 @@ fn model_from_records(
     optimizer: Vec<u8>,
 ) -> Result<Model, (&'static str, String)> {
     let spec: &FeatureSpec = &manifest.features;
+    if spec.width() == 0 || spec.outputs == 0 {
+        return Err((
+            MANIFEST_FILE,
+            format!(
+                "the manifest describes a network with input width {} and {} outputs",
+                spec.width(),
+                spec.outputs
+            ),
+        ));
+    }
     let widths = layer_widths(spec, &manifest.model);
     let skeleton: Vec<LayerWeights> = widths
         .windows(2)

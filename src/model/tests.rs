@@ -418,6 +418,27 @@ fn checkpoint_round_trip_hash_check_and_schema_check() {
     assert!(err.to_string().contains("weights.bpk"), "{err}");
     assert!(checkpoint::verify(&path).is_err());
 
+    // A manifest whose weight values digest was edited is refused too.
+    let other = model
+        .save(
+            &models,
+            &summary(),
+            &CheckpointMeta {
+                id: crate::ids::ModelId(4),
+                ..meta.clone()
+            },
+        )
+        .expect("save");
+    let manifest_path = other.join(checkpoint::MANIFEST_FILE);
+    let text = std::fs::read_to_string(&manifest_path).expect("read");
+    let digest = model.weights_digest();
+    std::fs::write(&manifest_path, text.replace(&digest, &"0".repeat(64))).expect("write");
+    let r = Checkpoint::load(&other, "abc");
+    assert!(matches!(r, Err(ModelError::Hash { .. })), "{r:?}");
+    std::fs::write(&manifest_path, "{").expect("write");
+    let err = Checkpoint::load(&other, "abc").expect_err("broken manifest");
+    assert!(matches!(err, ModelError::Manifest { .. }), "{err}");
+
     let err = Checkpoint::load(&models.join("m000009"), "abc").expect_err("missing");
     assert!(matches!(err, ModelError::Missing { .. }), "{err}");
 }
