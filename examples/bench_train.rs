@@ -155,7 +155,8 @@ pub fn main() {
     ];
     let mut trained: Option<Model> = None;
     for (name, backend, net, batch, lr) in runs {
-        if !name.contains(&filter) && !(filter == "predict" && trained.is_none()) {
+        let wanted = name.contains(&filter) || (filter == "predict" && trained.is_none());
+        if !wanted {
             continue;
         }
         let cfg = TrainingConfig {
