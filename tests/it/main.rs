@@ -5,3 +5,4 @@ mod crash;
 mod ingest;
 mod support;
 mod tamper;
+mod training;

@@ -1,0 +1,456 @@
+use super::*;
+use crate::config::{Activation, Backend, ModelConfig, Task};
+use crate::schema::{InputEncoding, Vocab, Vocabularies, number_cell};
+use burn::tensor::Gradients;
+
+fn spec(inputs: usize, task: Task, outputs: usize) -> FeatureSpec {
+    FeatureSpec {
+        inputs: (0..inputs)
+            .map(|c| InputEncoding::Number {
+                column: c,
+                mean: 0.0,
+                std: 1.0,
+            })
+            .collect(),
+        target: inputs,
+        task,
+        outputs,
+    }
+}
+
+fn config(hidden: Vec<usize>, activation: Activation, init_scale: f64) -> ModelConfig {
+    ModelConfig {
+        hidden,
+        activation,
+        init_scale,
+        ..ModelConfig::default()
+    }
+}
+
+fn tensor2(values: &[f32], rows: usize, device: &Device) -> Tensor<2> {
+    Tensor::<2>::from_data(
+        TensorData::new(values.to_vec(), [rows, values.len() / rows]),
+        device,
+    )
+}
+
+fn values<const D: usize>(t: Tensor<D>) -> Vec<f32> {
+    tensor_values(t.into_data())
+}
+
+fn grad_of(x: &Tensor<2>, grads: &Gradients) -> Vec<f32> {
+    values(x.grad(grads).expect("input tracks a gradient"))
+}
+
+const BACKENDS: [Backend; 2] = [Backend::Flex, Backend::Ndarray];
+
+/// Inputs from −6 to 6, where both functions saturate, through 0.
+fn grid() -> Vec<f32> {
+    (0..241).map(|i| -6.0 + 0.05 * i as f32).collect()
+}
+
+#[test]
+fn fast_activations_match_burn_in_value_and_gradient() {
+    // The custom path must agree with burn's own tanh/sigmoid within 1e-6
+    // in value and in gradient (BURN-NOTES.md measured this bound).
+    for backend in BACKENDS {
+        let dev = device(backend).autodiff();
+        let xs = grid();
+        type Act = fn(Tensor<2>) -> Tensor<2>;
+        let pairs: [(Act, Act); 2] = [
+            (activation::tanh_tracked, |x| x.tanh()),
+            (
+                activation::sigmoid_tracked,
+                burn::tensor::activation::sigmoid,
+            ),
+        ];
+        for (fast, reference) in pairs {
+            let a = tensor2(&xs, 1, &dev).require_grad();
+            let b = tensor2(&xs, 1, &dev).require_grad();
+            let ya = fast(a.clone());
+            let yb = reference(b.clone());
+            let (va, vb) = (values(ya.clone()), values(yb.clone()));
+            let ga = grad_of(&a, &ya.sum().backward());
+            let gb = grad_of(&b, &yb.sum().backward());
+            for i in 0..xs.len() {
+                assert!(
+                    (va[i] - vb[i]).abs() <= 1e-6,
+                    "{backend:?} value at {}: {} vs {}",
+                    xs[i],
+                    va[i],
+                    vb[i]
+                );
+                assert!(
+                    (ga[i] - gb[i]).abs() <= 1e-6,
+                    "{backend:?} grad at {}: {} vs {}",
+                    xs[i],
+                    ga[i],
+                    gb[i]
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn sigmoid_derivative_is_s_times_one_minus_s_and_peaks_at_a_quarter() {
+    // σ'(x) = σ(x)(1 − σ(x)), largest value 1/4 at x = 0 (common practice, no source).
+    let dev = device(Backend::Flex).autodiff();
+    let xs = grid();
+    let x = tensor2(&xs, 1, &dev).require_grad();
+    let y = activation::sigmoid_tracked(x.clone());
+    let s = values(y.clone());
+    let g = grad_of(&x, &y.sum().backward());
+    for i in 0..xs.len() {
+        assert!((g[i] - s[i] * (1.0 - s[i])).abs() < 1e-6);
+    }
+    let (at, peak) = g
+        .iter()
+        .enumerate()
+        .fold((0, f32::MIN), |a, (i, &v)| if v > a.1 { (i, v) } else { a });
+    assert!(xs[at].abs() < 1e-6, "peak at {}", xs[at]);
+    assert!((peak - 0.25).abs() < 1e-7, "peak {peak}");
+}
+
+#[test]
+fn l2_penalty_gradient_is_two_w() {
+    // d/dw (λ·Σw²) = 2λw (common practice, no source); the L1 term adds λ·sign(w).
+    let dev = device(Backend::Flex).autodiff();
+    let mut rng = Rng::new(7);
+    let weights = init_weights(&[3, 4, 2], 1.0, &mut rng);
+    let net = Net::from_weights(&weights, Activation::Relu, 0.0, &dev);
+    let lambda = 0.3;
+    let grads = net
+        .penalty(lambda, 0.0)
+        .expect("l2 > 0 gives a penalty")
+        .backward();
+    for (layer, lw) in net.layers.iter().zip(&weights) {
+        let g = values(layer.weight.val().grad(&grads).expect("weight gradient"));
+        for (gi, wi) in g.iter().zip(&lw.weight) {
+            assert!((gi - 2.0 * lambda as f32 * wi).abs() < 1e-6);
+        }
+    }
+    let grads = net
+        .penalty(0.0, lambda)
+        .expect("l1 > 0 gives a penalty")
+        .backward();
+    let g = values(
+        net.layers[0]
+            .weight
+            .val()
+            .grad(&grads)
+            .expect("weight gradient"),
+    );
+    for (gi, wi) in g.iter().zip(&weights[0].weight) {
+        assert!((gi - lambda as f32 * wi.signum()).abs() < 1e-6);
+    }
+    assert!(net.penalty(0.0, 0.0).is_none());
+}
+
+#[test]
+fn gradient_of_the_whole_equals_the_sum_over_chunks() {
+    // The gradient of a summed loss over a data set is the sum of the
+    // gradients over any split into chunks (common practice, no source).
+    for backend in BACKENDS {
+        let dev = device(backend).autodiff();
+        let mut rng = Rng::new(11);
+        let weights = init_weights(&[3, 8, 1], 1.0, &mut rng);
+        let net = Net::from_weights(&weights, Activation::Tanh, 0.0, &dev);
+        let n = 50;
+        let x: Vec<f32> = (0..n * 3).map(|_| rng.normal() as f32).collect();
+        let y: Vec<f32> = (0..n).map(|_| rng.normal() as f32).collect();
+        let sse = |lo: usize, hi: usize| {
+            let xt = tensor2(&x[lo * 3..hi * 3], hi - lo, &dev);
+            let yt = tensor2(&y[lo..hi], hi - lo, &dev);
+            net.forward(xt, None).sub(yt).square().sum()
+        };
+        let grad = |g: &Gradients| values(net.layers[0].weight.val().grad(g).expect("gradient"));
+        let whole = grad(&sse(0, n).backward());
+        let mut parts = vec![0.0f32; whole.len()];
+        for (lo, hi) in [(0, 17), (17, 18), (18, 50)] {
+            for (p, v) in parts.iter_mut().zip(grad(&sse(lo, hi).backward())) {
+                *p += v;
+            }
+        }
+        for (a, b) in whole.iter().zip(&parts) {
+            assert!(
+                (a - b).abs() <= 1e-4 * (1.0 + a.abs()),
+                "{backend:?}: {a} vs {b}"
+            );
+        }
+    }
+}
+
+#[test]
+fn tanh_network_with_tiny_weights_is_close_to_linear() {
+    // tanh(z) ≈ z for small z, so with tiny weights the network is close to
+    // the linear map W₂ᵀ(W₁ᵀx) + b (common practice, no source).
+    let mut rng = Rng::new(3);
+    let weights = init_weights(&[4, 16, 1], 1e-3, &mut rng);
+    let net = Net::from_weights(&weights, Activation::Tanh, 0.0, &device(Backend::Flex));
+    let n = 20;
+    let x: Vec<f32> = (0..n * 4).map(|_| rng.normal() as f32).collect();
+    let got = values(net.forward(tensor2(&x, n, &device(Backend::Flex)), None));
+    for r in 0..n {
+        let mut h = [0.0f64; 16];
+        for (j, hj) in h.iter_mut().enumerate() {
+            for i in 0..4 {
+                *hj += f64::from(x[r * 4 + i]) * f64::from(weights[0].weight[i * 16 + j]);
+            }
+        }
+        let lin: f64 = h
+            .iter()
+            .enumerate()
+            .map(|(j, hj)| hj * f64::from(weights[1].weight[j]))
+            .sum();
+        assert!(lin.abs() > 0.0);
+        let rel = (f64::from(got[r]) - lin).abs() / lin.abs();
+        assert!(rel < 1e-4, "row {r}: {} vs linear {lin}", got[r]);
+    }
+}
+
+#[test]
+fn softmax_probabilities_sum_to_one_and_class_is_arg_max() {
+    // Class probabilities from a softmax head sum to 1; the predicted class
+    // is the arg max (common practice, no source).
+    let model = Model::new(
+        spec(3, Task::Classification, 4),
+        &config(vec![8], Activation::Relu, 3.0),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        5,
+    )
+    .expect("valid shape");
+    let mut rng = Rng::new(9);
+    let x: Vec<f32> = (0..30 * 3).map(|_| rng.normal() as f32).collect();
+    let Predictions::Classification {
+        classes,
+        probabilities,
+        n_classes,
+    } = model
+        .predict_features(&x, Backend::Flex)
+        .expect("width matches")
+    else {
+        panic!("classification model gives class predictions");
+    };
+    assert_eq!(n_classes, 4);
+    assert_eq!(classes.len(), 30);
+    let mut seen = std::collections::BTreeSet::new();
+    for (r, p) in probabilities.chunks(4).enumerate() {
+        let s: f32 = p.iter().sum();
+        assert!((s - 1.0).abs() < 1e-6, "row {r} sums to {s}");
+        let best = p
+            .iter()
+            .enumerate()
+            .fold(0, |b, (i, v)| if *v > p[b] { i } else { b });
+        assert_eq!(classes[r] as usize, best);
+        seen.insert(classes[r]);
+    }
+    assert!(
+        seen.len() > 1,
+        "a random network should not predict a single class for all rows"
+    );
+    assert_eq!(
+        softmax(&[1000.0, 1000.0]),
+        vec![0.5, 0.5],
+        "large logits do not overflow"
+    );
+    assert_eq!(arg_max(&[0.1, 0.7, 0.7]), 1);
+}
+
+#[test]
+fn row_losses_are_squared_error_and_cross_entropy() {
+    let scale = TargetScale {
+        mean: 10.0,
+        std: 2.0,
+    };
+    // Raw outputs 0.5 and −1 are 11 and 8 in target units.
+    let l = row_losses_from_raw(Task::Regression, 1, scale, &[0.5, -1.0], &[12.0, 8.0]);
+    assert_eq!(l, vec![1.0, 0.0]);
+    let l = row_losses_from_raw(
+        Task::Classification,
+        2,
+        TargetScale::IDENTITY,
+        &[0.0, 0.0, 0.0, 0.0],
+        &[1.0, 5.0],
+    );
+    assert!((l[0] - std::f64::consts::LN_2).abs() < 1e-12);
+    assert_eq!(
+        l[1], MAX_ROW_LOG_LOSS,
+        "a class without an output is charged the cap"
+    );
+}
+
+#[test]
+fn predictions_agree_across_backends_and_chunks() {
+    let model = Model::new(
+        spec(5, Task::Regression, 1),
+        &config(vec![32, 32], Activation::Tanh, 1.0),
+        TargetScale {
+            mean: 3.0,
+            std: 0.5,
+        },
+        Backend::Flex,
+        1,
+    )
+    .expect("valid shape");
+    let mut rng = Rng::new(2);
+    let n = PREDICT_CHUNK + 123;
+    let x: Vec<f32> = (0..n * 5).map(|_| rng.normal() as f32).collect();
+    let (Predictions::Regression { values: a }, Predictions::Regression { values: b }) = (
+        model.predict_features(&x, Backend::Flex).expect("width"),
+        model.predict_features(&x, Backend::Ndarray).expect("width"),
+    ) else {
+        panic!("regression predictions");
+    };
+    assert_eq!(a.len(), n);
+    for (p, q) in a.iter().zip(&b) {
+        assert!((p - q).abs() < 1e-5, "{p} vs {q}");
+    }
+    // The chunk boundary changes nothing: the last row alone gives the same value.
+    let last = model
+        .predict_features(&x[(n - 1) * 5..], Backend::Flex)
+        .expect("width");
+    assert_eq!(
+        last,
+        Predictions::Regression {
+            values: vec![a[n - 1]]
+        }
+    );
+    assert!(matches!(
+        model.predict_features(&x[..7], Backend::Flex),
+        Err(ModelError::FeatureWidth { len: 7, width: 5 })
+    ));
+}
+
+fn summary() -> TrainingSummary {
+    TrainingSummary {
+        kind: RunKind::Cold,
+        epochs: 0,
+        best_epoch: 0,
+        rows: 0,
+        replay_rows: 0,
+        validation_rows: 0,
+        seconds: 0.0,
+        epoch_seconds: vec![],
+        train_loss: vec![],
+        validation_loss: vec![],
+        stop: StopReason::EpochLimit,
+        learning_rate: 1e-3,
+        config: crate::config::TrainingConfig::default(),
+    }
+}
+
+#[test]
+fn checkpoint_round_trip_hash_check_and_schema_check() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let models = dir.path().join("models");
+    let model = Model::new(
+        spec(2, Task::Classification, 3),
+        &config(vec![4], Activation::Sigmoid, 1.0),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        8,
+    )
+    .expect("valid shape");
+    let mut vocabs = Vocabularies::new();
+    vocabs.insert(
+        2,
+        Vocab::from_values(vec!["a".into(), "b".into(), "c".into()]),
+    );
+    let created = chrono::DateTime::parse_from_rfc3339("2026-01-02T03:04:05Z")
+        .expect("date")
+        .to_utc();
+    let meta = CheckpointMeta {
+        id: crate::ids::ModelId(3),
+        parent: Some(crate::ids::ModelId(2)),
+        created_at: created,
+        schema_fingerprint: "abc",
+        vocabularies: &vocabs,
+    };
+    let path = model.save(&models, &summary(), &meta).expect("save");
+    assert_eq!(path, models.join("m000003"));
+    let names: Vec<String> = std::fs::read_dir(&models)
+        .expect("list")
+        .map(|e| e.expect("entry").file_name().to_string_lossy().into_owned())
+        .collect();
+    assert_eq!(
+        names,
+        vec!["m000003".to_string()],
+        "no temp folder left behind"
+    );
+    assert!(matches!(
+        model.save(&models, &summary(), &meta),
+        Err(ModelError::Exists { .. })
+    ));
+
+    let loaded = Checkpoint::load(&path, "abc").expect("load");
+    assert_eq!(loaded.manifest.created_at, "2026-01-02T03:04:05.000Z");
+    assert_eq!(loaded.manifest.parent, Some(crate::ids::ModelId(2)));
+    assert_eq!(loaded.manifest.vocabularies()[&2].code("c"), Some(2));
+    assert_eq!(loaded.model.weights_digest(), model.weights_digest());
+    let mut rows = crate::schema::RowMatrix::new(3);
+    rows.push_row(&[number_cell(Some(0.3)), number_cell(Some(-1.0)), 1]);
+    rows.push_row(&[number_cell(Some(2.0)), number_cell(Some(0.5)), 2]);
+    assert_eq!(
+        loaded.model.predict(&rows, Backend::Flex).expect("predict"),
+        model.predict(&rows, Backend::Flex).expect("predict")
+    );
+    assert_eq!(
+        loaded
+            .model
+            .row_losses(&rows, Backend::Flex)
+            .expect("losses"),
+        model.row_losses(&rows, Backend::Flex).expect("losses")
+    );
+
+    let err = Checkpoint::load(&path, "other").expect_err("schema differs");
+    assert!(matches!(err, ModelError::Schema { .. }));
+    assert!(err.to_string().contains("migrate"), "{err}");
+
+    let weights = path.join(checkpoint::WEIGHTS_FILE);
+    let mut bytes = std::fs::read(&weights).expect("read");
+    let last = bytes.len() - 1;
+    bytes[last] ^= 1;
+    std::fs::write(&weights, bytes).expect("write");
+    let err = Checkpoint::load(&path, "abc").expect_err("tampered");
+    assert!(matches!(err, ModelError::Hash { .. }), "{err}");
+    assert!(err.to_string().contains("weights.bpk"), "{err}");
+    assert!(checkpoint::verify(&path).is_err());
+
+    // A manifest whose weight values digest was edited is refused too.
+    let other = model
+        .save(
+            &models,
+            &summary(),
+            &CheckpointMeta {
+                id: crate::ids::ModelId(4),
+                ..meta.clone()
+            },
+        )
+        .expect("save");
+    let manifest_path = other.join(checkpoint::MANIFEST_FILE);
+    let text = std::fs::read_to_string(&manifest_path).expect("read");
+    let digest = model.weights_digest();
+    std::fs::write(&manifest_path, text.replace(&digest, &"0".repeat(64))).expect("write");
+    let r = Checkpoint::load(&other, "abc");
+    assert!(matches!(r, Err(ModelError::Hash { .. })), "{r:?}");
+    std::fs::write(&manifest_path, "{").expect("write");
+    let err = Checkpoint::load(&other, "abc").expect_err("broken manifest");
+    assert!(matches!(err, ModelError::Manifest { .. }), "{err}");
+
+    let err = Checkpoint::load(&models.join("m000009"), "abc").expect_err("missing");
+    assert!(matches!(err, ModelError::Missing { .. }), "{err}");
+}
+
+#[test]
+fn empty_shapes_are_refused() {
+    let err = Model::new(
+        spec(2, Task::Classification, 0),
+        &ModelConfig::default(),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        1,
+    );
+    assert!(matches!(err, Err(ModelError::Shape { outputs: 0, .. })));
+}

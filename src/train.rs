@@ -1,0 +1,608 @@
+//! Cold and warm training runs: hand-written mini-batch loops over burn's
+//! autodiff and Adam, with seeded shuffles, an inner validation split for
+//! early stopping (best weights kept), L2/L1 penalties, replay of older rows
+//! and shrink-and-perturb for warm starts, a wall-clock budget, a cancel
+//! flag and a progress callback. Nothing here prints.
+//!
+//! Everything random comes from the project's seeded `Rng` (split, shuffle,
+//! replay sample, initial weights, dropout masks), so the same seed, backend,
+//! build profile and rows give the same weights. Nothing is global: two runs
+//! may go on two threads at once.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Instant;
+
+use burn::optim::GradientsParams;
+use burn::tensor::activation::log_softmax;
+use burn::tensor::{Tensor, TensorData};
+
+use crate::config::{ModelConfig, Task, TrainingConfig};
+use crate::model::{
+    LayerWeights, Model, ModelError, RunKind, StopReason, TargetScale, TrainingSummary, device,
+    init_weights, layer_widths,
+};
+use crate::rng::Rng;
+use crate::schema::{FeatureSpec, RowMatrix};
+
+/// A training run that did not produce a model.
+#[derive(Debug, thiserror::Error)]
+pub enum TrainError {
+    #[error("training was cancelled")]
+    Cancelled,
+    #[error("no usable {what} rows to train on (rows need a target value{classes})")]
+    NoRows {
+        what: &'static str,
+        classes: &'static str,
+    },
+    #[error(
+        "the loss became {value} in epoch {epoch}; lower the learning rate or check the data for extreme values"
+    )]
+    Diverged { epoch: usize, value: f64 },
+    #[error(transparent)]
+    Model(#[from] ModelError),
+}
+
+/// Where a run is, sent to the progress callback after every mini-batch
+/// and at the end of every epoch.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Progress {
+    pub kind: RunKind,
+    /// 1-based epoch.
+    pub epoch: usize,
+    pub max_epochs: usize,
+    /// Mini-batches done in this epoch.
+    pub batch: usize,
+    pub batches: usize,
+    /// Set at the end of an epoch.
+    pub train_loss: Option<f64>,
+    pub validation_loss: Option<f64>,
+    pub elapsed_seconds: f64,
+}
+
+/// How the caller steers a run from outside: a cancel flag checked between
+/// mini-batches and an optional progress callback.
+#[derive(Clone, Copy, Default)]
+pub struct Control<'a> {
+    pub cancel: Option<&'a AtomicBool>,
+    pub progress: Option<&'a dyn Fn(Progress)>,
+}
+
+impl std::fmt::Debug for Control<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Control")
+            .field("cancel", &self.cancel)
+            .finish_non_exhaustive()
+    }
+}
+
+/// A trained model and what the run did.
+#[derive(Debug, Clone)]
+pub struct Trained {
+    pub model: Model,
+    pub summary: TrainingSummary,
+}
+
+/// Seeded streams for the separate random needs of one run.
+fn stream(seed: u64, purpose: u64) -> Rng {
+    Rng::new(seed ^ purpose.wrapping_mul(0x9E37_79B9_7F4A_7C15))
+}
+const SPLIT: u64 = 1;
+const INIT: u64 = 2;
+const DROPOUT: u64 = 3;
+const PERTURB: u64 = 4;
+
+/// Encoded rows: features row-major, targets scaled for training
+/// (standardised value for regression, class code for classification).
+#[derive(Debug, Clone, Default)]
+struct Data {
+    x: Vec<f32>,
+    y: Vec<f32>,
+    width: usize,
+}
+
+impl Data {
+    fn n(&self) -> usize {
+        self.y.len()
+    }
+
+    /// Encodes `rows`, dropping rows without a usable target (missing, or
+    /// a class the network has no output for).
+    fn encode(spec: &FeatureSpec, rows: &RowMatrix) -> (Vec<f32>, Vec<f32>) {
+        let x = spec.encode_inputs(rows);
+        let y = spec.encode_targets(rows);
+        let w = spec.width();
+        let mut xs = Vec::with_capacity(x.len());
+        let mut ys = Vec::with_capacity(y.len());
+        for (r, &t) in y.iter().enumerate() {
+            let usable =
+                !t.is_nan() && (spec.task == Task::Regression || (t as usize) < spec.outputs);
+            if usable {
+                xs.extend_from_slice(&x[r * w..(r + 1) * w]);
+                ys.push(t);
+            }
+        }
+        (xs, ys)
+    }
+
+    fn subset(&self, idx: &[usize]) -> Data {
+        let w = self.width;
+        let mut x = Vec::with_capacity(idx.len() * w);
+        let mut y = Vec::with_capacity(idx.len());
+        for &i in idx {
+            x.extend_from_slice(&self.x[i * w..(i + 1) * w]);
+            y.push(self.y[i]);
+        }
+        Data { x, y, width: w }
+    }
+
+    fn scale_targets(&mut self, task: Task, scale: TargetScale) {
+        if task == Task::Regression {
+            for v in &mut self.y {
+                *v = ((f64::from(*v) - scale.mean) / scale.std) as f32;
+            }
+        }
+    }
+
+    fn append(&mut self, other: &Data) {
+        self.x.extend_from_slice(&other.x);
+        self.y.extend_from_slice(&other.y);
+    }
+}
+
+/// Splits `0..n` into (train, validation) with `fraction` of the rows (at
+/// least one, and at least one left to train on) in validation. No split
+/// when `fraction` is 0 or there are fewer than two rows.
+fn split(n: usize, fraction: f64, rng: &mut Rng) -> (Vec<usize>, Vec<usize>) {
+    let mut idx: Vec<usize> = (0..n).collect();
+    rng.shuffle(&mut idx);
+    let n_val = if fraction <= 0.0 || n < 2 {
+        0
+    } else {
+        ((n as f64 * fraction).round() as usize).clamp(1, n - 1)
+    };
+    let mut val = idx.split_off(n - n_val);
+    idx.sort_unstable();
+    val.sort_unstable();
+    (idx, val)
+}
+
+/// Trains a new model from scratch on `rows` with the given feature
+/// encoding (scaler stats frozen by the caller). `patience = 0` turns early
+/// stopping off and trains on every row.
+pub fn train_cold(
+    spec: &FeatureSpec,
+    model_config: &ModelConfig,
+    cfg: &TrainingConfig,
+    rows: &RowMatrix,
+    control: Control<'_>,
+) -> Result<Trained, TrainError> {
+    let started = Instant::now();
+    let (x, y) = Data::encode(spec, rows);
+    let all = Data {
+        x,
+        y,
+        width: spec.width(),
+    };
+    if all.n() == 0 {
+        return Err(no_rows("training", spec.task));
+    }
+    let mut rng = stream(cfg.seed, SPLIT);
+    let fraction = if cfg.patience == 0 {
+        0.0
+    } else {
+        cfg.validation_fraction
+    };
+    let (train_idx, val_idx) = split(all.n(), fraction, &mut rng);
+    let mut train = all.subset(&train_idx);
+    let mut val = all.subset(&val_idx);
+    let target = match spec.task {
+        Task::Regression => TargetScale::of(&train.y),
+        Task::Classification => TargetScale::IDENTITY,
+    };
+    train.scale_targets(spec.task, target);
+    val.scale_targets(spec.task, target);
+    let init_seed = stream(cfg.seed, INIT).next_u64();
+    let model = Model::new(spec.clone(), model_config, target, cfg.backend, init_seed)?;
+    let run = Run {
+        kind: RunKind::Cold,
+        cfg,
+        learning_rate: cfg.learning_rate,
+        max_epochs: cfg.cold_epochs,
+        control,
+        started,
+    };
+    let fixed = train.n();
+    run.fit(model, &train, fixed, 0, &val, &mut rng)
+}
+
+/// Continues training `parent` (weights and Adam state) on `new_rows`,
+/// mixing in each epoch a fresh sample of `replay_ratio × new rows` from
+/// `old_rows`. The parent's feature encoding and target scale are kept.
+pub fn train_warm(
+    parent: &Model,
+    cfg: &TrainingConfig,
+    new_rows: &RowMatrix,
+    old_rows: &RowMatrix,
+    control: Control<'_>,
+) -> Result<Trained, TrainError> {
+    let started = Instant::now();
+    let spec = parent.spec().clone();
+    let target = parent.target_scale();
+    let (x, y) = Data::encode(&spec, new_rows);
+    let mut new = Data {
+        x,
+        y,
+        width: spec.width(),
+    };
+    if new.n() == 0 {
+        return Err(no_rows("new", spec.task));
+    }
+    let (x, y) = Data::encode(&spec, old_rows);
+    let mut old = Data {
+        x,
+        y,
+        width: spec.width(),
+    };
+    new.scale_targets(spec.task, target);
+    old.scale_targets(spec.task, target);
+
+    let mut rng = stream(cfg.seed, SPLIT);
+    let fraction = if cfg.patience == 0 {
+        0.0
+    } else {
+        cfg.validation_fraction
+    };
+    let (new_train_idx, new_val_idx) = split(new.n(), fraction, &mut rng);
+    let mut old_idx: Vec<usize> = (0..old.n()).collect();
+    rng.shuffle(&mut old_idx);
+    let old_val_n =
+        ((new_val_idx.len() as f64 * cfg.replay_ratio).round() as usize).min(old.n() / 2);
+    let old_val_idx = old_idx.split_off(old.n() - old_val_n);
+
+    let mut pool = new.subset(&new_train_idx);
+    let fixed = pool.n();
+    pool.append(&old.subset(&old_idx));
+    let replay = ((fixed as f64 * cfg.replay_ratio).round() as usize).min(old_idx.len());
+    let mut val = new.subset(&new_val_idx);
+    val.append(&old.subset(&old_val_idx));
+
+    let mut model = parent.clone();
+    model.set_backend(cfg.backend);
+    if cfg.shrink != 1.0 || cfg.perturb != 0.0 {
+        let widths = layer_widths(&spec, model.config());
+        let fresh = init_weights(
+            &widths,
+            model.config().init_scale,
+            &mut stream(cfg.seed, PERTURB),
+        );
+        let mixed = shrink_perturb(&model.weights(), &fresh, cfg.shrink, cfg.perturb);
+        model.set_weights(&mixed);
+    }
+    let run = Run {
+        kind: RunKind::Warm,
+        cfg,
+        learning_rate: cfg.warm_learning_rate.unwrap_or(cfg.learning_rate),
+        max_epochs: cfg.warm_epochs,
+        control,
+        started,
+    };
+    run.fit(model, &pool, fixed, replay, &val, &mut rng)
+}
+
+/// θ ← shrink·θ + perturb·θ_fresh, value by value.
+pub fn shrink_perturb(
+    current: &[LayerWeights],
+    fresh: &[LayerWeights],
+    shrink: f64,
+    perturb: f64,
+) -> Vec<LayerWeights> {
+    let mix = |a: &[f32], b: &[f32]| -> Vec<f32> {
+        a.iter()
+            .zip(b)
+            .map(|(&a, &b)| (shrink * f64::from(a) + perturb * f64::from(b)) as f32)
+            .collect()
+    };
+    current
+        .iter()
+        .zip(fresh)
+        .map(|(c, f)| LayerWeights {
+            inputs: c.inputs,
+            outputs: c.outputs,
+            weight: mix(&c.weight, &f.weight),
+            bias: mix(&c.bias, &f.bias),
+        })
+        .collect()
+}
+
+fn no_rows(what: &'static str, task: Task) -> TrainError {
+    let classes = match task {
+        Task::Regression => "",
+        Task::Classification => " of a class known when the model was first trained",
+    };
+    TrainError::NoRows { what, classes }
+}
+
+struct Run<'a> {
+    kind: RunKind,
+    cfg: &'a TrainingConfig,
+    learning_rate: f64,
+    max_epochs: usize,
+    control: Control<'a>,
+    started: Instant,
+}
+
+impl Run<'_> {
+    /// The epoch loop. Each epoch trains on the first `fixed` rows of
+    /// `data` plus `replay` rows sampled from the rest, in shuffled
+    /// mini-batches.
+    fn fit(
+        &self,
+        mut model: Model,
+        data: &Data,
+        fixed: usize,
+        replay: usize,
+        val: &Data,
+        rng: &mut Rng,
+    ) -> Result<Trained, TrainError> {
+        let cfg = self.cfg;
+        let spec = model.spec().clone();
+        let (task, k, width) = (spec.task, spec.outputs, spec.width());
+        let unit = match task {
+            Task::Regression => model.target_scale().std.powi(2),
+            Task::Classification => 1.0,
+        };
+        let (l2, l1) = (model.config().l2, model.config().l1);
+        let mut dropout_rng = (model.config().dropout > 0.0).then(|| stream(cfg.seed, DROPOUT));
+        let train_device = device(cfg.backend).autodiff();
+        let batch_size = cfg.batch_size.max(1);
+        let per_epoch = fixed + replay;
+        let batches = per_epoch.div_ceil(batch_size);
+
+        let mut train_loss = Vec::new();
+        let mut validation_loss = Vec::new();
+        let mut epoch_seconds = Vec::new();
+        let mut best: Option<(f64, usize, Vec<LayerWeights>)> = None;
+        let mut stop = StopReason::EpochLimit;
+        let mut xb = Vec::with_capacity(batch_size * width);
+        let mut yb = Vec::with_capacity(batch_size * k.max(1));
+        let mut order: Vec<usize> = Vec::with_capacity(per_epoch);
+        let elapsed = |t: &Instant| t.elapsed().as_secs_f64();
+
+        'epochs: for epoch in 1..=self.max_epochs {
+            let epoch_start = Instant::now();
+            order.clear();
+            order.extend(0..fixed);
+            if replay > 0 {
+                let mut rest: Vec<usize> = (fixed..data.n()).collect();
+                // Partial Fisher–Yates: the first `replay` entries are a
+                // uniform sample without replacement.
+                for i in 0..replay {
+                    let j = i + rng.below(rest.len() - i);
+                    rest.swap(i, j);
+                }
+                order.extend_from_slice(&rest[..replay]);
+            }
+            rng.shuffle(&mut order);
+
+            let mut loss_sum = 0.0;
+            for (b, chunk) in order.chunks(batch_size).enumerate() {
+                if self
+                    .control
+                    .cancel
+                    .is_some_and(|c| c.load(Ordering::Relaxed))
+                {
+                    return Err(TrainError::Cancelled);
+                }
+                if elapsed(&self.started) >= cfg.max_seconds {
+                    stop = StopReason::TimeBudget;
+                    break 'epochs;
+                }
+                let n = chunk.len();
+                xb.clear();
+                yb.clear();
+                for &i in chunk {
+                    xb.extend_from_slice(&data.x[i * width..(i + 1) * width]);
+                }
+                match task {
+                    Task::Regression => yb.extend(chunk.iter().map(|&i| data.y[i])),
+                    Task::Classification => {
+                        yb.resize(n * k, 0.0);
+                        for (r, &i) in chunk.iter().enumerate() {
+                            yb[r * k + data.y[i] as usize] = 1.0;
+                        }
+                    }
+                }
+                let x =
+                    Tensor::<2>::from_data(TensorData::new(xb.clone(), [n, width]), &train_device);
+                let y = Tensor::<2>::from_data(
+                    TensorData::new(yb.clone(), [n, yb.len() / n]),
+                    &train_device,
+                );
+                let (net, optimizer) = model.parts_mut();
+                let out = net.forward(x, dropout_rng.as_mut());
+                let data_loss = batch_loss(task, out, y);
+                let value = f64::from(data_loss.clone().into_scalar::<f32>());
+                if !value.is_finite() {
+                    return Err(TrainError::Diverged { epoch, value });
+                }
+                loss_sum += value * n as f64;
+                let loss = match net.penalty(l2, l1) {
+                    Some(p) => data_loss.add(p),
+                    None => data_loss,
+                };
+                let grads = GradientsParams::from_grads(loss.backward(), &*net);
+                *net = optimizer.step(self.learning_rate, net.clone(), grads);
+                self.report(epoch, b + 1, batches, None, None);
+            }
+            epoch_seconds.push(epoch_start.elapsed().as_secs_f64());
+            let tl = loss_sum / per_epoch.max(1) as f64 * unit;
+            train_loss.push(tl);
+            let mut vl = None;
+            if val.n() > 0 {
+                let v = mean_loss(&model, val)? * unit;
+                validation_loss.push(v);
+                vl = Some(v);
+                if best.as_ref().is_none_or(|(b, _, _)| v < *b) {
+                    best = Some((v, epoch, model.weights()));
+                }
+            }
+            self.report(epoch, batches, batches, Some(tl), vl);
+            if let Some((_, best_epoch, _)) = &best
+                && cfg.patience > 0
+                && epoch - best_epoch >= cfg.patience
+            {
+                stop = StopReason::EarlyStop;
+                break;
+            }
+        }
+
+        let epochs = train_loss.len();
+        let best_epoch = match best {
+            Some((_, e, w)) => {
+                if e != epochs {
+                    model.set_weights(&w);
+                }
+                e
+            }
+            None => epochs,
+        };
+        let summary = TrainingSummary {
+            kind: self.kind,
+            epochs,
+            best_epoch,
+            rows: fixed,
+            replay_rows: replay,
+            validation_rows: val.n(),
+            seconds: elapsed(&self.started),
+            epoch_seconds,
+            train_loss,
+            validation_loss,
+            stop,
+            learning_rate: self.learning_rate,
+            config: cfg.clone(),
+        };
+        Ok(Trained { model, summary })
+    }
+
+    fn report(
+        &self,
+        epoch: usize,
+        batch: usize,
+        batches: usize,
+        train_loss: Option<f64>,
+        validation_loss: Option<f64>,
+    ) {
+        if let Some(f) = self.control.progress {
+            f(Progress {
+                kind: self.kind,
+                epoch,
+                max_epochs: self.max_epochs,
+                batch,
+                batches,
+                train_loss,
+                validation_loss,
+                elapsed_seconds: self.started.elapsed().as_secs_f64(),
+            });
+        }
+    }
+}
+
+/// Mean data loss of a batch: MSE (regression, `y` is `n × 1`) or
+/// cross-entropy against one-hot `y` (classification).
+pub(crate) fn batch_loss(task: Task, out: Tensor<2>, y: Tensor<2>) -> Tensor<1> {
+    match task {
+        Task::Regression => out.sub(y).square().mean(),
+        Task::Classification => {
+            let [n, _] = out.dims();
+            log_softmax(out, 1).mul(y).sum().mul_scalar(-1.0 / n as f64)
+        }
+    }
+}
+
+/// Mean loss of `model` on `data` in training units (scaled targets).
+fn mean_loss(model: &Model, data: &Data) -> Result<f64, ModelError> {
+    let raw = model.raw_outputs(&data.x, model.backend())?;
+    let spec = model.spec();
+    let losses = crate::model::row_losses_from_raw(
+        spec.task,
+        spec.outputs,
+        TargetScale::IDENTITY,
+        &raw,
+        &data.y,
+    );
+    Ok(losses.iter().sum::<f64>() / losses.len().max(1) as f64)
+}
+
+/// Ordinary least squares with an intercept on a row-major feature matrix,
+/// solved in f64 through the normal equations with a Cholesky factor (with
+/// a tiny ridge `lambda` on the slopes when given). Returns
+/// `[intercept, slope_1, …]` in the features' units, or `None` when the
+/// system is singular. A closed-form reference for linear models.
+pub fn least_squares(x: &[f64], y: &[f64], width: usize, lambda: f64) -> Option<Vec<f64>> {
+    let n = y.len();
+    if width == 0 || x.len() != n * width || n == 0 {
+        return None;
+    }
+    // Centre the columns: the intercept then separates, and the system is
+    // better conditioned.
+    let mean_x: Vec<f64> = (0..width)
+        .map(|j| (0..n).map(|i| x[i * width + j]).sum::<f64>() / n as f64)
+        .collect();
+    let mean_y = y.iter().sum::<f64>() / n as f64;
+    let mut a = vec![0.0; width * width];
+    let mut b = vec![0.0; width];
+    for i in 0..n {
+        let yi = y[i] - mean_y;
+        for j in 0..width {
+            let xj = x[i * width + j] - mean_x[j];
+            b[j] += xj * yi;
+            for l in 0..=j {
+                a[j * width + l] += xj * (x[i * width + l] - mean_x[l]);
+            }
+        }
+    }
+    for j in 0..width {
+        a[j * width + j] += lambda;
+        for l in 0..j {
+            a[l * width + j] = a[j * width + l];
+        }
+    }
+    // Cholesky: a = L·Lᵀ.
+    let mut lo = vec![0.0; width * width];
+    for j in 0..width {
+        for l in 0..=j {
+            let mut s = a[j * width + l];
+            for m in 0..l {
+                s -= lo[j * width + m] * lo[l * width + m];
+            }
+            if j == l {
+                if s <= 0.0 {
+                    return None;
+                }
+                lo[j * width + j] = s.sqrt();
+            } else {
+                lo[j * width + l] = s / lo[l * width + l];
+            }
+        }
+    }
+    let mut z = vec![0.0; width];
+    for j in 0..width {
+        let s = b[j] - (0..j).map(|m| lo[j * width + m] * z[m]).sum::<f64>();
+        z[j] = s / lo[j * width + j];
+    }
+    let mut beta = vec![0.0; width];
+    for j in (0..width).rev() {
+        let s = z[j]
+            - (j + 1..width)
+                .map(|m| lo[m * width + j] * beta[m])
+                .sum::<f64>();
+        beta[j] = s / lo[j * width + j];
+    }
+    let intercept = mean_y - beta.iter().zip(&mean_x).map(|(b, m)| b * m).sum::<f64>();
+    let mut out = vec![intercept];
+    out.extend(beta);
+    Some(out)
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,426 @@
+use super::*;
+use crate::config::{Activation, Backend};
+use crate::schema::{InputEncoding, number_cell};
+use std::cell::RefCell;
+
+fn spec(inputs: usize, task: Task, outputs: usize) -> FeatureSpec {
+    FeatureSpec {
+        inputs: (0..inputs)
+            .map(|c| InputEncoding::Number {
+                column: c,
+                mean: 0.0,
+                std: 1.0,
+            })
+            .collect(),
+        target: inputs,
+        task,
+        outputs,
+    }
+}
+
+/// y = 2·x0 − x1 + 0.5 + small noise, inputs standard normal.
+fn linear_rows(n: usize, seed: u64) -> RowMatrix {
+    let mut rng = Rng::new(seed);
+    let mut rows = RowMatrix::new(3);
+    for _ in 0..n {
+        let (a, b) = (rng.normal() as f32, rng.normal() as f32);
+        let y = 2.0 * a - b + 0.5 + 0.01 * rng.normal() as f32;
+        rows.push_row(&[
+            number_cell(Some(a)),
+            number_cell(Some(b)),
+            number_cell(Some(y)),
+        ]);
+    }
+    rows
+}
+
+fn small_cfg() -> TrainingConfig {
+    TrainingConfig {
+        batch_size: 32,
+        learning_rate: 1e-2,
+        cold_epochs: 30,
+        warm_epochs: 5,
+        patience: 5,
+        ..TrainingConfig::default()
+    }
+}
+
+fn linear_model() -> ModelConfig {
+    ModelConfig {
+        hidden: vec![],
+        ..ModelConfig::default()
+    }
+}
+
+#[test]
+fn split_keeps_every_row_once() {
+    let (t, v) = split(10, 0.25, &mut Rng::new(1));
+    assert_eq!((t.len(), v.len()), (7, 3));
+    let mut all: Vec<usize> = t.iter().chain(&v).copied().collect();
+    all.sort_unstable();
+    assert_eq!(all, (0..10).collect::<Vec<_>>());
+    assert_eq!(split(10, 0.0, &mut Rng::new(1)).1.len(), 0);
+    assert_eq!(
+        split(1, 0.5, &mut Rng::new(1)).1.len(),
+        0,
+        "a single row is never all validation"
+    );
+    assert_eq!(
+        split(3, 0.99, &mut Rng::new(1)).0.len(),
+        1,
+        "one row is always left to train on"
+    );
+}
+
+#[test]
+fn cold_run_learns_a_linear_rule_and_records_curves() {
+    let rows = linear_rows(400, 1);
+    let seen = RefCell::new(Vec::new());
+    let progress = |p: Progress| seen.borrow_mut().push(p);
+    let control = Control {
+        cancel: None,
+        progress: Some(&progress),
+    };
+    let t = train_cold(
+        &spec(2, Task::Regression, 1),
+        &linear_model(),
+        &small_cfg(),
+        &rows,
+        control,
+    )
+    .expect("trains");
+    let s = &t.summary;
+    assert_eq!(s.kind, RunKind::Cold);
+    assert_eq!((s.rows, s.validation_rows), (360, 40));
+    assert_eq!(s.train_loss.len(), s.epochs);
+    assert_eq!(s.validation_loss.len(), s.epochs);
+    assert!(
+        s.validation_loss[s.epochs - 1] < 1e-3,
+        "{:?}",
+        s.validation_loss
+    );
+    assert!(s.train_loss[0] > 10.0 * s.train_loss[s.epochs - 1]);
+    let seen = seen.borrow();
+    let epoch_ends = seen.iter().filter(|p| p.train_loss.is_some()).count();
+    assert_eq!(epoch_ends, s.epochs);
+    assert_eq!(seen.len(), s.epochs * (360usize.div_ceil(32) + 1));
+    // y(1, 1) = 2 − 1 + 0.5.
+    let mut probe = RowMatrix::new(3);
+    probe.push_row(&[
+        number_cell(Some(1.0)),
+        number_cell(Some(1.0)),
+        number_cell(None),
+    ]);
+    let crate::model::Predictions::Regression { values } =
+        t.model.predict(&probe, Backend::Flex).expect("predict")
+    else {
+        panic!("regression");
+    };
+    assert!((values[0] - 1.5).abs() < 0.05, "{values:?}");
+}
+
+#[test]
+fn early_stopping_keeps_the_best_epoch() {
+    // Pure noise: validation loss cannot keep improving, so patience ends the run.
+    let mut rng = Rng::new(5);
+    let mut rows = RowMatrix::new(3);
+    for _ in 0..200 {
+        rows.push_row(&[
+            number_cell(Some(rng.normal() as f32)),
+            number_cell(Some(rng.normal() as f32)),
+            number_cell(Some(rng.normal() as f32)),
+        ]);
+    }
+    let cfg = TrainingConfig {
+        cold_epochs: 200,
+        patience: 3,
+        learning_rate: 0.05,
+        ..small_cfg()
+    };
+    let model = ModelConfig {
+        hidden: vec![32],
+        ..ModelConfig::default()
+    };
+    let t = train_cold(
+        &spec(2, Task::Regression, 1),
+        &model,
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    let s = &t.summary;
+    assert_eq!(s.stop, StopReason::EarlyStop);
+    assert!(s.epochs < 200);
+    assert_eq!(s.epochs - s.best_epoch, 3);
+    let best = s
+        .validation_loss
+        .iter()
+        .copied()
+        .fold(f64::INFINITY, f64::min);
+    assert_eq!(s.validation_loss[s.best_epoch - 1], best);
+    // The kept weights are the best epoch's: their validation loss is the minimum.
+    let again = train_cold(
+        &spec(2, Task::Regression, 1),
+        &model,
+        &TrainingConfig {
+            cold_epochs: s.best_epoch,
+            patience: 1000,
+            ..cfg.clone()
+        },
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    assert_eq!(again.model.weights_digest(), t.model.weights_digest());
+}
+
+#[test]
+fn cancel_and_time_budget_stop_a_run() {
+    let rows = linear_rows(100, 2);
+    let flag = AtomicBool::new(true);
+    let control = Control {
+        cancel: Some(&flag),
+        progress: None,
+    };
+    let r = train_cold(
+        &spec(2, Task::Regression, 1),
+        &linear_model(),
+        &small_cfg(),
+        &rows,
+        control,
+    );
+    assert!(matches!(r, Err(TrainError::Cancelled)));
+    // A budget that is spent before the first mini-batch: no epoch runs.
+    let cfg = TrainingConfig {
+        max_seconds: 1e-12,
+        ..small_cfg()
+    };
+    let t = train_cold(
+        &spec(2, Task::Regression, 1),
+        &linear_model(),
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("a run that used up its budget still returns its model");
+    assert_eq!(
+        (t.summary.stop, t.summary.epochs),
+        (StopReason::TimeBudget, 0)
+    );
+}
+
+#[test]
+fn rows_without_targets_are_refused() {
+    let mut rows = RowMatrix::new(3);
+    rows.push_row(&[
+        number_cell(Some(1.0)),
+        number_cell(Some(1.0)),
+        number_cell(None),
+    ]);
+    let r = train_cold(
+        &spec(2, Task::Regression, 1),
+        &linear_model(),
+        &small_cfg(),
+        &rows,
+        Control::default(),
+    );
+    assert!(matches!(r, Err(TrainError::NoRows { .. })));
+}
+
+#[test]
+fn classification_learns_separable_classes() {
+    // Class = which quadrant-half x0 + x1 falls into, three bands.
+    let mut rng = Rng::new(4);
+    let mut rows = RowMatrix::new(3);
+    for _ in 0..600 {
+        let (a, b) = (rng.normal() as f32, rng.normal() as f32);
+        let s = a + b;
+        let class = if s < -0.7 {
+            0
+        } else if s < 0.7 {
+            1
+        } else {
+            2
+        };
+        rows.push_row(&[number_cell(Some(a)), number_cell(Some(b)), class]);
+    }
+    let cfg = TrainingConfig {
+        cold_epochs: 40,
+        learning_rate: 2e-2,
+        ..small_cfg()
+    };
+    let model = ModelConfig {
+        hidden: vec![16],
+        activation: Activation::Tanh,
+        ..ModelConfig::default()
+    };
+    let t = train_cold(
+        &spec(2, Task::Classification, 3),
+        &model,
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    let crate::model::Predictions::Classification { classes, .. } =
+        t.model.predict(&rows, Backend::Flex).expect("predict")
+    else {
+        panic!("classification");
+    };
+    let right = classes
+        .iter()
+        .enumerate()
+        .filter(|(r, c)| rows.row(*r)[2] == **c)
+        .count();
+    assert!(
+        right as f64 / 600.0 > 0.93,
+        "accuracy {}",
+        right as f64 / 600.0
+    );
+    let losses = t.model.row_losses(&rows, Backend::Flex).expect("losses");
+    let mean = losses.iter().sum::<f64>() / 600.0;
+    assert!(mean < 0.25, "mean log loss {mean}");
+}
+
+#[test]
+fn penalties_and_dropout_change_the_result() {
+    let rows = linear_rows(300, 3);
+    let base = ModelConfig {
+        hidden: vec![16],
+        ..ModelConfig::default()
+    };
+    let cfg = TrainingConfig {
+        cold_epochs: 10,
+        ..small_cfg()
+    };
+    let plain = train_cold(
+        &spec(2, Task::Regression, 1),
+        &base,
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    let norm = |m: &Model| {
+        m.weights()
+            .iter()
+            .flat_map(|l| l.weight.clone())
+            .map(|w| f64::from(w).abs())
+            .sum::<f64>()
+    };
+    for penalised in [
+        ModelConfig {
+            l2: 0.05,
+            ..base.clone()
+        },
+        ModelConfig {
+            l1: 0.05,
+            ..base.clone()
+        },
+    ] {
+        let t = train_cold(
+            &spec(2, Task::Regression, 1),
+            &penalised,
+            &cfg,
+            &rows,
+            Control::default(),
+        )
+        .expect("trains");
+        assert!(
+            norm(&t.model) < 0.8 * norm(&plain.model),
+            "a penalty shrinks the weights"
+        );
+    }
+    let dropped = train_cold(
+        &spec(2, Task::Regression, 1),
+        &ModelConfig {
+            dropout: 0.3,
+            ..base.clone()
+        },
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    assert_ne!(dropped.model.weights_digest(), plain.model.weights_digest());
+    let again = train_cold(
+        &spec(2, Task::Regression, 1),
+        &ModelConfig {
+            dropout: 0.3,
+            ..base
+        },
+        &cfg,
+        &rows,
+        Control::default(),
+    )
+    .expect("trains");
+    assert_eq!(
+        dropped.model.weights_digest(),
+        again.model.weights_digest(),
+        "dropout masks are seeded"
+    );
+}
+
+#[test]
+fn warm_run_replays_old_rows_and_can_shrink_and_perturb() {
+    let old = linear_rows(300, 6);
+    let new = linear_rows(100, 7);
+    let cfg = small_cfg();
+    let cold = train_cold(
+        &spec(2, Task::Regression, 1),
+        &linear_model(),
+        &cfg,
+        &old,
+        Control::default(),
+    )
+    .expect("trains");
+    let warm_cfg = TrainingConfig {
+        replay_ratio: 2.0,
+        ..cfg.clone()
+    };
+    let warm = train_warm(&cold.model, &warm_cfg, &new, &old, Control::default()).expect("trains");
+    let s = &warm.summary;
+    assert_eq!(s.kind, RunKind::Warm);
+    assert_eq!((s.rows, s.replay_rows), (90, 180));
+    assert_eq!(s.validation_rows, 10 + 20);
+    assert_eq!(
+        warm.model.target_scale(),
+        cold.model.target_scale(),
+        "warm runs keep the parent's scale"
+    );
+    // Shrink-and-perturb with shrink 1 and perturb 0 is a no-op; otherwise the start point moves.
+    let sp = shrink_perturb(&cold.model.weights(), &cold.model.weights(), 0.5, 0.5);
+    assert_eq!(sp, cold.model.weights());
+    let moved = train_warm(
+        &cold.model,
+        &TrainingConfig {
+            shrink: 0.5,
+            perturb: 0.1,
+            ..warm_cfg.clone()
+        },
+        &new,
+        &old,
+        Control::default(),
+    )
+    .expect("trains");
+    assert_ne!(moved.model.weights_digest(), warm.model.weights_digest());
+    assert!(
+        moved.summary.train_loss[0] > warm.summary.train_loss[0],
+        "a shrunk start fits worse at first"
+    );
+}
+
+#[test]
+fn least_squares_recovers_an_exact_plane() {
+    let x = [1.0, 0.0, 0.0, 1.0, 1.0, 1.0, 2.0, 3.0];
+    let y: Vec<f64> = x.chunks(2).map(|r| 1.0 + 2.0 * r[0] - 3.0 * r[1]).collect();
+    let b = least_squares(&x, &y, 2, 0.0).expect("full rank");
+    for (got, want) in b.iter().zip([1.0, 2.0, -3.0]) {
+        assert!((got - want).abs() < 1e-12, "{b:?}");
+    }
+    assert!(
+        least_squares(&[1.0, 1.0, 1.0], &[1.0, 2.0, 3.0], 1, 0.0).is_none(),
+        "a constant column is singular"
+    );
+}
