@@ -85,6 +85,9 @@ pub enum Event {
         /// blake3 of the checkpoint's manifest.json (which holds the other files' hashes).
         manifest_hash: String,
     },
+    /// A cycle that started was cut short (crash, kill, cancel); the serving
+    /// model was not changed by it.
+    CycleAbandoned { cycle: u64 },
     /// A candidate became the serving model.
     Promoted {
         cycle: u64,
@@ -138,6 +141,7 @@ impl Event {
             Event::BatchDuplicate { .. } => "batch-duplicate",
             Event::CycleStarted { .. } => "cycle-started",
             Event::CandidateTrained { .. } => "candidate-trained",
+            Event::CycleAbandoned { .. } => "cycle-abandoned",
             Event::Promoted { .. } => "promoted",
             Event::Kept { .. } => "kept",
             Event::AwaitingApproval { .. } => "awaiting-approval",
@@ -152,6 +156,7 @@ impl Event {
         "batch-duplicate",
         "cycle-started",
         "candidate-trained",
+        "cycle-abandoned",
         "promoted",
         "kept",
         "awaiting-approval",
@@ -255,6 +260,9 @@ impl Event {
                 previous.map_or_else(|| "none".to_string(), |m| m.to_string()),
                 evidence.reason
             ),
+            Event::CycleAbandoned { cycle } => {
+                format!("cycle {cycle} was cut short; the serving model did not change")
+            }
             Event::Kept { model, reason, .. } => format!("{model} kept, not promoted: {reason}"),
             Event::AwaitingApproval {
                 model, evidence, ..

@@ -87,7 +87,12 @@ pub fn remove_stale_temps(dir: &Path) -> std::io::Result<usize> {
     for entry in entries {
         let entry = entry?;
         if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX) {
-            fs::remove_file(entry.path())?;
+            // Checkpoints are written as temp folders, other files as temp files.
+            if entry.file_type()?.is_dir() {
+                fs::remove_dir_all(entry.path())?;
+            } else {
+                fs::remove_file(entry.path())?;
+            }
             n += 1;
         }
     }
@@ -117,6 +122,13 @@ mod tests {
             "no temp files left"
         );
         fs::write(d.path().join(format!("{TEMP_PREFIX}9-z")), b"stale").unwrap();
-        assert_eq!(remove_stale_temps(d.path()).unwrap(), 1);
+        fs::create_dir(d.path().join(format!("{TEMP_PREFIX}9-m000003"))).unwrap();
+        fs::write(
+            d.path().join(format!("{TEMP_PREFIX}9-m000003/weights")),
+            b"half",
+        )
+        .unwrap();
+        assert_eq!(remove_stale_temps(d.path()).unwrap(), 2);
+        assert_eq!(fs::read_dir(d.path()).unwrap().count(), 2);
     }
 }

@@ -9,6 +9,7 @@
 pub mod audit;
 pub mod cli;
 pub mod config;
+pub mod cycle;
 pub mod demo;
 pub mod fsutil;
 pub mod gate;

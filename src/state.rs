@@ -223,6 +223,7 @@ pub struct Recovery {
     pub pending_archived: usize,
     pub pending_dropped: usize,
     pub serving_rewritten: bool,
+    pub abandoned_cycle: Option<u64>,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
@@ -254,7 +255,7 @@ fn open_with(
     }
     let lock = take_lock(state)?;
     let schema = Schema::from_config(config);
-    let store = Store::open(&state.store(), &schema, &config.schema_fingerprint())?;
+    let mut store = Store::open(&state.store(), &schema, &config.schema_fingerprint())?;
     let mirror = state.mirror();
     let mut rec = Recovery::default();
     for dir in [
@@ -280,6 +281,20 @@ fn open_with(
     }
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
+        // A cycle that started and never ended was cut short: say so.
+        if let Some(v) = store.meta_value(crate::store::META_OPEN_CYCLE)?
+            && let Ok(bytes) = <[u8; 8]>::try_from(v.as_slice())
+        {
+            let cycle = u64::from_be_bytes(bytes);
+            let entry = store.record_with_meta(
+                Event::CycleAbandoned { cycle },
+                &current_user(),
+                chrono::Utc::now(),
+                &[(crate::store::META_OPEN_CYCLE, None)],
+            )?;
+            mirror.append(&[entry.line().as_bytes()])?;
+            rec.abandoned_cycle = Some(cycle);
+        }
     }
     Ok((
         Owner {

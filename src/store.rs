@@ -129,12 +129,17 @@ pub struct Store {
 const META_SCHEMA: &[u8] = b"schema";
 const META_FINGERPRINT: &[u8] = b"schema_fingerprint";
 const META_TOTALS: &[u8] = b"totals";
+/// A change to one `meta` key: `Some(value)` sets it, `None` removes it.
+pub type MetaChange<'a> = (&'a [u8], Option<Vec<u8>>);
+
 /// `ModelId` of the serving model.
 pub const META_SERVING: &[u8] = b"serving";
 /// `ModelId` the next trained model gets.
 pub const META_NEXT_MODEL: &[u8] = b"next_model";
 /// Retrain cycles started so far (u64, big-endian).
 pub const META_CYCLES: &[u8] = b"cycles";
+/// The cycle that started and has not ended (u64, big-endian).
+pub const META_OPEN_CYCLE: &[u8] = b"open_cycle";
 
 impl Store {
     /// Creates a new store at `path` (which must not exist yet).
@@ -384,21 +389,25 @@ impl Store {
         Entry::seal(seq, time, user, event, &prev)
     }
 
-    /// Records an event together with changes to `meta` keys, in one
+    /// Records an event together with changes to `meta` keys (`None`
+    /// removes the key), in one
     /// transaction (promotion: the serving pointer and its audit entry).
     pub fn record_with_meta(
         &mut self,
         event: Event,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
-        meta_values: &[(&[u8], Vec<u8>)],
+        meta_values: &[MetaChange<'_>],
     ) -> Result<Entry, StoreError> {
         let entry = self.seal(event, user, time);
         let line = entry.line().into_bytes();
         let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.audit)
             .transaction(|(meta, audit): &(TransactionalTree, TransactionalTree)| {
                 for (k, v) in meta_values {
-                    meta.insert(*k, v.as_slice())?;
+                    match v {
+                        Some(v) => meta.insert(*k, v.as_slice())?,
+                        None => meta.remove(*k)?,
+                    };
                 }
                 audit.insert(&entry.seq.key()[..], line.as_slice())?;
                 Ok(())

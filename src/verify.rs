@@ -5,7 +5,9 @@
 //! and neither has entries the other lacks; every accepted batch in the log
 //! has a store record with the same file hash and row counts, its rows are
 //! all in the store, and its archived file still has those bytes; the
-//! store's totals equal the sum over its batches.
+//! store's totals equal the sum over its batches; every checkpoint a cycle
+//! logged still has the manifest it was logged with, and its files match
+//! the hashes in that manifest.
 
 use std::collections::BTreeMap;
 
@@ -21,6 +23,7 @@ pub struct Report {
     pub audit_entries: u64,
     pub batches: u64,
     pub rows: u64,
+    pub checkpoints: u64,
 }
 
 /// The first thing found wrong.
@@ -93,6 +96,7 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
         .map(|b| (b.id, b))
         .collect();
     let mut seen = 0u64;
+    let mut checkpoints = 0u64;
     let mut rows_total = 0u64;
     for e in &entries {
         let Event::BatchAccepted {
@@ -157,6 +161,33 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
         seen += 1;
         rows_total += rec.rows();
     }
+    // Every checkpoint a cycle recorded still has the files it was saved with.
+    for e in &entries {
+        let Event::CandidateTrained {
+            model,
+            manifest_hash,
+            ..
+        } = &e.event
+        else {
+            continue;
+        };
+        let seq = Some(e.seq.0);
+        let dir = crate::model::checkpoint::model_dir(&owner.state.models(), *model);
+        match std::fs::read(dir.join(crate::model::checkpoint::MANIFEST_FILE)) {
+            Ok(bytes) if blake3::hash(&bytes).to_hex().as_str() == manifest_hash => {}
+            Ok(_) => {
+                return Ok(Err(problem(
+                    seq,
+                    format!("the manifest of model {model} changed since it was logged"),
+                )));
+            }
+            Err(e) => return Ok(Err(problem(seq, format!("model {model}: {e}")))),
+        }
+        if let Err(err) = crate::model::checkpoint::verify(&dir) {
+            return Ok(Err(problem(seq, format!("model {model}: {err}"))));
+        }
+        checkpoints += 1;
+    }
     if seen != records.len() as u64 {
         return Ok(Err(problem(
             None,
@@ -177,5 +208,6 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
         audit_entries: entries.len() as u64,
         batches: seen,
         rows: rows_total,
+        checkpoints,
     }))
 }

@@ -5,6 +5,8 @@
 mod ingest;
 mod init;
 mod log;
+mod predict;
+mod retrain;
 mod status;
 mod verify;
 
@@ -70,6 +72,10 @@ pub enum Command {
     Status(status::Args),
     /// Query the audit log (reads audit.jsonl only).
     Log(log::Args),
+    /// Run one retrain cycle now: candidates, the gate, promote or keep.
+    Retrain(retrain::Args),
+    /// Score a CSV file with the serving model (or --model ID).
+    Predict(predict::Args),
     /// Check the audit chain, the store against the log, and the archive.
     Verify(verify::Args),
 }
@@ -83,6 +89,8 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Status(a) => status::run(cli, &state, a),
         Command::Log(a) => log::run(cli, &state, a),
         Command::Verify(a) => verify::run(cli, &state, a),
+        Command::Predict(a) => predict::run(cli, &state, a),
+        Command::Retrain(a) => retrain::run(cli, &state, a),
     }
 }
 

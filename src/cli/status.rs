@@ -72,7 +72,9 @@ impl Summary {
                     s.last_decision = Some(e.event.summary())
                 }
                 Event::CandidateTrained { .. } => s.models_trained += 1,
-                Event::Initialized { .. } | Event::CycleStarted { .. } => {}
+                Event::Initialized { .. }
+                | Event::CycleStarted { .. }
+                | Event::CycleAbandoned { .. } => {}
             }
         }
         s

@@ -16,8 +16,8 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
         (Ok(r), true) => format!("{}\n", serde_json::json!({"ok": true, "report": r})),
         (Err(p), true) => format!("{}\n", serde_json::json!({"ok": false, "problem": p})),
         (Ok(r), false) => format!(
-            "ok: {} audit entries, {} batches, {} rows; chain, store and archive agree\n",
-            r.audit_entries, r.batches, r.rows
+            "ok: {} audit entries, {} batches, {} rows, {} checkpoints; chain, store, archive and checkpoints agree\n",
+            r.audit_entries, r.batches, r.rows, r.checkpoints
         ),
         (Err(p), false) => format!("problem: {p}\n"),
     };

@@ -3,6 +3,7 @@
 
 mod crash;
 mod ingest;
+mod lifecycle;
 mod support;
 mod tamper;
 mod training;

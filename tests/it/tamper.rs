@@ -48,7 +48,7 @@ fn intact_state_verifies() {
     assert_eq!(code(&out), 0);
     assert_eq!(
         stdout(&out),
-        "ok: 4 audit entries, 3 batches, 6 rows; chain, store and archive agree\n"
+        "ok: 4 audit entries, 3 batches, 6 rows, 0 checkpoints; chain, store, archive and checkpoints agree\n"
     );
 }
 
@@ -109,4 +109,24 @@ fn changed_archive_file_is_found() {
     bytes[0] ^= 1;
     fs::write(&p, bytes).unwrap();
     assert_eq!(first_bad(&env), Some(3), "batch 2 was logged as entry 3");
+}
+
+#[test]
+fn changed_checkpoint_is_found() {
+    let env = Env::new(&crate::support::repo("demo-data/tidegate.toml"));
+    let out = env.ingest(&[
+        crate::support::repo("demo-data/night-01.csv"),
+        crate::support::repo("demo-data/night-02.csv"),
+    ]);
+    assert_eq!(code(&out), 0);
+    assert_eq!(code(&env.run(&["retrain"])), 0);
+    assert_eq!(first_bad(&env), None);
+    let weights = env.state().join("models/m000001/weights.bpk");
+    let mut bytes = fs::read(&weights).unwrap();
+    let mid = bytes.len() / 2;
+    bytes[mid] ^= 0x10;
+    fs::write(&weights, bytes).unwrap();
+    // Entry 5 is the candidate-trained entry of m000001 (after initialized,
+    // two batches and cycle-started).
+    assert_eq!(first_bad(&env), Some(5));
 }

@@ -1,0 +1,200 @@
+//! `tidegate retrain`: one cycle now — candidates, holdout scores, the gate,
+//! promote or keep. `--dry-run` judges without changing or recording
+//! anything; `--progress` draws a bar per candidate on stderr (only on a
+//! terminal).
+
+use std::collections::HashMap;
+use std::sync::Mutex;
+
+use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
+
+use super::{Cli, Exit, emit, table};
+use crate::cycle::{self, Options, Outcome, run_name};
+use crate::model::RunKind;
+use crate::state::{self, StateDir};
+use crate::train::Progress;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Also train a cold candidate from scratch, whatever the schedule says.
+    #[arg(long)]
+    cold: bool,
+    /// Train and judge, but change nothing and record nothing.
+    #[arg(long)]
+    dry_run: bool,
+    /// Show a progress bar per candidate on stderr (a terminal only).
+    #[arg(long)]
+    progress: bool,
+}
+
+/// Progress bars keyed by candidate kind, fed from the training threads.
+struct Bars {
+    multi: MultiProgress,
+    bars: Mutex<HashMap<&'static str, ProgressBar>>,
+}
+
+impl Bars {
+    fn new() -> Bars {
+        Bars {
+            multi: MultiProgress::with_draw_target(ProgressDrawTarget::stderr()),
+            bars: Mutex::new(HashMap::new()),
+        }
+    }
+
+    fn update(&self, p: Progress) {
+        let name = run_name(p.kind);
+        let Ok(mut bars) = self.bars.lock() else {
+            return;
+        };
+        let bar = bars.entry(name).or_insert_with(|| {
+            let total = (p.max_epochs * p.batches.max(1)) as u64;
+            let bar = self.multi.add(ProgressBar::new(total));
+            let style =
+                ProgressStyle::with_template("{prefix:>5} [{bar:30}] epoch {msg} {elapsed}")
+                    .map(|s| s.progress_chars("=> "));
+            if let Ok(style) = style {
+                bar.set_style(style);
+            }
+            bar.set_prefix(name);
+            bar
+        });
+        bar.set_position(((p.epoch.saturating_sub(1)) * p.batches + p.batch) as u64);
+        let mut msg = format!("{}/{}", p.epoch, p.max_epochs);
+        if let Some(v) = p.validation_loss {
+            msg.push_str(&format!(" val {v:.4}"));
+        }
+        bar.set_message(msg);
+    }
+
+    fn finish(&self) {
+        if let Ok(bars) = self.bars.lock() {
+            for b in bars.values() {
+                b.finish_and_clear();
+            }
+        }
+    }
+}
+
+pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
+    let config = super::load_config(cli, state)?;
+    let (mut owner, recovery) = state::open(state, &config)?;
+    if let Some(c) = recovery.abandoned_cycle {
+        tracing::warn!("cycle {c} was cut short before it ended; recorded as abandoned");
+    }
+    let bars = args.progress.then(Bars::new);
+    let progress = |p: Progress| {
+        if let Some(b) = &bars {
+            b.update(p);
+        }
+    };
+    let options = Options {
+        force_cold: args.cold,
+        dry_run: args.dry_run,
+    };
+    let outcome = cycle::run(
+        &mut owner,
+        options,
+        &state::current_user(),
+        Some(&progress),
+        None,
+    );
+    if let Some(b) = &bars {
+        b.finish();
+    }
+    let report = match outcome? {
+        Outcome::NothingNew { serving } => {
+            let text = if cli.json {
+                format!(
+                    "{}\n",
+                    serde_json::json!({"outcome": "nothing-new", "serving": serving})
+                )
+            } else {
+                format!(
+                    "nothing to do: {serving} serves and has been trained on every batch (use --cold to train from scratch anyway)\n"
+                )
+            };
+            emit(&text)?;
+            return Ok(Exit::Ok);
+        }
+        Outcome::Decided(r) => r,
+    };
+    let baseline = match report.serving_before {
+        Some(m) => m.to_string(),
+        None => "trivial predictor".to_string(),
+    };
+    if cli.json {
+        let candidates: Vec<serde_json::Value> = report
+            .candidates
+            .iter()
+            .map(|c| {
+                serde_json::json!({
+                    "model": c.id, "run": run_name(c.run), "epochs": c.summary.epochs,
+                    "seconds": c.summary.seconds, "stop": format!("{:?}", c.summary.stop), "holdout_loss": c.holdout_loss,
+                })
+            })
+            .collect();
+        let evidence = report
+            .decision
+            .evidence()
+            .map(|e| cycle::evidence_of(e, &report.decision));
+        let v = serde_json::json!({
+            "outcome": report.decision.kind(), "cycle": report.cycle, "dry_run": report.dry_run,
+            "serving_before": report.serving_before, "serving_after": report.serving_after,
+            "baseline": baseline, "baseline_loss": report.baseline_loss, "holdout_rows": report.holdout_rows,
+            "new_batches": report.new_batches, "candidates": candidates, "judged": report.judged,
+            "evidence": evidence, "reason": report.decision.reason(),
+        });
+        emit(&format!("{v}\n"))?;
+        return Ok(Exit::Ok);
+    }
+    let mut rows: Vec<Vec<String>> = vec![vec![
+        baseline.clone(),
+        "serving".into(),
+        "-".into(),
+        "-".into(),
+        format!("{:.4}", report.baseline_loss),
+    ]];
+    if report.serving_before.is_none() {
+        rows[0][1] = "baseline".into();
+    }
+    for (i, c) in report.candidates.iter().enumerate() {
+        let name =
+            c.id.map_or_else(|| "(dry run)".to_string(), |m| m.to_string());
+        let mark = if i == report.judged { " *" } else { "" };
+        rows.push(vec![
+            format!("{name}{mark}"),
+            match c.run {
+                RunKind::Warm => "warm".into(),
+                RunKind::Cold => "cold".into(),
+            },
+            c.summary.epochs.to_string(),
+            format!("{:.1}", c.summary.seconds),
+            format!("{:.4}", c.holdout_loss),
+        ]);
+    }
+    let mut out = format!(
+        "cycle {}{}: {} new batch(es), {} holdout rows\n",
+        report.cycle,
+        if report.dry_run {
+            " (dry run: nothing saved or recorded)"
+        } else {
+            ""
+        },
+        report.new_batches.len(),
+        report.holdout_rows
+    );
+    out.push_str(&table(
+        &["model", "kind", "epochs", "seconds", "holdout loss"],
+        &rows,
+    ));
+    out.push_str(&format!(
+        "decision: {} — {}\n",
+        report.decision.kind(),
+        report.decision.reason()
+    ));
+    if let Some(s) = report.serving_after {
+        out.push_str(&format!("serving: {s}\n"));
+    }
+    emit(&out)?;
+    Ok(Exit::Ok)
+}

@@ -1,0 +1,530 @@
+//! One retrain cycle: train candidates (warm from the serving model, cold
+//! on schedule or on request), score them and the serving model on the same
+//! holdout rows, let the gate decide, then promote or keep. Every step is an
+//! audit entry; promotion moves the store's serving pointer in the same
+//! transaction as its entry.
+//!
+//! What a cycle trains on: the serving model remembers the last batch it
+//! was trained through (`model/<id>` in the store's meta tree). Rows of
+//! later batches are "new": a warm candidate trains on them plus a replay
+//! sample of the older rows; the gate's guards look at new and older
+//! holdout rows separately.
+
+use std::sync::atomic::AtomicBool;
+
+use chrono::Utc;
+use serde::{Deserialize, Serialize};
+
+use crate::audit::{Event, GateEvidence};
+use crate::config::Task;
+use crate::gate::{self, Decision, Scores};
+use crate::ids::{BatchId, ModelId};
+use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta, RunKind};
+use crate::model::{Model, ModelError, TrainingSummary};
+use crate::schema::{FeatureSpec, RowMatrix};
+use crate::state::{Owner, StateError};
+use crate::store::{
+    META_CYCLES, META_NEXT_MODEL, META_OPEN_CYCLE, META_SERVING, MetaChange, Split, StoreError,
+};
+use crate::train::{self, Control, Progress, TrainError};
+
+/// What the store remembers about each trained model version.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelRecord {
+    pub id: ModelId,
+    pub parent: Option<ModelId>,
+    pub run: RunKind,
+    /// Last batch whose training rows this model has seen.
+    pub trained_through: BatchId,
+    pub cycle: u64,
+    pub holdout_loss: f64,
+}
+
+/// Key of a model's record in the meta tree.
+pub fn model_key(id: ModelId) -> Vec<u8> {
+    let mut k = b"model/".to_vec();
+    k.extend_from_slice(&id.key());
+    k
+}
+
+/// How to run a cycle.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Options {
+    /// Train a cold candidate too, whatever the schedule says.
+    pub force_cold: bool,
+    /// Train and judge, but change nothing and record nothing.
+    pub dry_run: bool,
+}
+
+/// One trained candidate and its score.
+#[derive(Debug, Clone)]
+pub struct Candidate {
+    /// `None` in a dry run (nothing is saved).
+    pub id: Option<ModelId>,
+    pub run: RunKind,
+    pub summary: TrainingSummary,
+    pub holdout_loss: f64,
+}
+
+/// How a cycle ended.
+#[derive(Debug, Clone)]
+pub enum Outcome {
+    /// The serving model has seen every batch; nothing to do.
+    NothingNew {
+        serving: ModelId,
+    },
+    Decided(Box<Report>),
+}
+
+/// Everything a cycle found and did.
+#[derive(Debug, Clone)]
+pub struct Report {
+    pub cycle: u64,
+    pub serving_before: Option<ModelId>,
+    /// Mean holdout loss of the serving model (or of the trivial predictor
+    /// when nothing serves yet).
+    pub baseline_loss: f64,
+    pub holdout_rows: usize,
+    pub new_batches: Vec<BatchId>,
+    pub candidates: Vec<Candidate>,
+    /// Index into `candidates` of the one the gate judged.
+    pub judged: usize,
+    pub decision: Decision,
+    /// The model serving after the cycle.
+    pub serving_after: Option<ModelId>,
+    pub dry_run: bool,
+}
+
+/// Failures that stop a cycle (the serving model is untouched by all of them).
+#[derive(Debug, thiserror::Error)]
+pub enum CycleError {
+    #[error("the store holds no batches yet; ingest data first")]
+    NoData,
+    #[error("a candidate is already waiting for approval ({0}); approve or decline it first")]
+    Pending(ModelId),
+    #[error(transparent)]
+    State(#[from] StateError),
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error(transparent)]
+    Audit(#[from] crate::audit::MirrorError),
+    #[error(transparent)]
+    Model(#[from] ModelError),
+    #[error("training failed: {0}")]
+    Train(#[from] TrainError),
+    #[error("the gate could not score the models: {0}")]
+    Scoring(String),
+}
+
+/// Runs one cycle. `progress` (if any) hears from every candidate; `cancel`
+/// stops training between mini-batches (the cycle then fails, recorded as
+/// abandoned at the next start).
+pub fn run(
+    owner: &mut Owner,
+    options: Options,
+    user: &str,
+    progress: Option<&(dyn Fn(Progress) + Sync)>,
+    cancel: Option<&AtomicBool>,
+) -> Result<Outcome, CycleError> {
+    let store = &owner.store;
+    let last = BatchId(store.totals().batches);
+    if last.0 == 0 {
+        return Err(CycleError::NoData);
+    }
+    if let Some(pending) = store
+        .meta_value(META_PENDING)?
+        .and_then(|v| ModelId::from_key(&v))
+    {
+        return Err(CycleError::Pending(pending));
+    }
+    let fingerprint = owner.config.schema_fingerprint();
+    let serving_id = store.serving()?;
+    let serving = match serving_id {
+        Some(id) => {
+            let record = model_record(owner, id)?;
+            let ck = Checkpoint::load(
+                &checkpoint::model_dir(&owner.state.models(), id),
+                &fingerprint,
+            )?;
+            Some((id, record, ck))
+        }
+        None => None,
+    };
+    let through = serving
+        .as_ref()
+        .map_or(BatchId(0), |(_, r, _)| r.trained_through);
+    if let Some((id, _, _)) = &serving
+        && through >= last
+        && !options.force_cold
+    {
+        return Ok(Outcome::NothingNew { serving: *id });
+    }
+    let cycle = store.cycles()? + 1;
+    let cold_due =
+        owner.config.gate.cold_every > 0 && cycle % owner.config.gate.cold_every as u64 == 0;
+    let want_warm = serving.is_some();
+    let want_cold = serving.is_none() || options.force_cold || cold_due;
+    let new_batches: Vec<BatchId> = (through.0 + 1..=last.0).map(BatchId).collect();
+    let mut kinds = Vec::new();
+    if want_warm {
+        kinds.push("warm".to_string());
+    }
+    if want_cold {
+        kinds.push("cold".to_string());
+    }
+    if !options.dry_run {
+        let event = Event::CycleStarted {
+            cycle,
+            serving: serving_id,
+            new_batches: new_batches.clone(),
+            candidates: kinds,
+        };
+        let entry = owner.store.record_with_meta(
+            event,
+            user,
+            Utc::now(),
+            &[
+                (META_CYCLES, Some(cycle.to_be_bytes().to_vec())),
+                (META_OPEN_CYCLE, Some(cycle.to_be_bytes().to_vec())),
+            ],
+        )?;
+        owner.mirror.append(&[entry.line().as_bytes()])?;
+    }
+
+    // The data, read once: training rows split at the serving model's last
+    // batch, holdout rows in the same order with a new/older flag each.
+    let store = &owner.store;
+    let older_train = store.rows(Split::Train, None, Some(through))?;
+    let new_train = store.rows(Split::Train, Some(through.next()), None)?;
+    let older_holdout = store.rows(Split::Holdout, None, Some(through))?;
+    let new_holdout = store.rows(Split::Holdout, Some(through.next()), None)?;
+    let mut holdout = older_holdout.clone();
+    holdout.extend(&new_holdout);
+    let new_flags: Vec<bool> = std::iter::repeat_n(false, older_holdout.n_rows())
+        .chain(std::iter::repeat_n(true, new_holdout.n_rows()))
+        .collect();
+    let mut all_train = older_train.clone();
+    all_train.extend(&new_train);
+    let training = &owner.config.training;
+    let cold_spec = FeatureSpec::new(
+        store.schema(),
+        &store.totals().train_stats,
+        store.vocabularies(),
+    );
+
+    let control = Control {
+        cancel,
+        progress: progress.map(|p| p as &dyn Fn(Progress)),
+    };
+    let (warm, cold) = std::thread::scope(|scope| {
+        let warm = serving.as_ref().filter(|_| want_warm).map(|(_, _, ck)| {
+            let parent = &ck.model;
+            let (new_train, older_train) = (&new_train, &older_train);
+            scope.spawn(move || {
+                train::train_warm(
+                    parent,
+                    training,
+                    new_train,
+                    older_train,
+                    Control {
+                        cancel,
+                        progress: progress.map(|p| p as &dyn Fn(Progress)),
+                    },
+                )
+            })
+        });
+        let cold = want_cold.then(|| {
+            train::train_cold(
+                &cold_spec,
+                &owner.config.model,
+                training,
+                &all_train,
+                control,
+            )
+        });
+        (
+            warm.map(|h| h.join().expect("training thread does not panic")),
+            cold,
+        )
+    });
+    let backend = training.predict_backend;
+    let mut trained: Vec<(RunKind, Model, TrainingSummary)> = Vec::new();
+    if let Some(w) = warm {
+        let t = w?;
+        trained.push((RunKind::Warm, t.model, t.summary));
+    }
+    if let Some(c) = cold {
+        let t = c?;
+        trained.push((RunKind::Cold, t.model, t.summary));
+    }
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
+    let mut scored = Vec::new();
+    for (run, model, summary) in trained {
+        let losses = model.row_losses(&holdout, backend)?;
+        let loss = mean(&losses);
+        scored.push((run, model, summary, losses, loss));
+    }
+    let judged = (0..scored.len())
+        .min_by(|&a, &b| scored[a].4.total_cmp(&scored[b].4))
+        .expect("at least one candidate is trained");
+    let policy = gate::Policy::from(&owner.config.gate);
+    let candidate_scores = Scores::new(scored[judged].3.clone(), new_flags.clone());
+    let (decision, baseline_loss) = match &serving {
+        Some((_, _, ck)) => {
+            let losses = ck.model.row_losses(&holdout, backend)?;
+            let loss = mean(&losses);
+            (
+                gate::decide(
+                    &Scores::new(losses, new_flags.clone()),
+                    &candidate_scores,
+                    &policy,
+                ),
+                loss,
+            )
+        }
+        None => {
+            let losses = trivial_losses(&cold_spec, &all_train, &holdout)?;
+            let loss = mean(&losses);
+            (
+                gate::decide_first(
+                    &Scores::new(losses, new_flags.clone()),
+                    &candidate_scores,
+                    &policy,
+                ),
+                loss,
+            )
+        }
+    };
+
+    let mut candidates = Vec::new();
+    let mut serving_after = serving_id;
+    if options.dry_run {
+        for (run, _, summary, _, loss) in scored {
+            candidates.push(Candidate {
+                id: None,
+                run,
+                summary,
+                holdout_loss: loss,
+            });
+        }
+    } else {
+        let vocabs = owner.store.vocabularies().clone();
+        let mut next = owner.store.next_model_id()?;
+        let mut ids = Vec::new();
+        for (run, model, summary, _, loss) in &scored {
+            let id = next;
+            next = next.next();
+            let parent = if *run == RunKind::Warm {
+                serving_id
+            } else {
+                None
+            };
+            let meta = CheckpointMeta {
+                id,
+                parent,
+                created_at: Utc::now(),
+                schema_fingerprint: &fingerprint,
+                vocabularies: &vocabs,
+            };
+            let dir = model.save(&owner.state.models(), summary, &meta)?;
+            let manifest_hash = std::fs::read(dir.join(checkpoint::MANIFEST_FILE))
+                .map(|b| blake3::hash(&b).to_hex().to_string())
+                .map_err(|source| StateError::Io {
+                    path: dir.clone(),
+                    source,
+                })?;
+            let record = ModelRecord {
+                id,
+                parent,
+                run: *run,
+                trained_through: last,
+                cycle,
+                holdout_loss: *loss,
+            };
+            let event = Event::CandidateTrained {
+                cycle,
+                model: id,
+                run: run_name(*run).into(),
+                parent,
+                trained_through: last,
+                epochs: summary.epochs,
+                seconds: summary.seconds,
+                stop: format!("{:?}", summary.stop),
+                holdout_rows: holdout.n_rows(),
+                holdout_loss: *loss,
+                manifest_hash,
+            };
+            let entry = owner.store.record_with_meta(
+                event,
+                user,
+                Utc::now(),
+                &[
+                    (META_NEXT_MODEL, Some(next.key().to_vec())),
+                    (
+                        &model_key(id),
+                        Some(serde_json::to_vec(&record).expect("record serialises")),
+                    ),
+                ],
+            )?;
+            owner.mirror.append(&[entry.line().as_bytes()])?;
+            ids.push(id);
+        }
+        for (i, id) in ids.iter().enumerate() {
+            if i != judged {
+                let reason = format!(
+                    "another candidate of this cycle scored lower on the holdout rows ({:.4} against {:.4})",
+                    scored[judged].4, scored[i].4
+                );
+                let event = Event::Kept {
+                    cycle,
+                    model: *id,
+                    serving: serving_id,
+                    evidence: None,
+                    reason,
+                };
+                let entry = owner.store.record_with_meta(event, user, Utc::now(), &[])?;
+                owner.mirror.append(&[entry.line().as_bytes()])?;
+                continue;
+            }
+            let evidence = decision.evidence().map(|e| evidence_of(e, &decision));
+            let close = (META_OPEN_CYCLE, None);
+            let (event, meta): (Event, Vec<MetaChange<'_>>) = match &decision {
+                Decision::Promote { .. } => {
+                    serving_after = Some(*id);
+                    (
+                        Event::Promoted {
+                            cycle,
+                            model: *id,
+                            previous: serving_id,
+                            evidence: evidence.expect("a promotion has evidence"),
+                        },
+                        vec![(META_SERVING, Some(id.key().to_vec())), close],
+                    )
+                }
+                Decision::AwaitApproval { .. } => (
+                    Event::AwaitingApproval {
+                        cycle,
+                        model: *id,
+                        serving: serving_id,
+                        evidence: evidence.expect("a winner has evidence"),
+                    },
+                    vec![(META_PENDING, Some(id.key().to_vec())), close],
+                ),
+                Decision::Keep { .. } => (
+                    Event::Kept {
+                        cycle,
+                        model: *id,
+                        serving: serving_id,
+                        evidence,
+                        reason: decision.reason(),
+                    },
+                    vec![close],
+                ),
+            };
+            let entry = owner
+                .store
+                .record_with_meta(event, user, Utc::now(), &meta)?;
+            owner.mirror.append(&[entry.line().as_bytes()])?;
+            if let Some(s) = serving_after.filter(|s| Some(*s) != serving_id) {
+                crate::fsutil::write_atomic(&owner.state.serving(), format!("{s}\n").as_bytes())
+                    .map_err(|source| StateError::Io {
+                        path: owner.state.serving(),
+                        source,
+                    })?;
+            }
+        }
+        for ((run, _, summary, _, loss), id) in scored.into_iter().zip(ids) {
+            candidates.push(Candidate {
+                id: Some(id),
+                run,
+                summary,
+                holdout_loss: loss,
+            });
+        }
+    }
+    Ok(Outcome::Decided(Box::new(Report {
+        cycle,
+        serving_before: serving_id,
+        baseline_loss,
+        holdout_rows: holdout.n_rows(),
+        new_batches,
+        candidates,
+        judged,
+        decision,
+        serving_after,
+        dry_run: options.dry_run,
+    })))
+}
+
+/// `ModelId` of a candidate waiting for approval.
+pub const META_PENDING: &[u8] = b"pending";
+
+pub fn run_name(run: RunKind) -> &'static str {
+    match run {
+        RunKind::Warm => "warm",
+        RunKind::Cold => "cold",
+    }
+}
+
+fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, CycleError> {
+    let bytes = owner.store.meta_value(&model_key(id))?.ok_or_else(|| {
+        CycleError::Store(StoreError::Corrupt {
+            path: owner.store.path().to_path_buf(),
+            what: format!("serving model {id} has no record"),
+        })
+    })?;
+    serde_json::from_slice(&bytes).map_err(|e| {
+        CycleError::Store(StoreError::Corrupt {
+            path: owner.store.path().to_path_buf(),
+            what: format!("record of {id}: {e}"),
+        })
+    })
+}
+
+/// Per-row holdout losses of the trivial predictor: the training mean
+/// (regression) or the training class frequencies (classification).
+fn trivial_losses(
+    spec: &FeatureSpec,
+    train: &RowMatrix,
+    holdout: &RowMatrix,
+) -> Result<Vec<f64>, CycleError> {
+    let t: Vec<f64> = spec
+        .encode_targets(train)
+        .iter()
+        .filter(|v| !v.is_nan())
+        .map(|&v| f64::from(v))
+        .collect();
+    let h: Vec<f64> = spec
+        .encode_targets(holdout)
+        .iter()
+        .map(|&v| f64::from(v))
+        .collect();
+    let result = match spec.task {
+        Task::Regression => gate::metrics::mean_predictor_losses(&t, &h),
+        Task::Classification => {
+            let tl: Vec<usize> = t.iter().map(|&v| v as usize).collect();
+            let hl: Vec<usize> = h.iter().map(|&v| v as usize).collect();
+            gate::metrics::prior_predictor_losses(&tl, spec.outputs, &hl)
+        }
+    };
+    result.map_err(|e| CycleError::Scoring(e.to_string()))
+}
+
+/// The gate's numbers in the form the audit log keeps.
+pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
+    GateEvidence {
+        baseline: match e.baseline {
+            gate::Baseline::Serving => "serving".into(),
+            gate::Baseline::Trivial => "trivial".into(),
+        },
+        rows: e.rows,
+        mean_loss_baseline: e.mean_loss_baseline,
+        mean_loss_candidate: e.mean_loss_candidate,
+        relative_improvement: e.relative_improvement,
+        t: e.test.t.is_finite().then_some(e.test.t),
+        p: e.test.p_greater,
+        new_rows: e.new_rows.rows,
+        old_rows: e.old_rows.rows,
+        reason: decision.reason(),
+    }
+}

@@ -1,0 +1,272 @@
+//! Retrain cycles and predictions through the real binary on the demo data:
+//! the first model must beat the trivial predictor, later candidates face
+//! the serving model, a damaged candidate is kept, a dry run changes
+//! nothing, and `predict` scores files with the serving model.
+
+use std::fs;
+use std::path::PathBuf;
+
+use crate::support::{Env, code, repo, stderr, stdout};
+
+fn night(n: &str) -> PathBuf {
+    repo(&format!("demo-data/night-{n}.csv"))
+}
+
+fn demo_with(nights: &[&str]) -> Env {
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    let files: Vec<PathBuf> = nights.iter().map(|n| night(n)).collect();
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    env
+}
+
+fn retrain(env: &Env, args: &[&str]) -> serde_json::Value {
+    let mut a = vec!["--json", "retrain"];
+    a.extend_from_slice(args);
+    let out = env.run(&a);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    serde_json::from_str(stdout(&out).trim()).unwrap()
+}
+
+fn kinds(env: &Env) -> Vec<String> {
+    env.log_json(&[])
+        .iter()
+        .map(|e| e["kind"].as_str().unwrap().to_string())
+        .collect()
+}
+
+#[test]
+fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
+    let env = demo_with(&["01", "02", "03", "04"]);
+    let r = retrain(&env, &[]);
+    assert_eq!(r["outcome"], "promote", "{r}");
+    assert_eq!(r["baseline"], "trivial predictor");
+    assert_eq!(r["candidates"].as_array().unwrap().len(), 1);
+    assert_eq!(r["candidates"][0]["run"], "cold");
+    assert_eq!(r["serving_after"], 1);
+    assert!(
+        r["candidates"][0]["holdout_loss"].as_f64().unwrap()
+            < r["baseline_loss"].as_f64().unwrap() / 2.0
+    );
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000001\n"
+    );
+    assert_eq!(env.status_json()["summary"]["serving"], 1);
+
+    // Nothing new: nothing to do, nothing recorded.
+    let before = kinds(&env).len();
+    assert_eq!(retrain(&env, &[])["outcome"], "nothing-new");
+    assert_eq!(kinds(&env).len(), before);
+
+    let out = env.ingest(&[night("06"), night("07")]);
+    assert_eq!(code(&out), 0);
+    let r = retrain(&env, &[]);
+    assert_eq!(r["serving_before"], 1);
+    assert_eq!(r["baseline"], "m000001");
+    assert_eq!(r["candidates"][0]["run"], "warm");
+    assert_eq!(r["new_batches"], serde_json::json!([5, 6]));
+    let decided = r["outcome"].as_str().unwrap();
+    assert!(decided == "promote" || decided == "keep", "{r}");
+    let log = kinds(&env);
+    assert_eq!(
+        &log[log.len() - 3..],
+        &[
+            "cycle-started".to_string(),
+            "candidate-trained".to_string(),
+            if decided == "promote" {
+                "promoted".into()
+            } else {
+                "kept".into()
+            }
+        ]
+    );
+    // The reviewer's question: what changed, when, on which evidence.
+    let promoted = env.log_json(&["--kind", "promoted", "--model", "m000001"]);
+    assert_eq!(promoted.len(), 1);
+    assert_eq!(promoted[0]["evidence"]["baseline"], "trivial");
+    assert!(promoted[0]["evidence"]["p"].as_f64().unwrap() < 0.05);
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}", stdout(&out));
+    assert!(stdout(&out).contains("2 checkpoints"), "{}", stdout(&out));
+}
+
+#[test]
+fn a_candidate_trained_on_scrambled_targets_is_kept() {
+    let env = demo_with(&["01", "02", "03", "04", "06"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    // Night 7 with its target column replaced by the values of another
+    // night's rows in reverse order: shape and range are fine, meaning is gone.
+    let text = fs::read_to_string(night("07")).unwrap();
+    let other: Vec<String> = fs::read_to_string(night("08"))
+        .unwrap()
+        .lines()
+        .skip(1)
+        .map(|l| l.rsplit(',').next().unwrap().to_string())
+        .collect();
+    let mut lines: Vec<String> = text.lines().map(str::to_string).collect();
+    for (i, line) in lines.iter_mut().enumerate().skip(1) {
+        let cut = line.rfind(',').unwrap();
+        line.truncate(cut + 1);
+        line.push_str(&other[(other.len() - i) % other.len()]);
+    }
+    let bad = env.dir.path().join("night-07-scrambled.csv");
+    fs::write(&bad, lines.join("\n") + "\n").unwrap();
+    assert_eq!(code(&env.ingest(&[bad])), 0);
+    let r = retrain(&env, &[]);
+    assert_eq!(r["outcome"], "keep", "{r}");
+    assert_eq!(r["serving_after"], 1);
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000001\n"
+    );
+    // The kept candidate stays on disk, and the log says why.
+    assert!(env.state().join("models/m000002/manifest.json").exists());
+    let kept = env.log_json(&["--kind", "kept"]);
+    assert_eq!(kept.last().unwrap()["model"], 2);
+    assert!(!kept.last().unwrap()["reason"].as_str().unwrap().is_empty());
+}
+
+#[test]
+fn dry_run_changes_nothing() {
+    let env = demo_with(&["01", "02", "03"]);
+    let before_log = fs::read(env.state().join("audit.jsonl")).unwrap();
+    let r = retrain(&env, &["--dry-run"]);
+    assert_eq!(r["dry_run"], true);
+    assert_eq!(r["candidates"][0]["model"], serde_json::Value::Null);
+    assert_eq!(
+        fs::read(env.state().join("audit.jsonl")).unwrap(),
+        before_log
+    );
+    assert!(!env.state().join("serving").exists());
+    assert_eq!(fs::read_dir(env.state().join("models")).unwrap().count(), 0);
+    // The same cycle for real promotes the model the dry run described.
+    let real = retrain(&env, &[]);
+    assert_eq!(real["outcome"], r["outcome"]);
+    assert_eq!(
+        real["candidates"][0]["holdout_loss"], r["candidates"][0]["holdout_loss"],
+        "seeded: same training, same score"
+    );
+}
+
+#[test]
+fn predict_scores_files_with_the_serving_model() {
+    let env = demo_with(&["01", "02", "03", "04"]);
+    let out = env.run(&["predict", "--input", night("08").to_str().unwrap()]);
+    assert_eq!(code(&out), 1, "no model yet");
+    assert!(stderr(&out).contains("no model serves"), "{}", stderr(&out));
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+
+    let out = env.run(&["predict", "--input", night("08").to_str().unwrap()]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let text = stdout(&out);
+    let mut lines = text.lines();
+    assert_eq!(
+        lines.next().unwrap(),
+        "shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold,predicted_loaves_sold"
+    );
+    let rows: Vec<(f64, f64)> = lines
+        .map(|l| {
+            let f: Vec<&str> = l.rsplitn(3, ',').collect();
+            (f[1].parse().unwrap(), f[0].parse().unwrap())
+        })
+        .collect();
+    assert_eq!(
+        rows.len(),
+        fs::read_to_string(night("08")).unwrap().lines().count() - 1
+    );
+    // The model must do far better than predicting the mean on unseen rows.
+    let mean = rows.iter().map(|r| r.0).sum::<f64>() / rows.len() as f64;
+    let mse = rows.iter().map(|(y, p)| (y - p).powi(2)).sum::<f64>() / rows.len() as f64;
+    let var = rows.iter().map(|(y, _)| (y - mean).powi(2)).sum::<f64>() / rows.len() as f64;
+    assert!(mse < 0.5 * var, "mse {mse} vs variance {var}");
+
+    // Without the target column, as JSON Lines, into a file.
+    let no_target: String = fs::read_to_string(night("08"))
+        .unwrap()
+        .lines()
+        .map(|l| l.rsplit_once(',').unwrap().0.to_string() + "\n")
+        .collect();
+    let input = env.dir.path().join("tomorrow.csv");
+    fs::write(&input, no_target).unwrap();
+    let dest = env.dir.path().join("scored.jsonl");
+    let out = env.run(&[
+        "predict",
+        "--input",
+        input.to_str().unwrap(),
+        "--format",
+        "jsonl",
+        "--output",
+        dest.to_str().unwrap(),
+        "--model",
+        "m000001",
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let first: serde_json::Value =
+        serde_json::from_str(fs::read_to_string(&dest).unwrap().lines().next().unwrap()).unwrap();
+    assert_eq!(first["shop"], "Ashby Market St");
+    assert!(first["predicted_loaves_sold"].as_f64().unwrap().is_finite());
+    assert!(first.get("loaves_sold").is_none());
+
+    // Bad rows are refused with reasons; an unknown model is an error.
+    let out = env.run(&["predict", "--input", night("05").to_str().unwrap()]);
+    assert_eq!(code(&out), 65);
+    assert!(stderr(&out).contains("line 41"), "{}", stderr(&out));
+    let out = env.run(&[
+        "predict",
+        "--input",
+        night("08").to_str().unwrap(),
+        "--model",
+        "m000042",
+    ]);
+    assert_eq!(code(&out), 1);
+    assert!(stderr(&out).contains("m000042"), "{}", stderr(&out));
+}
+
+#[test]
+fn progress_bar_stays_off_when_stderr_is_not_a_terminal() {
+    let env = demo_with(&["01", "02"]);
+    let out = env.run(&["retrain", "--progress"]);
+    assert_eq!(code(&out), 0);
+    assert!(!stderr(&out).contains("epoch"), "{}", stderr(&out));
+    assert!(stdout(&out).contains("decision:"), "{}", stdout(&out));
+}
+
+#[test]
+fn an_interrupted_cycle_is_logged_as_abandoned() {
+    use tidegate::audit::Event;
+    use tidegate::config::Config;
+    use tidegate::state::{self, StateDir};
+    let env = demo_with(&["01"]);
+    {
+        // A cycle that starts and never ends, as a crash would leave it.
+        let config = Config::load(&repo("demo-data/tidegate.toml")).unwrap();
+        let (mut owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+        let event = Event::CycleStarted {
+            cycle: 1,
+            serving: None,
+            new_batches: vec![],
+            candidates: vec!["cold".into()],
+        };
+        owner
+            .store
+            .record_with_meta(
+                event,
+                "tester",
+                chrono::Utc::now(),
+                &[(
+                    tidegate::store::META_OPEN_CYCLE,
+                    Some(1u64.to_be_bytes().to_vec()),
+                )],
+            )
+            .unwrap();
+    }
+    let out = env.ingest(&[night("02")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let abandoned = env.log_json(&["--kind", "cycle-abandoned"]);
+    assert_eq!(abandoned.len(), 1);
+    assert_eq!(abandoned[0]["cycle"], 1);
+    // Once only.
+    env.ingest(&[night("03")]);
+    assert_eq!(env.log_json(&["--kind", "cycle-abandoned"]).len(), 1);
+}
