@@ -176,7 +176,7 @@ impl Default for TrainingConfig {
     fn default() -> Self {
         TrainingConfig {
             backend: Backend::Flex,
-            predict_backend: Backend::Ndarray,
+            predict_backend: Backend::Flex,
             batch_size: 256,
             learning_rate: 1e-3,
             warm_learning_rate: None,

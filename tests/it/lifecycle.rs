@@ -270,3 +270,42 @@ fn an_interrupted_cycle_is_logged_as_abandoned() {
     env.ingest(&[night("03")]);
     assert_eq!(env.log_json(&["--kind", "cycle-abandoned"]).len(), 1);
 }
+
+#[test]
+fn a_warm_cycle_in_a_new_process_continues_the_checkpoint_exactly() {
+    use tidegate::config::Config;
+    use tidegate::ids::BatchId;
+    use tidegate::model::checkpoint::{Checkpoint, read_manifest};
+    use tidegate::state::{self, StateDir};
+    use tidegate::store::Split;
+    use tidegate::train::{Control, train_warm};
+
+    // Process 1 trains and saves m000001; process 2 loads its weights and
+    // Adam state from disk and trains the warm candidate m000002.
+    let env = demo_with(&["01", "02", "03"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    assert_eq!(code(&env.ingest(&[night("04")])), 0);
+    let r = retrain(&env, &[]);
+    assert_eq!(r["candidates"][0]["run"], "warm");
+    let from_process = read_manifest(&env.state().join("models/m000002")).unwrap();
+
+    // The same warm run here, from the files process 1 wrote.
+    let config = Config::load(&repo("demo-data/tidegate.toml")).unwrap();
+    let (owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+    let parent = Checkpoint::load(&env.state().join("models/m000001"), &config.schema_fingerprint()).unwrap();
+    let older = owner.store.rows(Split::Train, None, Some(BatchId(3))).unwrap();
+    let new = owner.store.rows(Split::Train, Some(BatchId(4)), None).unwrap();
+    let here = train_warm(&parent.model, &config.training, &new, &older, Control::default()).unwrap();
+    assert_eq!(here.model.weights_digest(), from_process.weights_digest, "bit-identical weights across processes");
+    // (The manifest's losses went through JSON, whose float parsing may move
+    // the last bit; the weights digest above is the exact check.)
+    assert_eq!(here.summary.train_loss.len(), from_process.summary.train_loss.len());
+    for (a, b) in here.summary.train_loss.iter().zip(&from_process.summary.train_loss) {
+        assert!((a - b).abs() <= 1e-12 * a.abs(), "{a} vs {b}");
+    }
+    // And the first epoch's loss continues from where the parent ended,
+    // rather than starting over (the optimizer state was restored too).
+    let parent_last = *parent.manifest.summary.validation_loss.last().unwrap();
+    let warm_first = here.summary.validation_loss[0];
+    assert!(warm_first < 2.0 * parent_last, "warm start lost the fit: {warm_first} vs {parent_last}");
+}
