@@ -306,7 +306,10 @@ impl Entry {
             prev: prev.to_string(),
             hash: String::new(),
         };
-        let value = serde_json::to_value(&entry).expect("entry serialises");
+        // Hash what a reader will parse back from the line, so writer and
+        // verifier see the very same numbers.
+        let line = serde_json::to_string(&entry).expect("entry serialises");
+        let value: serde_json::Value = serde_json::from_str(&line).expect("own line parses");
         entry.hash = content_hash(&value);
         entry
     }
@@ -680,6 +683,41 @@ mod tests {
         let v = serde_json::to_value(&entries[1]).unwrap();
         entries[1].hash = content_hash(&v);
         assert_eq!(check(&lines(&entries)).unwrap_err().seq, 3);
+    }
+
+    #[test]
+    fn entries_with_awkward_floats_verify() {
+        // Floats whose shortest text form needs 17 digits must survive the
+        // round trip through the line exactly, or the chain would break.
+        let mut prev = GENESIS.to_string();
+        let mut lines = Vec::new();
+        for (i, x) in [38.839118296980516_f64, 0.1 + 0.2, 1e-300, 2.0f64.sqrt()]
+            .into_iter()
+            .enumerate()
+        {
+            let e = Entry::seal(
+                AuditSeq(i as u64 + 1),
+                t("2026-12-01T00:00:00Z"),
+                "ana",
+                Event::CandidateTrained {
+                    cycle: 1,
+                    model: ModelId(1),
+                    run: "cold".into(),
+                    parent: None,
+                    trained_through: BatchId(1),
+                    epochs: 3,
+                    seconds: x,
+                    stop: "EarlyStop".into(),
+                    holdout_rows: 10,
+                    holdout_loss: x * 3.0,
+                    manifest_hash: "00".into(),
+                },
+                &prev,
+            );
+            prev = e.hash.clone();
+            lines.push(e.line().into_bytes());
+        }
+        assert_eq!(check(&lines).unwrap().len(), 4);
     }
 
     #[test]

@@ -292,20 +292,52 @@ fn a_warm_cycle_in_a_new_process_continues_the_checkpoint_exactly() {
     // The same warm run here, from the files process 1 wrote.
     let config = Config::load(&repo("demo-data/tidegate.toml")).unwrap();
     let (owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
-    let parent = Checkpoint::load(&env.state().join("models/m000001"), &config.schema_fingerprint()).unwrap();
-    let older = owner.store.rows(Split::Train, None, Some(BatchId(3))).unwrap();
-    let new = owner.store.rows(Split::Train, Some(BatchId(4)), None).unwrap();
-    let here = train_warm(&parent.model, &config.training, &new, &older, Control::default()).unwrap();
-    assert_eq!(here.model.weights_digest(), from_process.weights_digest, "bit-identical weights across processes");
+    let parent = Checkpoint::load(
+        &env.state().join("models/m000001"),
+        &config.schema_fingerprint(),
+    )
+    .unwrap();
+    let older = owner
+        .store
+        .rows(Split::Train, None, Some(BatchId(3)))
+        .unwrap();
+    let new = owner
+        .store
+        .rows(Split::Train, Some(BatchId(4)), None)
+        .unwrap();
+    let here = train_warm(
+        &parent.model,
+        &config.training,
+        &new,
+        &older,
+        Control::default(),
+    )
+    .unwrap();
+    assert_eq!(
+        here.model.weights_digest(),
+        from_process.weights_digest,
+        "bit-identical weights across processes"
+    );
     // (The manifest's losses went through JSON, whose float parsing may move
     // the last bit; the weights digest above is the exact check.)
-    assert_eq!(here.summary.train_loss.len(), from_process.summary.train_loss.len());
-    for (a, b) in here.summary.train_loss.iter().zip(&from_process.summary.train_loss) {
+    assert_eq!(
+        here.summary.train_loss.len(),
+        from_process.summary.train_loss.len()
+    );
+    for (a, b) in here
+        .summary
+        .train_loss
+        .iter()
+        .zip(&from_process.summary.train_loss)
+    {
         assert!((a - b).abs() <= 1e-12 * a.abs(), "{a} vs {b}");
     }
     // And the first epoch's loss continues from where the parent ended,
     // rather than starting over (the optimizer state was restored too).
     let parent_last = *parent.manifest.summary.validation_loss.last().unwrap();
     let warm_first = here.summary.validation_loss[0];
-    assert!(warm_first < 2.0 * parent_last, "warm start lost the fit: {warm_first} vs {parent_last}");
+    assert!(
+        warm_first < 2.0 * parent_last,
+        "warm start lost the fit: {warm_first} vs {parent_last}"
+    );
 }
