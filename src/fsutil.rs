@@ -26,18 +26,23 @@ fn temp_path(dest: &Path) -> PathBuf {
     dir.join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
 }
 
+/// Creates (or truncates) `path`, writes `bytes` and fsyncs the file.
+fn write_synced(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    let mut f = fs::OpenOptions::new()
+        .write(true)
+        .create(true)
+        .truncate(true)
+        .open(path)?;
+    f.write_all(bytes)?;
+    f.sync_all()
+}
+
 /// Writes `bytes` to `dest` so that a reader (or a crash) sees either the
 /// old file or the whole new one, never a part.
 pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let tmp = temp_path(dest);
     let result = (|| {
-        let mut f = fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
+        write_synced(&tmp, bytes)?;
         fs::rename(&tmp, dest)?;
         sync_dir(dest.parent().unwrap_or(Path::new(".")))
     })();
@@ -52,14 +57,7 @@ pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
 pub fn write_new(dest: &Path, bytes: &[u8]) -> std::io::Result<bool> {
     let tmp = temp_path(dest);
     let result = (|| {
-        let mut f = fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        drop(f);
+        write_synced(&tmp, bytes)?;
         // A hard link fails if the name is taken, unlike rename.
         let created = match fs::hard_link(&tmp, dest) {
             Ok(()) => true,

@@ -412,14 +412,19 @@ impl Store {
                 audit.insert(&entry.seq.key()[..], line.as_slice())?;
                 Ok(())
             });
-        match result {
-            Ok(()) => {}
-            Err(TransactionError::Abort(e)) => return Err(e),
-            Err(TransactionError::Storage(e)) => return Err(self.sled_err(e)),
-        }
-        self.sync()?;
+        self.settle(result)?;
         self.last_audit = Some((entry.seq, entry.hash.clone()));
         Ok(entry)
+    }
+
+    /// Turns a transaction's result into ours and, when it committed, makes
+    /// it durable.
+    fn settle(&self, result: Result<(), TransactionError<StoreError>>) -> Result<(), StoreError> {
+        match result {
+            Ok(()) => self.sync(),
+            Err(TransactionError::Abort(e)) => Err(e),
+            Err(TransactionError::Storage(e)) => Err(self.sled_err(e)),
+        }
     }
 
     /// A `meta` value.
@@ -587,12 +592,7 @@ impl Store {
                     Ok(())
                 },
             );
-        match result {
-            Ok(()) => {}
-            Err(TransactionError::Abort(e)) => return Err(e),
-            Err(TransactionError::Storage(e)) => return Err(self.sled_err(e)),
-        }
-        self.sync()?;
+        self.settle(result)?;
         for (ci, values) in &batch.new_categories {
             let v = self.vocabs.entry(*ci).or_default();
             for value in values {
