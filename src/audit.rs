@@ -111,6 +111,22 @@ pub enum Event {
         serving: Option<ModelId>,
         evidence: GateEvidence,
     },
+    /// A person let a waiting candidate serve.
+    Approved {
+        model: ModelId,
+        previous: Option<ModelId>,
+        reason: String,
+    },
+    /// A person turned a waiting candidate down; it stays on disk.
+    Declined { model: ModelId, reason: String },
+    /// An earlier model serves again.
+    RolledBack {
+        from: ModelId,
+        to: ModelId,
+        /// "manual" or "automatic".
+        how: String,
+        reason: String,
+    },
 }
 
 /// The gate's numbers as written in the log.
@@ -145,6 +161,9 @@ impl Event {
             Event::Promoted { .. } => "promoted",
             Event::Kept { .. } => "kept",
             Event::AwaitingApproval { .. } => "awaiting-approval",
+            Event::Approved { .. } => "approved",
+            Event::Declined { .. } => "declined",
+            Event::RolledBack { .. } => "rolled-back",
         }
     }
 
@@ -160,6 +179,9 @@ impl Event {
         "promoted",
         "kept",
         "awaiting-approval",
+        "approved",
+        "declined",
+        "rolled-back",
     ];
 
     /// The model an event is about, if any.
@@ -168,7 +190,10 @@ impl Event {
             Event::CandidateTrained { model, .. }
             | Event::Promoted { model, .. }
             | Event::Kept { model, .. }
-            | Event::AwaitingApproval { model, .. } => Some(*model),
+            | Event::AwaitingApproval { model, .. }
+            | Event::Approved { model, .. }
+            | Event::Declined { model, .. } => Some(*model),
+            Event::RolledBack { to, .. } => Some(*to),
             _ => None,
         }
     }
@@ -271,6 +296,23 @@ impl Event {
                     "{model} won the gate and awaits approval: {}",
                     evidence.reason
                 )
+            }
+            Event::Approved {
+                model,
+                previous,
+                reason,
+            } => format!(
+                "{model} approved and serves (was {}): {reason}",
+                previous.map_or_else(|| "none".to_string(), |m| m.to_string())
+            ),
+            Event::Declined { model, reason } => format!("{model} declined: {reason}"),
+            Event::RolledBack {
+                from,
+                to,
+                how,
+                reason,
+            } => {
+                format!("{to} serves again instead of {from} ({how}): {reason}")
             }
         }
     }

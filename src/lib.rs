@@ -16,6 +16,7 @@ pub mod gate;
 pub mod ids;
 pub mod ingest;
 pub mod intake;
+pub mod lifecycle;
 pub mod model;
 pub mod rng;
 pub mod schema;

@@ -2,11 +2,15 @@
 //! the mapping of failures to exit codes. Commands print data on stdout and
 //! messages on stderr; `--json` switches data to JSON.
 
+mod approve;
+mod decline;
 mod ingest;
 mod init;
 mod log;
+mod models;
 mod predict;
 mod retrain;
+mod rollback;
 mod status;
 mod verify;
 
@@ -74,6 +78,14 @@ pub enum Command {
     Log(log::Args),
     /// Run one retrain cycle now: candidates, the gate, promote or keep.
     Retrain(retrain::Args),
+    /// Model versions with their parents, holdout loss and decisions.
+    Models(models::Args),
+    /// Make an earlier model serve again.
+    Rollback(rollback::Args),
+    /// Let the candidate waiting for approval serve.
+    Approve(approve::Args),
+    /// Turn the candidate waiting for approval down.
+    Decline(decline::Args),
     /// Score a CSV file with the serving model (or --model ID).
     Predict(predict::Args),
     /// Check the audit chain, the store against the log, and the archive.
@@ -91,6 +103,10 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Verify(a) => verify::run(cli, &state, a),
         Command::Predict(a) => predict::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),
+        Command::Models(a) => models::run(cli, &state, a),
+        Command::Rollback(a) => rollback::run(cli, &state, a),
+        Command::Approve(a) => approve::run(cli, &state, a),
+        Command::Decline(a) => decline::run(cli, &state, a),
     }
 }
 

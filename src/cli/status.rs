@@ -64,6 +64,11 @@ impl Summary {
                 }
                 Event::BatchRejected { .. } => s.rejected_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
+                Event::Approved { model, .. } | Event::RolledBack { to: model, .. } => {
+                    s.serving = Some(*model);
+                    s.last_decision = Some(e.event.summary());
+                }
+                Event::Declined { .. } => s.last_decision = Some(e.event.summary()),
                 Event::Promoted { model, .. } => {
                     s.serving = Some(*model);
                     s.last_decision = Some(e.event.summary());

@@ -341,3 +341,132 @@ fn a_warm_cycle_in_a_new_process_continues_the_checkpoint_exactly() {
         "warm start lost the fit: {warm_first} vs {parent_last}"
     );
 }
+
+#[test]
+fn approval_mode_waits_for_a_person() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("approval.toml");
+    let text = fs::read_to_string(repo("demo-data/tidegate.toml"))
+        .unwrap()
+        .replace("require_approval = false", "require_approval = true");
+    fs::write(&cfg, text).unwrap();
+    let env = Env::new(&cfg);
+    assert_eq!(
+        code(&env.ingest(&[night("01"), night("02"), night("03")])),
+        0
+    );
+    let r = retrain(&env, &[]);
+    assert_eq!(r["outcome"], "await-approval", "{r}");
+    assert!(
+        !env.state().join("serving").exists(),
+        "nothing serves before approval"
+    );
+    // No new cycle while one waits; the wrong id and a missing reason are refused.
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("already waiting for approval (m000001)"),
+        "{}",
+        stderr(&out)
+    );
+    let out = env.run(&["approve", "m000007", "--reason", "looks fine"]);
+    assert_eq!(code(&out), 1);
+    assert!(stderr(&out).contains("m000001 is"), "{}", stderr(&out));
+    assert_eq!(
+        code(&env.run(&["approve", "m000001"])),
+        2,
+        "--reason is required"
+    );
+    let out = env.run(&[
+        "approve",
+        "m000001",
+        "--reason",
+        "checked the error by shop",
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000001\n"
+    );
+    let approved = env.log_json(&["--kind", "approved"]);
+    assert_eq!(approved[0]["user"], "tester");
+    assert_eq!(approved[0]["reason"], "checked the error by shop");
+
+    assert_eq!(code(&env.ingest(&[night("04"), night("06")])), 0);
+    let r = retrain(&env, &[]);
+    if r["outcome"] == "await-approval" {
+        let out = env.run(&["decline", "m000002", "--reason", "wait for a full week"]);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        assert_eq!(
+            fs::read_to_string(env.state().join("serving")).unwrap(),
+            "m000001\n"
+        );
+        assert_eq!(env.log_json(&["--kind", "declined"]).len(), 1);
+    }
+    let out = env.run(&["decline", "m000002", "--reason", "again"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("no candidate is waiting"),
+        "{}",
+        stderr(&out)
+    );
+    assert_eq!(code(&env.run(&["verify"])), 0);
+}
+
+#[test]
+fn manual_rollback_and_the_model_list() {
+    let env = demo_with(&["01", "02", "03", "04"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    assert_eq!(code(&env.ingest(&[night("06"), night("07")])), 0);
+    assert_eq!(
+        retrain(&env, &[])["outcome"],
+        "promote",
+        "the seeded demo promotes its first warm candidate"
+    );
+    let out = env.run(&["rollback", "--reason", "complaints from the harbour shop"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000001\n"
+    );
+    let rb = env.log_json(&["--kind", "rolled-back"]);
+    assert_eq!(
+        (rb[0]["from"].as_u64(), rb[0]["to"].as_u64()),
+        (Some(2), Some(1))
+    );
+    assert_eq!(rb[0]["how"], "manual");
+    assert_eq!(rb[0]["user"], "tester");
+    assert_eq!(env.status_json()["summary"]["serving"], 1);
+    let out = env.run(&["rollback", "--to", "m000001", "--reason", "again"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("m000001 already serves"),
+        "{}",
+        stderr(&out)
+    );
+    assert_eq!(
+        code(&env.run(&["rollback", "--to", "m000002"])),
+        2,
+        "--reason is required"
+    );
+
+    let out = env.run(&["--json", "models"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let models: Vec<serde_json::Value> = stdout(&out)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(models.len(), 2);
+    assert_eq!(models[0]["serving"], true);
+    assert_eq!(models[1]["parent"], 1);
+    assert_eq!(models[1]["kind"], "warm");
+    assert_eq!(models[1]["decisions"], serde_json::json!(["promoted"]));
+    assert_eq!(
+        models[0]["decisions"],
+        serde_json::json!(["promoted", "rolled-back"])
+    );
+    assert!(models[1]["holdout_loss"].as_f64().unwrap() > 0.0);
+    let out = env.run(&["models"]);
+    assert!(stdout(&out).contains("m000001 *"), "{}", stdout(&out));
+    assert_eq!(code(&env.run(&["verify"])), 0);
+}

@@ -1,0 +1,198 @@
+//! Decisions people make about model versions: approve or decline a
+//! candidate waiting in approval mode, and roll back to an earlier model.
+//! Each moves (or leaves) the store's serving pointer in the same
+//! transaction as its audit entry, then refreshes the `serving` file.
+
+use chrono::Utc;
+
+use crate::audit::{Entry, Event};
+use crate::cycle::META_PENDING;
+use crate::ids::ModelId;
+use crate::model::ModelError;
+use crate::model::checkpoint::{Checkpoint, model_dir};
+use crate::state::{Owner, StateError};
+use crate::store::{META_SERVING, StoreError};
+
+/// Why a decision could not be taken.
+#[derive(Debug, thiserror::Error)]
+pub enum DecisionError {
+    #[error("no candidate is waiting for approval")]
+    NothingPending,
+    #[error("{asked} is not the candidate waiting for approval ({pending} is)")]
+    NotPending { asked: ModelId, pending: ModelId },
+    #[error("no model serves, so there is nothing to roll back from")]
+    NothingServes,
+    #[error("{0} already serves")]
+    AlreadyServes(ModelId),
+    #[error("no earlier model to roll back to: {0} was the first to serve; name one with --to")]
+    NoPrevious(ModelId),
+    #[error("a reason is required (--reason TEXT): it goes into the audit log")]
+    NoReason,
+    #[error("model {id} cannot serve: {source}")]
+    Unusable {
+        id: ModelId,
+        #[source]
+        source: ModelError,
+    },
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error(transparent)]
+    State(#[from] StateError),
+    #[error(transparent)]
+    Audit(#[from] crate::audit::MirrorError),
+}
+
+fn pending(owner: &Owner) -> Result<Option<ModelId>, StoreError> {
+    Ok(owner
+        .store
+        .meta_value(META_PENDING)?
+        .and_then(|v| ModelId::from_key(&v)))
+}
+
+fn check_reason(reason: &str) -> Result<(), DecisionError> {
+    if reason.trim().is_empty() {
+        Err(DecisionError::NoReason)
+    } else {
+        Ok(())
+    }
+}
+
+/// A model may serve only if its checkpoint loads, verifies and matches the schema.
+fn usable(owner: &Owner, id: ModelId) -> Result<(), DecisionError> {
+    Checkpoint::load(
+        &model_dir(&owner.state.models(), id),
+        &owner.config.schema_fingerprint(),
+    )
+    .map(|_| ())
+    .map_err(|source| DecisionError::Unusable { id, source })
+}
+
+fn commit(
+    owner: &mut Owner,
+    event: Event,
+    user: &str,
+    serving: Option<ModelId>,
+    clear_pending: bool,
+) -> Result<Entry, DecisionError> {
+    let mut meta = Vec::new();
+    if let Some(id) = serving {
+        meta.push((META_SERVING, Some(id.key().to_vec())));
+    }
+    if clear_pending {
+        meta.push((META_PENDING, None));
+    }
+    let entry = owner
+        .store
+        .record_with_meta(event, user, Utc::now(), &meta)?;
+    owner.mirror.append(&[entry.line().as_bytes()])?;
+    if let Some(id) = serving {
+        crate::fsutil::write_atomic(&owner.state.serving(), format!("{id}\n").as_bytes()).map_err(
+            |source| StateError::Io {
+                path: owner.state.serving(),
+                source,
+            },
+        )?;
+    }
+    Ok(entry)
+}
+
+/// Lets the waiting candidate serve.
+pub fn approve(
+    owner: &mut Owner,
+    id: ModelId,
+    reason: &str,
+    user: &str,
+) -> Result<Entry, DecisionError> {
+    check_reason(reason)?;
+    match pending(owner)? {
+        None => return Err(DecisionError::NothingPending),
+        Some(p) if p != id => {
+            return Err(DecisionError::NotPending {
+                asked: id,
+                pending: p,
+            });
+        }
+        Some(_) => {}
+    }
+    usable(owner, id)?;
+    let previous = owner.store.serving()?;
+    let event = Event::Approved {
+        model: id,
+        previous,
+        reason: reason.trim().to_string(),
+    };
+    commit(owner, event, user, Some(id), true)
+}
+
+/// Turns the waiting candidate down; the serving model stays.
+pub fn decline(
+    owner: &mut Owner,
+    id: ModelId,
+    reason: &str,
+    user: &str,
+) -> Result<Entry, DecisionError> {
+    check_reason(reason)?;
+    match pending(owner)? {
+        None => return Err(DecisionError::NothingPending),
+        Some(p) if p != id => {
+            return Err(DecisionError::NotPending {
+                asked: id,
+                pending: p,
+            });
+        }
+        Some(_) => {}
+    }
+    let event = Event::Declined {
+        model: id,
+        reason: reason.trim().to_string(),
+    };
+    commit(owner, event, user, None, true)
+}
+
+/// Makes an earlier model serve again: `to`, or the model that served
+/// before the current one.
+pub fn rollback(
+    owner: &mut Owner,
+    to: Option<ModelId>,
+    reason: &str,
+    user: &str,
+) -> Result<Entry, DecisionError> {
+    check_reason(reason)?;
+    let from = owner.store.serving()?.ok_or(DecisionError::NothingServes)?;
+    let to = match to {
+        Some(t) => t,
+        None => previous_of(owner, from)?.ok_or(DecisionError::NoPrevious(from))?,
+    };
+    if to == from {
+        return Err(DecisionError::AlreadyServes(to));
+    }
+    usable(owner, to)?;
+    let event = Event::RolledBack {
+        from,
+        to,
+        how: "manual".into(),
+        reason: reason.trim().to_string(),
+    };
+    commit(owner, event, user, Some(to), false)
+}
+
+/// The model that served before `current` started serving, from the log.
+fn previous_of(owner: &Owner, current: ModelId) -> Result<Option<ModelId>, DecisionError> {
+    let mut previous = None;
+    for (_, line) in owner.store.audit_entries()? {
+        let Ok(entry) = Entry::from_line(&line) else {
+            continue;
+        };
+        match entry.event {
+            Event::Promoted {
+                model, previous: p, ..
+            }
+            | Event::Approved {
+                model, previous: p, ..
+            } if model == current => previous = p,
+            Event::RolledBack { to, from, .. } if to == current => previous = Some(from),
+            _ => {}
+        }
+    }
+    Ok(previous)
+}
