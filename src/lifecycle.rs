@@ -49,6 +49,18 @@ fn pending(owner: &Owner) -> Result<Option<ModelId>, StoreError> {
         .and_then(|v| ModelId::from_key(&v)))
 }
 
+/// Checks that `id` is the candidate waiting for approval.
+fn ensure_pending(owner: &Owner, id: ModelId) -> Result<(), DecisionError> {
+    match pending(owner)? {
+        None => Err(DecisionError::NothingPending),
+        Some(p) if p != id => Err(DecisionError::NotPending {
+            asked: id,
+            pending: p,
+        }),
+        Some(_) => Ok(()),
+    }
+}
+
 fn check_reason(reason: &str) -> Result<(), DecisionError> {
     if reason.trim().is_empty() {
         Err(DecisionError::NoReason)
@@ -104,16 +116,7 @@ pub fn approve(
     user: &str,
 ) -> Result<Entry, DecisionError> {
     check_reason(reason)?;
-    match pending(owner)? {
-        None => return Err(DecisionError::NothingPending),
-        Some(p) if p != id => {
-            return Err(DecisionError::NotPending {
-                asked: id,
-                pending: p,
-            });
-        }
-        Some(_) => {}
-    }
+    ensure_pending(owner, id)?;
     usable(owner, id)?;
     let previous = owner.store.serving()?;
     let event = Event::Approved {
@@ -132,16 +135,7 @@ pub fn decline(
     user: &str,
 ) -> Result<Entry, DecisionError> {
     check_reason(reason)?;
-    match pending(owner)? {
-        None => return Err(DecisionError::NothingPending),
-        Some(p) if p != id => {
-            return Err(DecisionError::NotPending {
-                asked: id,
-                pending: p,
-            });
-        }
-        Some(_) => {}
-    }
+    ensure_pending(owner, id)?;
     let event = Event::Declined {
         model: id,
         reason: reason.trim().to_string(),

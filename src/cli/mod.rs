@@ -158,6 +158,28 @@ pub(crate) fn load_config(cli: &Cli, state: &StateDir) -> anyhow::Result<Config>
     Ok(Config::load(&path)?)
 }
 
+/// Opens the state dir as owner, takes one decision about model versions
+/// (approve, decline, rollback) and prints its audit entry.
+pub(crate) fn run_decision(
+    cli: &Cli,
+    state: &StateDir,
+    decide: impl FnOnce(
+        &mut crate::state::Owner,
+        &str,
+    ) -> Result<crate::audit::Entry, crate::lifecycle::DecisionError>,
+) -> anyhow::Result<Exit> {
+    let config = load_config(cli, state)?;
+    let (mut owner, _) = crate::state::open(state, &config)?;
+    let entry = decide(&mut owner, &crate::state::current_user())?;
+    let text = if cli.json {
+        format!("{}\n", entry.line())
+    } else {
+        format!("{}\n", entry.event.summary())
+    };
+    emit(&text)?;
+    Ok(Exit::Ok)
+}
+
 /// Writes to stdout; a closed pipe (`| head`) is not a failure.
 pub(crate) fn emit(text: &str) -> anyhow::Result<()> {
     let mut out = std::io::stdout().lock();
