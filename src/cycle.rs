@@ -198,13 +198,19 @@ pub fn run(
     let new_train = store.rows(Split::Train, Some(through.next()), None)?;
     let older_holdout = store.rows(Split::Holdout, None, Some(through))?;
     let new_holdout = store.rows(Split::Holdout, Some(through.next()), None)?;
-    let mut holdout = older_holdout.clone();
-    holdout.extend(&new_holdout);
     let new_flags: Vec<bool> = std::iter::repeat_n(false, older_holdout.n_rows())
         .chain(std::iter::repeat_n(true, new_holdout.n_rows()))
         .collect();
-    let mut all_train = older_train.clone();
-    all_train.extend(&new_train);
+    let mut holdout = older_holdout;
+    holdout.extend(&new_holdout);
+    drop(new_holdout);
+    // Only a cold candidate (always trained when nothing serves, so also the
+    // only case that needs the trivial baseline) uses all training rows at once.
+    let all_train = want_cold.then(|| {
+        let mut all = older_train.clone();
+        all.extend(&new_train);
+        all
+    });
     let training = &owner.config.training;
     let cold_spec = FeatureSpec::new(
         store.schema(),
@@ -233,15 +239,9 @@ pub fn run(
                 )
             })
         });
-        let cold = want_cold.then(|| {
-            train::train_cold(
-                &cold_spec,
-                &owner.config.model,
-                training,
-                &all_train,
-                control,
-            )
-        });
+        let cold = all_train
+            .as_ref()
+            .map(|all| train::train_cold(&cold_spec, &owner.config.model, training, all, control));
         (
             warm.map(|h| h.join().expect("training thread does not panic")),
             cold,
@@ -283,7 +283,10 @@ pub fn run(
             )
         }
         None => {
-            let losses = trivial_losses(&cold_spec, &all_train, &holdout)?;
+            let all = all_train
+                .as_ref()
+                .expect("a cold candidate is trained when nothing serves");
+            let losses = trivial_losses(&cold_spec, all, &holdout)?;
             let loss = mean(&losses);
             (
                 gate::decide_first(

@@ -374,13 +374,7 @@ pub fn prior_predictor_losses(
 mod tests {
     use super::*;
 
-    #[track_caller]
-    fn near(actual: f64, expected: f64, tolerance: f64) {
-        assert!(
-            (actual - expected).abs() <= tolerance,
-            "got {actual}, expected {expected} ± {tolerance}"
-        );
-    }
+    use crate::gate::near;
 
     #[test]
     fn regression_metrics_match_scikit_learn_docs() {

@@ -158,6 +158,16 @@ pub(crate) fn show(x: f64) -> String {
     }
 }
 
+/// Asserts `actual` is within `tolerance` of `expected` (for tests).
+#[cfg(test)]
+#[track_caller]
+pub(crate) fn near(actual: f64, expected: f64, tolerance: f64) {
+    assert!(
+        (actual - expected).abs() <= tolerance,
+        "got {actual}, expected {expected} ± {tolerance}"
+    );
+}
+
 #[cfg(test)]
 mod tests {
     use super::show;

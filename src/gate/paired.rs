@@ -446,13 +446,7 @@ mod tests {
         6.125, -8.375, 1.0, 2.0, 0.75, 2.875, 3.5, 5.125, 1.75, 3.625, 7.0, 3.0, 9.375, 7.5, -6.0,
     ];
 
-    #[track_caller]
-    fn near(actual: f64, expected: f64, tolerance: f64) {
-        assert!(
-            (actual - expected).abs() <= tolerance,
-            "got {actual}, expected {expected} ± {tolerance}"
-        );
-    }
+    use crate::gate::near;
 
     #[test]
     fn paired_t_on_darwin_fisher() {

@@ -644,5 +644,22 @@ pub fn arg_max(values: &[f64]) -> u32 {
     best as u32
 }
 
+/// A feature spec of `inputs` standardised-as-is number columns, for tests.
+#[cfg(test)]
+pub(crate) fn test_spec(inputs: usize, task: Task, outputs: usize) -> FeatureSpec {
+    FeatureSpec {
+        inputs: (0..inputs)
+            .map(|c| crate::schema::InputEncoding::Number {
+                column: c,
+                mean: 0.0,
+                std: 1.0,
+            })
+            .collect(),
+        target: inputs,
+        task,
+        outputs,
+    }
+}
+
 #[cfg(test)]
 mod tests;

@@ -1,22 +1,9 @@
 use super::*;
 use crate::config::{Activation, Backend, ModelConfig, Task};
-use crate::schema::{InputEncoding, Vocab, Vocabularies, number_cell};
+use crate::schema::{Vocab, Vocabularies, number_cell};
 use burn::tensor::Gradients;
 
-fn spec(inputs: usize, task: Task, outputs: usize) -> FeatureSpec {
-    FeatureSpec {
-        inputs: (0..inputs)
-            .map(|c| InputEncoding::Number {
-                column: c,
-                mean: 0.0,
-                std: 1.0,
-            })
-            .collect(),
-        target: inputs,
-        task,
-        outputs,
-    }
-}
+use crate::model::test_spec as spec;
 
 fn config(hidden: Vec<usize>, activation: Activation, init_scale: f64) -> ModelConfig {
     ModelConfig {

@@ -1,22 +1,9 @@
 use super::*;
 use crate::config::{Activation, Backend};
-use crate::schema::{InputEncoding, number_cell};
+use crate::schema::number_cell;
 use std::cell::RefCell;
 
-fn spec(inputs: usize, task: Task, outputs: usize) -> FeatureSpec {
-    FeatureSpec {
-        inputs: (0..inputs)
-            .map(|c| InputEncoding::Number {
-                column: c,
-                mean: 0.0,
-                std: 1.0,
-            })
-            .collect(),
-        target: inputs,
-        task,
-        outputs,
-    }
-}
+use crate::model::test_spec as spec;
 
 /// y = 2·x0 − x1 + 0.5 + small noise, inputs standard normal.
 fn linear_rows(n: usize, seed: u64) -> RowMatrix {
