@@ -207,6 +207,13 @@ pub struct GateConfig {
     pub require_approval: bool,
     /// Train a cold candidate every this many cycles (0 = only on request).
     pub cold_every: usize,
+    /// Penalty of the ridge baseline scored beside the network each cycle.
+    pub ridge_lambda: f64,
+    /// Smallest accepted batch the fresh-data check runs a test on.
+    pub fresh_min_rows: usize,
+    /// Roll back by itself when the fresh-data check finds the serving model
+    /// significantly worse than the one it replaced (never in approval mode).
+    pub auto_rollback: bool,
 }
 
 impl Default for GateConfig {
@@ -217,6 +224,9 @@ impl Default for GateConfig {
             min_holdout_rows: 200,
             require_approval: false,
             cold_every: 7,
+            ridge_lambda: 1.0,
+            fresh_min_rows: 100,
+            auto_rollback: true,
         }
     }
 }
@@ -523,7 +533,17 @@ impl Config {
             }
         }
         let g = &self.gate;
-        let checks: [(&str, bool, &str); 2] = [
+        let checks: [(&str, bool, &str); 4] = [
+            (
+                "ridge_lambda",
+                g.ridge_lambda > 0.0 && g.ridge_lambda.is_finite(),
+                "ridge_lambda must be a number > 0; 1.0 suits standardised inputs",
+            ),
+            (
+                "fresh_min_rows",
+                g.fresh_min_rows >= 2,
+                "fresh_min_rows must be at least 2 (a paired test needs two rows); 100 is usual",
+            ),
             (
                 "min_improvement",
                 g.min_improvement >= 0.0 && g.min_improvement < 1.0,

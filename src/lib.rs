@@ -7,10 +7,12 @@
 //! to exit codes.
 
 pub mod audit;
+pub mod baseline;
 pub mod cli;
 pub mod config;
 pub mod cycle;
 pub mod demo;
+pub mod fresh;
 pub mod fsutil;
 pub mod gate;
 pub mod ids;
