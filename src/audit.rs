@@ -216,6 +216,9 @@ pub struct GateEvidence {
     pub t: Option<f64>,
     /// One-sided p-value that the candidate is better.
     pub p: f64,
+    /// Wilcoxon signed-rank one-sided p, recorded beside the t-test's.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub wilcoxon_p: Option<f64>,
     pub new_rows: usize,
     pub old_rows: usize,
     pub reason: String,

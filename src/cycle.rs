@@ -521,6 +521,7 @@ pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
         relative_improvement: e.relative_improvement,
         t: e.test.t.is_finite().then_some(e.test.t),
         p: e.test.p_greater,
+        wilcoxon_p: e.wilcoxon_p,
         new_rows: e.new_rows.rows,
         old_rows: e.old_rows.rows,
         reason: decision.reason(),

@@ -23,7 +23,7 @@
 use std::cmp::Ordering;
 use std::fmt;
 
-use super::paired::{PairedT, WelchT, differences, paired_t, welch_t};
+use super::paired::{PairedT, WelchT, differences, paired_t, welch_t, wilcoxon_signed_rank};
 use super::{InputError, mean, show};
 use crate::config::GateConfig;
 
@@ -145,6 +145,10 @@ pub struct Evidence {
     pub relative_improvement: Option<f64>,
     /// One-sided paired t on all rows; `p_greater` is the decision's p.
     pub test: PairedT,
+    /// Wilcoxon signed-rank p that the candidate's losses tend to be lower:
+    /// a second opinion that does not rest on the mean of heavy-tailed
+    /// losses. Recorded, not part of the rule.
+    pub wilcoxon_p: Option<f64>,
     pub new_rows: Guard,
     pub old_rows: Guard,
     pub policy: Policy,
@@ -410,6 +414,7 @@ fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> D
         mean_loss_candidate,
         relative_improvement,
         test,
+        wilcoxon_p: wilcoxon_signed_rank(&d).ok().map(|w| w.p_greater),
         new_rows: guard(base, cand, true, policy.alpha),
         old_rows: guard(base, cand, false, policy.alpha),
         policy: *policy,

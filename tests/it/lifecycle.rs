@@ -87,6 +87,8 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     assert_eq!(promoted.len(), 1);
     assert_eq!(promoted[0]["evidence"]["baseline"], "trivial");
     assert!(promoted[0]["evidence"]["p"].as_f64().unwrap() < 0.05);
+    // The rank test agrees on this clear win.
+    assert!(promoted[0]["evidence"]["wilcoxon_p"].as_f64().unwrap() < 0.05);
     let out = env.run(&["verify"]);
     assert_eq!(code(&out), 0, "{}", stdout(&out));
     assert!(stdout(&out).contains("2 checkpoints"), "{}", stdout(&out));
