@@ -43,6 +43,10 @@ pub enum Event {
         /// Category values seen for the first time, per column.
         #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
         new_categories: BTreeMap<String, Vec<String>>,
+        /// Each column against the stored training rows (absent for the
+        /// first batch).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        drift: Option<crate::drift::BatchReport>,
     },
     /// A file was refused; nothing from it was stored.
     BatchRejected {
@@ -311,6 +315,7 @@ impl Event {
                 train_rows,
                 holdout_rows,
                 new_categories,
+                drift,
                 ..
             } => {
                 let mut s = format!(
@@ -318,6 +323,12 @@ impl Event {
                 );
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
+                }
+                if let Some(d) = drift {
+                    let flagged = d.flagged();
+                    if !flagged.is_empty() {
+                        s.push_str(&format!("; drift in {}", flagged.join(", ")));
+                    }
                 }
                 s
             }

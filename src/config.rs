@@ -25,6 +25,54 @@ pub struct Config {
     pub gate: GateConfig,
     #[serde(default)]
     pub daemon: DaemonConfig,
+    #[serde(default)]
+    pub drift: DriftConfig,
+}
+
+/// Levels of the drift report computed for every accepted batch.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct DriftConfig {
+    /// Flag a number column when the two-sample KS p-value is below this.
+    pub ks_alpha: f64,
+    /// PSI from here up is reported as a moderate shift.
+    pub psi_warn: f64,
+    /// Flag a number column when PSI reaches this.
+    pub psi_alert: f64,
+    /// Flag a category column when the chi-square p-value is below this.
+    pub chi_alpha: f64,
+    /// Flag a category column when more than this share of the batch's rows
+    /// hold values never seen before.
+    pub unseen_share: f64,
+    /// The stored training rows compared against are thinned evenly to at
+    /// most this many.
+    pub max_reference_rows: usize,
+}
+
+impl Default for DriftConfig {
+    fn default() -> Self {
+        let t = crate::drift::Thresholds::default();
+        DriftConfig {
+            ks_alpha: t.ks_alpha,
+            psi_warn: t.psi_warn,
+            psi_alert: t.psi_alert,
+            chi_alpha: t.chi_alpha,
+            unseen_share: t.unseen_share,
+            max_reference_rows: 20_000,
+        }
+    }
+}
+
+impl DriftConfig {
+    pub fn thresholds(&self) -> crate::drift::Thresholds {
+        crate::drift::Thresholds {
+            ks_alpha: self.ks_alpha,
+            psi_warn: self.psi_warn,
+            psi_alert: self.psi_alert,
+            chi_alpha: self.chi_alpha,
+            unseen_share: self.unseen_share,
+        }
+    }
 }
 
 /// What the rows look like and how they are split.
@@ -559,6 +607,23 @@ impl Config {
             if !ok {
                 return fail(whole(key), msg.into());
             }
+        }
+        if let Err(crate::drift::DriftError::BadThreshold { name, value }) =
+            self.drift.thresholds().validate()
+        {
+            return fail(
+                whole(name),
+                format!(
+                    "{name} = {value} is out of range: alphas are in (0, 1), \
+                     0 <= psi_warn <= psi_alert, unseen_share is in [0, 1]"
+                ),
+            );
+        }
+        if self.drift.max_reference_rows < 100 {
+            return fail(
+                whole("max_reference_rows"),
+                "max_reference_rows must be at least 100".into(),
+            );
         }
         let d = &self.daemon;
         if !(d.settle_seconds >= 0.0 && d.settle_seconds.is_finite()) {

@@ -484,6 +484,7 @@ impl Store {
         batch: &Batch,
         file: &str,
         hash: &blake3::Hash,
+        drift: Option<crate::drift::BatchReport>,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<(BatchRecord, Entry), StoreError> {
@@ -503,6 +504,7 @@ impl Store {
             train_rows: batch.train.n_rows() as u64,
             holdout_rows: batch.holdout.n_rows() as u64,
             new_categories,
+            drift,
         };
         let entry = self.seal(event, user, time);
         let record = BatchRecord {

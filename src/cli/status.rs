@@ -39,6 +39,16 @@ pub struct Summary {
     pub versus_ridge: Option<VersusRidge>,
     /// The last fresh-data check, unless a cycle has started since.
     pub fresh_check: Option<FreshEvidence>,
+    /// The last accepted batch's drift report.
+    pub last_drift: Option<LastDrift>,
+}
+
+/// Which columns of the last accepted batch moved away from the stored rows.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LastDrift {
+    pub batch: crate::ids::BatchId,
+    pub flagged: Vec<String>,
+    pub reasons: Vec<String>,
 }
 
 /// A network's holdout loss beside the ridge baseline's on the same rows.
@@ -65,12 +75,24 @@ impl Summary {
         for e in entries {
             match &e.event {
                 Event::BatchAccepted {
+                    batch,
                     rows,
                     train_rows,
                     holdout_rows,
                     new_categories,
+                    drift,
                     ..
                 } => {
+                    s.last_drift = drift.as_ref().map(|d| LastDrift {
+                        batch: *batch,
+                        flagged: d.flagged().iter().map(|c| c.to_string()).collect(),
+                        reasons: d
+                            .columns
+                            .iter()
+                            .filter(|c| c.flagged)
+                            .map(|c| format!("{}: {}", c.column, c.reason))
+                            .collect(),
+                    });
                     s.batches += 1;
                     s.rows += rows;
                     s.train_rows += train_rows;
@@ -205,6 +227,20 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             ));
         }
     }
+    if let Some(d) = &summary.last_drift {
+        if d.flagged.is_empty() {
+            out.push_str(&format!("drift       {}: no column flagged\n", d.batch));
+        } else {
+            out.push_str(&format!(
+                "drift       {}: {} flagged against the stored rows\n",
+                d.batch,
+                d.flagged.join(", ")
+            ));
+            for r in &d.reasons {
+                out.push_str(&format!("            {r}\n"));
+            }
+        }
+    }
     if let Some(f) = &summary.fresh_check {
         let lead = match f.verdict.as_str() {
             "shifted" | "regressed" => "WARNING    ",
@@ -277,6 +313,7 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: cats.clone(),
+                drift: None,
             },
             Event::BatchRejected {
                 file: "b".into(),
@@ -298,6 +335,7 @@ mod tests {
                 train_rows: 4,
                 holdout_rows: 1,
                 new_categories: BTreeMap::new(),
+                drift: None,
             },
         ];
         let entries: Vec<Entry> = events

@@ -617,3 +617,49 @@ fn in_approval_mode_a_regression_is_reported_not_acted_on() {
         "{status}"
     );
 }
+
+#[test]
+fn every_accepted_batch_carries_a_drift_report() {
+    let env = demo_with(&["01", "02"]);
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    assert!(
+        accepted[0]["drift"].is_null(),
+        "nothing to compare the first with"
+    );
+    let d = &accepted[1]["drift"];
+    let col = |name: &str| {
+        d["columns"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["column"] == name)
+            .unwrap_or_else(|| panic!("{name} in {d}"))
+            .clone()
+    };
+    // Night 2 is a Tuesday after a Monday: every row has an unseen weekday.
+    let weekday = col("weekday");
+    assert_eq!(weekday["unseen_share"].as_f64(), Some(1.0));
+    assert_eq!(weekday["flagged"], true);
+    // The same shops upload every night.
+    assert_eq!(col("shop")["flagged"], false);
+    assert_eq!(col("shop")["unseen_share"].as_f64(), Some(0.0));
+    // KS critical value: c(0.01)·sqrt((n+m)/(n·m)) with c(0.01) = 1.62762
+    // (two-sample Kolmogorov–Smirnov critical value formula; CHECKS.md).
+    let temp = col("temp_c");
+    let (n, m) = (
+        d["reference_rows"].as_f64().unwrap(),
+        accepted[1]["rows"].as_f64().unwrap(),
+    );
+    let want = 1.62762 * ((n + m) / (n * m)).sqrt();
+    assert!(
+        (temp["critical"].as_f64().unwrap() - want).abs() < 1e-4,
+        "{temp}"
+    );
+    assert_eq!(col("loaves_sold")["target"], true);
+    // status names the flagged columns of the last batch.
+    let status = stdout(&env.run(&["status"]));
+    assert!(
+        status.contains("drift") && status.contains("weekday"),
+        "{status}"
+    );
+}
