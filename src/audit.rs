@@ -88,6 +88,10 @@ pub enum Event {
         holdout_loss: f64,
         /// blake3 of the checkpoint's manifest.json (which holds the other files' hashes).
         manifest_hash: String,
+        /// Inputs a warm candidate's first layer gained, per category column,
+        /// for values that arrived since its parent was trained.
+        #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+        widened: BTreeMap<String, usize>,
     },
     /// The cycle's reference models, fitted on the same training rows as
     /// the candidates and scored on the same holdout rows.
@@ -363,11 +367,16 @@ impl Event {
                 epochs,
                 seconds,
                 holdout_loss,
+                widened,
                 ..
             } => {
-                format!(
+                let mut s = format!(
                     "{model} ({run}): {epochs} epochs in {seconds:.1} s, holdout loss {holdout_loss:.4}"
-                )
+                );
+                for (col, n) in widened {
+                    s.push_str(&format!("; {n} new {col} input(s)"));
+                }
+                s
             }
             Event::Promoted {
                 model,
@@ -884,6 +893,7 @@ mod tests {
                     holdout_rows: 10,
                     holdout_loss: x * 3.0,
                     manifest_hash: "00".into(),
+                    widened: BTreeMap::new(),
                 },
                 &prev,
             );

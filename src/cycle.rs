@@ -225,9 +225,23 @@ pub fn run(
         cancel,
         progress: progress.map(|p| p as &dyn Fn(Progress)),
     };
+    // The warm parent takes category values that arrived since its encoding
+    // was fixed, with zero weights: the same function, room to learn them.
+    let widened = match serving.as_ref().filter(|_| want_warm) {
+        Some((_, _, ck)) => Some(ck.model.widened(store.vocabularies())?),
+        None => None,
+    };
+    let widened_columns: std::collections::BTreeMap<String, usize> = widened
+        .as_ref()
+        .map(|(_, added)| {
+            added
+                .iter()
+                .map(|(c, n)| (store.schema().columns[*c].name.clone(), *n))
+                .collect()
+        })
+        .unwrap_or_default();
     let (warm, cold) = std::thread::scope(|scope| {
-        let warm = serving.as_ref().filter(|_| want_warm).map(|(_, _, ck)| {
-            let parent = &ck.model;
+        let warm = widened.as_ref().map(|(parent, _)| {
             let (new_train, older_train) = (&new_train, &older_train);
             scope.spawn(move || {
                 train::train_warm(
@@ -366,6 +380,11 @@ pub fn run(
                 holdout_rows: holdout.n_rows(),
                 holdout_loss: *loss,
                 manifest_hash,
+                widened: if *run == RunKind::Warm {
+                    widened_columns.clone()
+                } else {
+                    Default::default()
+                },
             };
             let entry = owner.store.record_with_meta(
                 event,

@@ -14,7 +14,7 @@
 pub mod activation;
 pub mod checkpoint;
 
-use burn::module::{Module, Param, ParamId};
+use burn::module::{Module, Param, ParamGroup, ParamId};
 use burn::nn::Linear;
 use burn::optim::{AdamConfig, ModuleOptimizer};
 use burn::tensor::{Device, Tensor, TensorData};
@@ -97,6 +97,8 @@ pub enum ModelError {
     },
     #[error("feature matrix has {len} values, not a multiple of the model's input width {width}")]
     FeatureWidth { len: usize, width: usize },
+    #[error("could not widen the first layer for new category values: {0}")]
+    Widen(String),
     #[error("row {row} has no target value; per-row losses need the target column")]
     MissingTarget { row: usize },
     #[error(
@@ -534,6 +536,71 @@ impl Model {
     }
 
     /// Predictions for stored rows (the target column is ignored).
+    /// A copy whose first layer also takes the category values added to
+    /// `vocabs` since this model's encoding was fixed: each new one-hot
+    /// input gets zero weights, so every prediction (old rows, and new
+    /// values, which were scored as "none of the known values") is exactly
+    /// unchanged, and the next warm cycle can learn the new values. Adam's
+    /// state of the first layer is reset (its moments have the old shape).
+    /// Returns the copy and how many inputs each column gained; the copy is
+    /// a plain clone when nothing was added.
+    ///
+    /// Not covered: a new class of a classification target (the output
+    /// layer keeps its classes; a cold candidate learns the new one).
+    pub fn widened(
+        &self,
+        vocabs: &crate::schema::Vocabularies,
+    ) -> Result<(Model, std::collections::BTreeMap<usize, usize>), ModelError> {
+        use crate::schema::InputEncoding;
+        let mut added = std::collections::BTreeMap::new();
+        let mut inserts = Vec::new();
+        let mut spec = self.spec.clone();
+        let mut at = 0;
+        for enc in &mut spec.inputs {
+            match enc {
+                InputEncoding::Number { .. } => at += 1,
+                InputEncoding::OneHot { column, width } => {
+                    let now = vocabs.get(column).map_or(0, |v| v.len());
+                    if now > *width {
+                        inserts.push((at + *width, now - *width));
+                        added.insert(*column, now - *width);
+                        *width = now;
+                    }
+                    at += *width;
+                }
+            }
+        }
+        if inserts.is_empty() {
+            return Ok((self.clone(), added));
+        }
+        let mut weights = self.net.weights();
+        let first = &mut weights[0];
+        // Positions are in the widened layout; inserting from left to right
+        // makes the matrix match that layout up to each next position.
+        for &(pos, count) in &inserts {
+            first.weight =
+                crate::refold::widen_inputs(&first.weight, first.inputs, first.outputs, pos, count)
+                    .map_err(|e| ModelError::Widen(e.to_string()))?;
+            first.inputs += count;
+        }
+        let reset = ParamGroup::ids_from_module(self.net.layers[0].clone());
+        let optimizer = self
+            .optimizer
+            .clone()
+            .with_group(reset, AdamConfig::new().build(), None);
+        Ok((
+            Model::from_parts(
+                spec,
+                self.config.clone(),
+                self.target,
+                self.backend,
+                &weights,
+                optimizer,
+            ),
+            added,
+        ))
+    }
+
     pub fn predict(&self, rows: &RowMatrix, backend: Backend) -> Result<Predictions, ModelError> {
         self.predict_features(&self.spec.encode_inputs(rows), backend)
     }
