@@ -92,6 +92,10 @@ pub enum Event {
         /// for values that arrived since its parent was trained.
         #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
         widened: BTreeMap<String, usize>,
+        /// Number columns whose standardisation a warm candidate's parent
+        /// refreshed (folded into its first layer) before training.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        rescaled: Vec<String>,
     },
     /// The cycle's reference models, fitted on the same training rows as
     /// the candidates and scored on the same holdout rows.
@@ -368,6 +372,7 @@ impl Event {
                 seconds,
                 holdout_loss,
                 widened,
+                rescaled,
                 ..
             } => {
                 let mut s = format!(
@@ -375,6 +380,9 @@ impl Event {
                 );
                 for (col, n) in widened {
                     s.push_str(&format!("; {n} new {col} input(s)"));
+                }
+                if !rescaled.is_empty() {
+                    s.push_str(&format!("; rescaled {}", rescaled.join(", ")));
                 }
                 s
             }
@@ -894,6 +902,7 @@ mod tests {
                     holdout_loss: x * 3.0,
                     manifest_hash: "00".into(),
                     widened: BTreeMap::new(),
+                    rescaled: Vec::new(),
                 },
                 &prev,
             );

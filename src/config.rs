@@ -218,6 +218,11 @@ pub struct TrainingConfig {
     /// Shrink-and-perturb: θ ← shrink·θ + perturb·θ_fresh (1.0 and 0.0 turn it off).
     pub shrink: f64,
     pub perturb: f64,
+    /// A warm parent's standardisation of a number column is refreshed (and
+    /// folded into its first layer) when the column's mean moved more than
+    /// this many old standard deviations or its std changed by more than
+    /// this share; 0 never refreshes.
+    pub rescale_threshold: f64,
 }
 
 impl Default for TrainingConfig {
@@ -237,6 +242,7 @@ impl Default for TrainingConfig {
             replay_ratio: 1.0,
             shrink: 1.0,
             perturb: 0.0,
+            rescale_threshold: 0.5,
         }
     }
 }
@@ -489,7 +495,7 @@ impl Config {
             );
         }
         let t = &self.training;
-        let checks: [(&str, bool, &str); 10] = [
+        let checks: [(&str, bool, &str); 11] = [
             (
                 "batch_size",
                 t.batch_size >= 1,
@@ -530,6 +536,11 @@ impl Config {
                 "perturb",
                 t.perturb >= 0.0 && t.perturb <= 1.0,
                 "perturb must be in [0, 1]; 0 turns shrink-and-perturb off",
+            ),
+            (
+                "rescale_threshold",
+                t.rescale_threshold >= 0.0 && t.rescale_threshold.is_finite(),
+                "rescale_threshold must be 0 (never) or more; 0.5 is usual",
             ),
             (
                 "cold_epochs",

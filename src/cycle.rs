@@ -227,13 +227,29 @@ pub fn run(
     };
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
+    // Number columns whose stats moved far are restandardised the same way.
     let widened = match serving.as_ref().filter(|_| want_warm) {
-        Some((_, _, ck)) => Some(ck.model.widened(store.vocabularies())?),
+        Some((_, _, ck)) => {
+            let (wide, added) = ck.model.widened(store.vocabularies())?;
+            let (parent, rescaled) = wide.rescaled(
+                &store.totals().train_stats,
+                owner.config.training.rescale_threshold,
+            )?;
+            Some((parent, added, rescaled))
+        }
         None => None,
     };
+    let rescaled_columns: Vec<String> = widened
+        .as_ref()
+        .map(|(_, _, cols)| {
+            cols.iter()
+                .map(|c| store.schema().columns[*c].name.clone())
+                .collect()
+        })
+        .unwrap_or_default();
     let widened_columns: std::collections::BTreeMap<String, usize> = widened
         .as_ref()
-        .map(|(_, added)| {
+        .map(|(_, added, _)| {
             added
                 .iter()
                 .map(|(c, n)| (store.schema().columns[*c].name.clone(), *n))
@@ -241,7 +257,7 @@ pub fn run(
         })
         .unwrap_or_default();
     let (warm, cold) = std::thread::scope(|scope| {
-        let warm = widened.as_ref().map(|(parent, _)| {
+        let warm = widened.as_ref().map(|(parent, _, _)| {
             let (new_train, older_train) = (&new_train, &older_train);
             scope.spawn(move || {
                 train::train_warm(
@@ -384,6 +400,11 @@ pub fn run(
                     widened_columns.clone()
                 } else {
                     Default::default()
+                },
+                rescaled: if *run == RunKind::Warm {
+                    rescaled_columns.clone()
+                } else {
+                    Vec::new()
                 },
             };
             let entry = owner.store.record_with_meta(

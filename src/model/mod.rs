@@ -97,8 +97,8 @@ pub enum ModelError {
     },
     #[error("feature matrix has {len} values, not a multiple of the model's input width {width}")]
     FeatureWidth { len: usize, width: usize },
-    #[error("could not widen the first layer for new category values: {0}")]
-    Widen(String),
+    #[error("could not change the first layer for new inputs or scales: {0}")]
+    FirstLayer(String),
     #[error("row {row} has no target value; per-row losses need the target column")]
     MissingTarget { row: usize },
     #[error(
@@ -580,25 +580,82 @@ impl Model {
         for &(pos, count) in &inserts {
             first.weight =
                 crate::refold::widen_inputs(&first.weight, first.inputs, first.outputs, pos, count)
-                    .map_err(|e| ModelError::Widen(e.to_string()))?;
+                    .map_err(|e| ModelError::FirstLayer(e.to_string()))?;
             first.inputs += count;
         }
+        Ok((self.with_first_layer(spec, &weights), added))
+    }
+
+    /// A copy whose standardisation of number inputs follows `stats` where
+    /// they moved past `threshold` (see `refold::should_refresh`), with the
+    /// change folded into the first layer so every row without missing
+    /// values gets the same prediction (to float rounding). A missing value
+    /// encodes as the mean, so for such rows it now means the new mean.
+    /// Returns the copy and the schema columns refreshed.
+    pub fn rescaled(
+        &self,
+        stats: &crate::schema::ColumnStats,
+        threshold: f64,
+    ) -> Result<(Model, Vec<usize>), ModelError> {
+        use crate::refold::{ScaleChange, refold_scalers, should_refresh};
+        use crate::schema::InputEncoding;
+        let mut spec = self.spec.clone();
+        let mut changes = Vec::new();
+        let mut columns = Vec::new();
+        let mut at = 0;
+        for enc in &mut spec.inputs {
+            match enc {
+                InputEncoding::Number { column, mean, std } => {
+                    if let Some(st) = stats.numbers.get(column).filter(|s| s.count >= 2) {
+                        let sd = st.std_dev();
+                        let new = (st.mean as f32, if sd > 1e-12 { sd as f32 } else { 1.0 });
+                        if threshold > 0.0 && should_refresh((*mean, *std), new, threshold as f32) {
+                            changes.push(ScaleChange {
+                                col: at,
+                                old: (*mean, *std),
+                                new,
+                            });
+                            columns.push(*column);
+                            (*mean, *std) = new;
+                        }
+                    }
+                    at += 1;
+                }
+                InputEncoding::OneHot { width, .. } => at += *width,
+            }
+        }
+        if changes.is_empty() {
+            return Ok((self.clone(), columns));
+        }
+        let mut weights = self.net.weights();
+        let first = &mut weights[0];
+        refold_scalers(
+            &mut first.weight,
+            &mut first.bias,
+            first.inputs,
+            first.outputs,
+            &changes,
+        )
+        .map_err(|e| ModelError::FirstLayer(e.to_string()))?;
+        Ok((self.with_first_layer(spec, &weights), columns))
+    }
+
+    /// The same model with a new encoding and first layer; Adam's state of
+    /// the first layer is reset (its moments belong to the old inputs).
+    fn with_first_layer(&self, spec: FeatureSpec, weights: &[LayerWeights]) -> Model {
         let reset = ParamGroup::ids_from_module(self.net.layers[0].clone());
         let optimizer = self
             .optimizer
             .clone()
             .with_group(reset, AdamConfig::new().build(), None);
-        Ok((
-            Model::from_parts(
-                spec,
-                self.config.clone(),
-                self.target,
-                self.backend,
-                &weights,
-                optimizer,
-            ),
-            added,
-        ))
+        Model::from_parts(
+            spec,
+            self.config.clone(),
+            self.target,
+            self.backend,
+            weights,
+            optimizer,
+        )
     }
 
     pub fn predict(&self, rows: &RowMatrix, backend: Backend) -> Result<Predictions, ModelError> {

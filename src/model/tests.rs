@@ -534,3 +534,49 @@ fn widening_for_new_categories_keeps_every_prediction_and_trains_on() {
     });
     assert!(moved, "the new inputs' weights were trained");
 }
+
+#[test]
+fn rescaling_folds_new_standardisation_into_the_first_layer() {
+    let cfg = config(vec![16, 8], Activation::Tanh, 0.5);
+    let model = Model::new(
+        mixed_spec(3),
+        &cfg,
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        11,
+    )
+    .unwrap();
+    let rows = mixed_rows(&[0, 1, 2, 0, 1, 2, 0, 1]);
+    // Column 0 was standardised with (1, 2); the store now says (5, 4):
+    // mean moved 2 old stds, past a threshold of 0.5. Column 3 barely moved.
+    let mut stats = crate::schema::ColumnStats::default();
+    let mut st0 = crate::schema::RunningStats::default();
+    for v in [1.0, 9.0, 1.0, 9.0, 5.0 + 8f64.sqrt(), 5.0 - 8f64.sqrt()] {
+        st0.push(v);
+    }
+    stats.numbers.insert(0, st0);
+    let mut st3 = crate::schema::RunningStats::default();
+    for v in [-1.01, 1.01] {
+        st3.push(v);
+    }
+    stats.numbers.insert(3, st3);
+    let (moved, columns) = model.rescaled(&stats, 0.5).unwrap();
+    assert_eq!(columns, vec![0]);
+    let crate::schema::InputEncoding::Number { mean, std, .. } = moved.spec().inputs[0] else {
+        panic!("column 0 is a number");
+    };
+    assert!(
+        (f64::from(mean) - st0.mean).abs() < 1e-5 && (f64::from(std) - st0.std_dev()).abs() < 1e-5
+    );
+    let before = model
+        .raw_outputs(&model.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    let after = moved
+        .raw_outputs(&moved.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    for (a, b) in before.iter().zip(&after) {
+        assert!((a - b).abs() <= 1e-5 * (1.0 + a.abs()), "{a} vs {b}");
+    }
+    // Threshold 0 never refreshes.
+    assert!(model.rescaled(&stats, 0.0).unwrap().1.is_empty());
+}
