@@ -3,7 +3,9 @@
 //! messages on stderr; `--json` switches data to JSON.
 
 mod approve;
+mod completions;
 mod decline;
+mod demo;
 mod ingest;
 mod init;
 mod log;
@@ -41,15 +43,9 @@ pub enum Exit {
     about = "Keeps a tabular neural-network model up to date as data arrives, with a paired-test gate and an audit log."
 )]
 pub struct Cli {
-    /// State directory.
-    #[arg(
-        long,
-        global = true,
-        env = "TIDEGATE_STATE",
-        default_value = "state",
-        value_name = "DIR"
-    )]
-    pub state: PathBuf,
+    /// State directory [default: ./state].
+    #[arg(long, global = true, env = "TIDEGATE_STATE", value_name = "DIR")]
+    pub state: Option<PathBuf>,
     /// Config file (default: the copy in the state dir; for init: the one to use).
     #[arg(long, global = true, value_name = "FILE")]
     pub config: Option<PathBuf>,
@@ -90,12 +86,22 @@ pub enum Command {
     Predict(predict::Args),
     /// Check the audit chain, the store against the log, and the archive.
     Verify(verify::Args),
+    /// Run the bundled bakery scenario (invented data) night by night in a scratch state dir.
+    Demo(demo::Args),
+    /// Print a shell completion script (bash, zsh, fish, elvish, powershell).
+    Completions(completions::Args),
 }
 
 /// Runs a parsed command line.
 pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
-    let state = StateDir::new(&cli.state);
     match &cli.command {
+        Command::Demo(a) => return demo::run(cli, a),
+        Command::Completions(a) => return completions::run(a),
+        _ => {}
+    }
+    let state = StateDir::new(cli.state.clone().unwrap_or_else(|| PathBuf::from("state")));
+    match &cli.command {
+        Command::Demo(_) | Command::Completions(_) => unreachable!("handled above"),
         Command::Init(a) => init::run(cli, &state, a),
         Command::Ingest(a) => ingest::run(cli, &state, a),
         Command::Status(a) => status::run(cli, &state, a),
