@@ -108,7 +108,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                         shops.join(", ")
                     ));
                 }
-                waiting_rows += batch.rows() as u64;
+                waiting_rows += batch.rows();
                 if let Some(found) = fresh::check_batch(&mut owner, batch.id, &user)? {
                     night.check = found.evidence.verdict.clone();
                     if let Some(h) = found.evidence.hotspots.first()
