@@ -117,6 +117,19 @@ pub enum Event {
     /// A cycle that started was cut short (crash, kill, cancel); the serving
     /// model was not changed by it.
     CycleAbandoned { cycle: u64 },
+    /// A consistent copy of the state dir was written to `out`.
+    BackupMade {
+        out: String,
+        batches: u64,
+        rows: u64,
+    },
+    /// This state dir was restored from a backup; entries up to
+    /// `backup_seq` came with it.
+    Restored {
+        from: String,
+        backup_created_at: String,
+        backup_seq: u64,
+    },
     /// An accepted batch was scored by the serving model (and by the model
     /// it replaced) before anything trained on it.
     FreshChecked { check: FreshEvidence },
@@ -249,6 +262,8 @@ impl Event {
             Event::BaselinesScored { .. } => "baselines-scored",
             Event::CycleAbandoned { .. } => "cycle-abandoned",
             Event::FreshChecked { .. } => "fresh-checked",
+            Event::BackupMade { .. } => "backup-made",
+            Event::Restored { .. } => "restored",
             Event::Promoted { .. } => "promoted",
             Event::Kept { .. } => "kept",
             Event::AwaitingApproval { .. } => "awaiting-approval",
@@ -269,6 +284,8 @@ impl Event {
         "baselines-scored",
         "cycle-abandoned",
         "fresh-checked",
+        "backup-made",
+        "restored",
         "promoted",
         "kept",
         "awaiting-approval",
@@ -432,6 +449,16 @@ impl Event {
                 }
                 s
             }
+            Event::BackupMade { out, batches, rows } => {
+                format!("backup of {batches} batches ({rows} rows) written to {out}")
+            }
+            Event::Restored {
+                from,
+                backup_created_at,
+                backup_seq,
+            } => format!(
+                "restored from {from} (backup of {backup_created_at}, entries up to #{backup_seq})"
+            ),
             Event::CycleAbandoned { cycle } => {
                 format!("cycle {cycle} was cut short; the serving model did not change")
             }

@@ -7,6 +7,7 @@
 //! to exit codes.
 
 pub mod audit;
+pub mod backup;
 pub mod baseline;
 pub mod cli;
 pub mod config;

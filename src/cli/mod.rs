@@ -3,6 +3,7 @@
 //! messages on stderr; `--json` switches data to JSON.
 
 mod approve;
+mod backup;
 mod completions;
 mod decline;
 mod demo;
@@ -90,6 +91,10 @@ pub enum Command {
     Demo(demo::Args),
     /// Print a shell completion script (bash, zsh, fish, elvish, powershell).
     Completions(completions::Args),
+    /// Write a consistent copy of the state dir (store, log, archive, models) to a folder.
+    Backup(backup::BackupArgs),
+    /// Recreate a state dir (--state) from a backup, check it and verify it.
+    Restore(backup::RestoreArgs),
 }
 
 /// Runs a parsed command line.
@@ -107,6 +112,8 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Status(a) => status::run(cli, &state, a),
         Command::Log(a) => log::run(cli, &state, a),
         Command::Verify(a) => verify::run(cli, &state, a),
+        Command::Backup(a) => backup::run_backup(cli, &state, a),
+        Command::Restore(a) => backup::run_restore(cli, &state, a),
         Command::Predict(a) => predict::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),
         Command::Models(a) => models::run(cli, &state, a),

@@ -156,6 +156,8 @@ impl Summary {
                 }
                 Event::FreshChecked { check } => s.fresh_check = Some(check.clone()),
                 Event::Initialized { .. }
+                | Event::BackupMade { .. }
+                | Event::Restored { .. }
                 | Event::BaselinesScored { .. }
                 | Event::CycleAbandoned { .. } => {}
             }

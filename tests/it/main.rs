@@ -1,6 +1,7 @@
 //! The integration suite: one test binary (so the build stays fast) that
 //! drives the real library and the real `tidegate` binary on temp dirs.
 
+mod backup;
 mod crash;
 mod demo;
 mod ingest;
