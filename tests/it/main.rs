@@ -6,6 +6,7 @@ mod crash;
 mod demo;
 mod ingest;
 mod lifecycle;
+mod migrate;
 mod support;
 mod tamper;
 mod training;
