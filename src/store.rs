@@ -200,11 +200,7 @@ impl Store {
             path: path.to_path_buf(),
             source: e,
         };
-        let db = sled::Config::new()
-            .path(path)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(sl)?;
+        let db = open_sled(path).map_err(sl)?;
         let tree = |name: &str| db.open_tree(name).map_err(sl);
         Ok(Store {
             path: path.to_path_buf(),
@@ -732,11 +728,7 @@ impl Store {
             path: dest.to_path_buf(),
             source: e,
         };
-        let copy = sled::Config::new()
-            .path(dest)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(sl)?;
+        let copy = open_sled(dest).map_err(sl)?;
         let mut pairs = 0;
         for (name, tree) in [
             ("meta", &self.meta),
@@ -775,6 +767,14 @@ impl Store {
         })?;
         Ok(())
     }
+}
+
+/// The one place sled's settings are chosen.
+fn open_sled(path: &Path) -> sled::Result<sled::Db> {
+    sled::Config::new()
+        .path(path)
+        .mode(sled::Mode::HighThroughput)
+        .open()
 }
 
 /// sled 0.34.7 writes a snapshot to `snap.<lsn>.generating`, fsyncs it and
