@@ -486,9 +486,17 @@ pub fn run(
                     vec![close],
                 ),
             };
+            crate::failpoint::hit("cycle:before-promote").map_err(|source| StateError::Io {
+                path: owner.state.store(),
+                source,
+            })?;
             let entry = owner
                 .store
                 .record_with_meta(event, user, Utc::now(), &meta)?;
+            crate::failpoint::hit("cycle:after-promote").map_err(|source| StateError::Io {
+                path: owner.state.audit(),
+                source,
+            })?;
             owner.mirror.append(&[entry.line().as_bytes()])?;
             if let Some(s) = serving_after.filter(|s| Some(*s) != serving_id) {
                 crate::fsutil::write_atomic(&owner.state.serving(), format!("{s}\n").as_bytes())

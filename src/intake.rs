@@ -183,6 +183,7 @@ pub fn take_file(
         Ok(b) => b,
         Err(refusal) => return reject(owner, path, &name, Some(&raw), refusal, source, user, now),
     };
+    crate::failpoint::hit("intake:after-validate").map_err(io_at(path))?;
     // Drift against the stored training rows, kept in the batch's entry.
     let drift = {
         let reference = crate::drift::thin(
@@ -207,12 +208,16 @@ pub fn take_file(
         )
     };
     let pending = pending_path(&owner.state, &raw.hash);
-    fsutil::write_atomic(&pending, &raw.bytes).map_err(io_at(&pending))?;
+    fsutil::write_atomic(&pending, &raw.bytes)
+        .and_then(|()| crate::failpoint::hit("intake:after-pending"))
+        .map_err(io_at(&pending))?;
     let (record, entry) = owner
         .store
         .commit_batch(&batch, &name, &raw.hash, drift, user, now)?;
+    crate::failpoint::hit("intake:after-commit").map_err(io_at(&owner.state.audit()))?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let archived = archive_path(&owner.state, record.id);
+    crate::failpoint::hit("intake:after-audit").map_err(io_at(&archived))?;
     fs::rename(&pending, &archived).map_err(io_at(&archived))?;
     fsutil::sync_dir(&owner.state.archive()).map_err(io_at(&archived))?;
     remove_source(path, source)?;

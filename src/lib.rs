@@ -14,6 +14,7 @@ pub mod config;
 pub mod cycle;
 pub mod demo;
 pub mod drift;
+pub mod failpoint;
 pub mod fresh;
 pub mod fsutil;
 pub mod gate;

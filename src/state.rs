@@ -266,6 +266,7 @@ fn open_with(
     ] {
         rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
     }
+    crate::failpoint::hit("state:during-recovery").map_err(io_at(state.root()))?;
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
     rec.pending_archived = archived;
     rec.pending_dropped = dropped;

@@ -213,6 +213,7 @@ impl Model {
             .optimizer()
             .into_bytes()
             .map_err(record_err(&optimizer_path))?;
+        crate::failpoint::hit("cycle:mid-checkpoint").map_err(io("write", &optimizer_path))?;
         write_synced(&optimizer_path, &optimizer)?;
         files.insert(
             OPTIMIZER_FILE.to_string(),

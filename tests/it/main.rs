@@ -4,6 +4,7 @@
 mod backup;
 mod crash;
 mod demo;
+mod faults;
 mod ingest;
 mod lifecycle;
 mod migrate;

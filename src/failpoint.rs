@@ -1,0 +1,51 @@
+//! Named points where tests make the process fail on purpose, to prove
+//! that a crash or an I/O error at that moment loses nothing and leaves no
+//! partial state. Inactive unless `TIDEGATE_FAILPOINTS` is set, e.g.
+//! `TIDEGATE_FAILPOINTS=intake:after-commit=abort,cycle:before-promote=enospc`.
+//!
+//! Actions: `abort` (the process dies at once, as in a crash or a kill),
+//! `enospc` (the step fails with "No space left on device"), `eio` (an I/O
+//! error, as a failing fsync reports). The variable is read once.
+
+use std::sync::OnceLock;
+
+/// Every point, for documentation and validation.
+pub const POINTS: &[&str] = &[
+    "intake:after-validate",
+    "intake:after-pending",
+    "intake:after-commit",
+    "intake:after-audit",
+    "cycle:mid-checkpoint",
+    "cycle:before-promote",
+    "cycle:after-promote",
+    "state:during-recovery",
+];
+
+fn armed() -> &'static Vec<(String, String)> {
+    static ARMED: OnceLock<Vec<(String, String)>> = OnceLock::new();
+    ARMED.get_or_init(|| {
+        std::env::var("TIDEGATE_FAILPOINTS")
+            .unwrap_or_default()
+            .split(',')
+            .filter_map(|p| p.split_once('='))
+            .map(|(n, a)| (n.trim().to_string(), a.trim().to_string()))
+            .collect()
+    })
+}
+
+/// Passes, or fails the way the environment asks at this point.
+pub fn hit(name: &str) -> std::io::Result<()> {
+    debug_assert!(POINTS.contains(&name), "unknown failpoint {name}");
+    let Some((_, action)) = armed().iter().find(|(n, _)| n == name) else {
+        return Ok(());
+    };
+    match action.as_str() {
+        "abort" => {
+            eprintln!("failpoint {name}: aborting");
+            std::process::abort()
+        }
+        "enospc" => Err(std::io::Error::from_raw_os_error(28)),
+        "eio" => Err(std::io::Error::from_raw_os_error(5)),
+        _ => Ok(()),
+    }
+}
