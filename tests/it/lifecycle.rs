@@ -703,3 +703,39 @@ fn every_accepted_batch_carries_a_drift_report() {
         "{status}"
     );
 }
+
+#[test]
+fn widening_for_the_new_shop_leaves_every_prediction_of_the_serving_model_unchanged() {
+    use tidegate::config::Config;
+    use tidegate::model::Predictions;
+    use tidegate::model::checkpoint::Checkpoint;
+    use tidegate::state::{self, StateDir};
+    use tidegate::store::Split;
+
+    let env = demo_with(&["01", "02", "03", "04"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    // Night 7 brings a new shop, nights 6 and 7 two new weekdays.
+    assert_eq!(code(&env.ingest(&[night("06"), night("07")])), 0);
+    let config = Config::load(&repo("demo-data/tidegate.toml")).unwrap();
+    let (owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+    let served = Checkpoint::load(
+        &env.state().join("models/m000001"),
+        &config.schema_fingerprint(),
+    )
+    .unwrap()
+    .model;
+    let (wide, added) = served.widened(owner.store.vocabularies()).unwrap();
+    assert_eq!(added.len(), 2, "shop and weekday gained inputs");
+    // Old shops and the new one, old rows and new: the same predictions.
+    let mut rows = owner.store.rows(Split::Holdout, None, None).unwrap();
+    rows.extend(&owner.store.rows(Split::Train, None, None).unwrap());
+    let backend = config.training.predict_backend;
+    let values = |p: Predictions| match p {
+        Predictions::Regression { values } => values,
+        Predictions::Classification { .. } => unreachable!("regression demo"),
+    };
+    let before = values(served.predict(&rows, backend).unwrap());
+    let after = values(wide.predict(&rows, backend).unwrap());
+    assert_eq!(before.len(), rows.n_rows());
+    assert_eq!(before, after, "widening changes no prediction");
+}
