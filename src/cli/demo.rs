@@ -7,7 +7,7 @@ use std::path::PathBuf;
 
 use anyhow::Context;
 
-use super::{Cli, Exit, emit, table};
+use super::{Cli, Exit, emit};
 use crate::config::{Config, TEMPLATE};
 use crate::cycle::{self, Outcome as CycleOutcome};
 use crate::fresh;
@@ -232,7 +232,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
             ]
         })
         .collect();
-    let mut out = table(
+    let mut out = super::table_styled(
         &[
             "file",
             "intake",
@@ -244,6 +244,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
             "decision",
         ],
         &rows,
+        cli.colored(),
     );
     out.push_str(
         "\nlosses: mean squared error (loaves²) on the holdout rows; p: one-sided paired t-test \

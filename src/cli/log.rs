@@ -1,7 +1,7 @@
 //! `tidegate log`: query the audit log. Reads `audit.jsonl` only, so it
 //! works while another process owns the state dir.
 
-use super::{Cli, Exit, emit, table};
+use super::{Cli, Exit, emit};
 use crate::audit::{self, Event, Filter};
 use crate::ids::BatchId;
 use crate::state::StateDir;
@@ -84,7 +84,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                 ]
             })
             .collect();
-        out = table(&["seq", "time (UTC)", "user", "kind", "what"], &rows);
+        out = super::table_styled(
+            &["seq", "time (UTC)", "user", "kind", "what"],
+            &rows,
+            cli.colored(),
+        );
     }
     emit(&out)?;
     Ok(Exit::Ok)

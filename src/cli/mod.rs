@@ -60,6 +60,15 @@ pub struct Cli {
     /// Only errors on stderr.
     #[arg(short, long, global = true)]
     pub quiet: bool,
+    /// Colours in tables: auto (on a terminal, unless NO_COLOR is set), always or never.
+    #[arg(
+        long,
+        global = true,
+        value_enum,
+        default_value = "auto",
+        value_name = "WHEN"
+    )]
+    pub color: ColorWhen,
     #[command(subcommand)]
     pub command: Command,
 }
@@ -213,30 +222,124 @@ pub(crate) fn shown(state: &StateDir, p: &Path) -> String {
         .map_or_else(|_| p.display().to_string(), |r| r.display().to_string())
 }
 
-/// Renders rows as a left-aligned text table with a header.
-pub(crate) fn table(header: &[&str], rows: &[Vec<String>]) -> String {
+/// When to colour terminal output.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum ColorWhen {
+    /// On a terminal, unless NO_COLOR is set.
+    Auto,
+    Always,
+    Never,
+}
+
+impl Cli {
+    /// Whether tables on stdout get colours.
+    pub(crate) fn colored(&self) -> bool {
+        match self.color {
+            ColorWhen::Always => true,
+            ColorWhen::Never => false,
+            ColorWhen::Auto => {
+                std::io::IsTerminal::is_terminal(&std::io::stdout())
+                    && std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty())
+            }
+        }
+    }
+}
+
+/// The colour of a cell that names an outcome, if it has one: green for a
+/// model that serves, yellow for one held back, red for what went wrong or
+/// was undone, cyan for what waits on a person.
+fn outcome_color(cell: &str) -> Option<&'static str> {
+    let word = cell.split_whitespace().next().unwrap_or("");
+    match word.trim_end_matches(',') {
+        "promote" | "promoted" | "approved" | "accepted" | "steady" => Some("32"),
+        "keep" | "kept" | "declined" | "duplicate" | "batch-duplicate" | "shifted" => Some("33"),
+        "rolled-back" | "batch-rejected" | "rejected" | "refused" | "regressed"
+        | "cycle-abandoned" | "schema-migrated" => Some("31"),
+        "awaiting-approval" | "await-approval" => Some("36"),
+        _ => None,
+    }
+}
+
+fn is_number(cell: &str) -> bool {
+    let c = cell.trim_end_matches(" *");
+    !c.is_empty() && c != "-" && c.parse::<f64>().is_ok()
+}
+
+/// Renders rows as a text table with a header: numeric columns right-
+/// aligned, the rest left-aligned, outcome words coloured when `color`.
+pub(crate) fn table_styled(header: &[&str], rows: &[Vec<String>], color: bool) -> String {
     let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
+    let mut numeric = vec![true; header.len()];
     for r in rows {
-        for (i, c) in r.iter().enumerate() {
-            if i < widths.len() {
-                widths[i] = widths[i].max(c.chars().count());
+        for (i, c) in r.iter().enumerate().take(widths.len()) {
+            widths[i] = widths[i].max(c.chars().count());
+            if !(c.is_empty() || c == "-" || is_number(c)) {
+                numeric[i] = false;
             }
         }
     }
     let mut out = String::new();
-    let mut line = |cells: Vec<&str>| {
+    let mut line = |cells: Vec<&str>, head: bool| {
         let n = cells.len();
         for (i, c) in cells.into_iter().enumerate() {
-            out.push_str(c);
+            let pad = " ".repeat(widths[i].saturating_sub(c.chars().count()));
+            let right = numeric[i] && !head;
+            let paint = if head || !color {
+                None
+            } else {
+                outcome_color(c)
+            };
+            let text = match paint {
+                Some(code) => format!("\x1b[{code}m{c}\x1b[0m"),
+                None => c.to_string(),
+            };
+            if right {
+                out.push_str(&pad);
+                out.push_str(&text);
+            } else {
+                out.push_str(&text);
+                if i + 1 < n {
+                    out.push_str(&pad);
+                }
+            }
             if i + 1 < n {
-                out.push_str(&" ".repeat(widths[i] - c.chars().count() + 2));
+                out.push_str("  ");
             }
         }
         out.push('\n');
     };
-    line(header.to_vec());
+    line(header.to_vec(), true);
     for r in rows {
-        line(r.iter().map(String::as_str).collect());
+        line(r.iter().map(String::as_str).collect(), false);
     }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn tables_align_numbers_right_and_colour_outcomes_only_when_asked() {
+        let rows = vec![
+            vec![
+                "m000001".to_string(),
+                "12.5".to_string(),
+                "promoted".to_string(),
+            ],
+            vec!["m000002".to_string(), "3".to_string(), "kept".to_string()],
+        ];
+        let plain = table_styled(&["model", "loss", "decision"], &rows, false);
+        let lines: Vec<&str> = plain.lines().collect();
+        assert_eq!(lines[1], "m000001  12.5  promoted");
+        assert_eq!(lines[2], "m000002     3  kept");
+        assert!(!plain.contains('\x1b'));
+        let colored = table_styled(&["model", "loss", "decision"], &rows, true);
+        assert!(colored.contains("\x1b[32mpromoted\x1b[0m"), "{colored:?}");
+        assert!(colored.contains("\x1b[33mkept\x1b[0m"), "{colored:?}");
+        assert!(
+            colored.lines().next().unwrap().starts_with("model"),
+            "header plain"
+        );
+    }
 }

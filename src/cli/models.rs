@@ -6,7 +6,7 @@ use std::collections::BTreeMap;
 
 use serde::Serialize;
 
-use super::{Cli, Exit, emit, table};
+use super::{Cli, Exit, emit};
 use crate::audit::Event;
 use crate::ids::ModelId;
 use crate::model::checkpoint::read_manifest;
@@ -136,7 +136,7 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
             ]
         })
         .collect();
-    let mut out = table(
+    let mut out = super::table_styled(
         &[
             "model",
             "parent",
@@ -150,6 +150,7 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
             "decisions",
         ],
         &lines,
+        cli.colored(),
     );
     out.push_str("* serving\n");
     emit(&out)?;

@@ -8,7 +8,7 @@ use std::sync::Mutex;
 
 use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
 
-use super::{Cli, Exit, emit, table};
+use super::{Cli, Exit, emit};
 use crate::cycle::{self, Options, Outcome, run_name};
 use crate::model::RunKind;
 use crate::state::{self, StateDir};
@@ -201,9 +201,10 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         report.new_batches.len(),
         report.holdout_rows
     );
-    out.push_str(&table(
+    out.push_str(&super::table_styled(
         &["model", "kind", "epochs", "seconds", "holdout loss"],
         &rows,
+        cli.colored(),
     ));
     out.push_str(&format!(
         "decision: {} — {}\n",

@@ -5,7 +5,7 @@ use std::collections::BTreeMap;
 
 use serde::Serialize;
 
-use super::{Cli, Exit, emit, table};
+use super::{Cli, Exit, emit};
 use crate::audit::{Entry, Event, FreshEvidence};
 use crate::ids::ModelId;
 use crate::state::{self, StateDir};
@@ -295,7 +295,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             ]
         })
         .collect();
-    out.push_str(&table(&["seq", "time (UTC)", "kind", "what"], &rows));
+    out.push_str(&super::table_styled(
+        &["seq", "time (UTC)", "kind", "what"],
+        &rows,
+        cli.colored(),
+    ));
     emit(&out)?;
     Ok(Exit::Ok)
 }

@@ -80,3 +80,34 @@ fn completions_are_printed_for_each_shell() {
         .unwrap();
     assert_eq!(code(&out), 2, "an unknown shell is a usage error");
 }
+
+#[test]
+fn colours_only_when_asked_or_on_a_terminal_without_no_color() {
+    let dir = tempfile::tempdir().unwrap();
+    let state = dir.path().join("s");
+    let bin = env!("CARGO_BIN_EXE_tidegate");
+    let run = |args: &[&str], no_color: bool| {
+        let mut c = std::process::Command::new(bin);
+        c.arg("--state")
+            .arg(&state)
+            .args(args)
+            .env_remove("NO_COLOR");
+        if no_color {
+            c.env("NO_COLOR", "1");
+        }
+        stdout(&c.output().unwrap())
+    };
+    let out = std::process::Command::new(bin)
+        .args(["--json", "demo", "--into"])
+        .arg(&state)
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let log = ["log", "--kind", "promoted,kept"];
+    // Tests read a pipe, not a terminal: auto means no colours.
+    assert!(!run(&log, false).contains('\x1b'));
+    let forced = run(&[&["--color", "always"][..], &log[..]].concat(), false);
+    assert!(forced.contains("\x1b[32mpromoted\x1b[0m"), "{forced}");
+    assert!(!run(&[&["--color", "never"][..], &log[..]].concat(), false).contains('\x1b'));
+    assert!(!run(&log, true).contains('\x1b'));
+}
