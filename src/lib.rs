@@ -10,6 +10,7 @@ pub mod audit;
 pub mod cli;
 pub mod config;
 pub mod cycle;
+pub mod daemon;
 pub mod demo;
 pub mod fsutil;
 pub mod gate;

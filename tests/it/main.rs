@@ -2,6 +2,7 @@
 //! drives the real library and the real `tidegate` binary on temp dirs.
 
 mod crash;
+mod daemon;
 mod ingest;
 mod lifecycle;
 mod support;
