@@ -22,6 +22,7 @@ use clap::{Parser, Subcommand};
 
 pub(crate) use ingest::take_files as ingest_files;
 pub(crate) use retrain::render as render_cycle;
+pub(crate) use verify::render as render_verify;
 
 use crate::config::{Config, ConfigError};
 use crate::state::{StateDir, StateError};

@@ -471,6 +471,22 @@ impl<C: Clock> Daemon<C> {
                 json,
                 &mut fatal,
             ),
+            Request::Verify => match crate::verify::check(owner) {
+                Ok(result) => {
+                    let (stdout, exit) = cli::render_verify(&result, json);
+                    Answer {
+                        exit: exit as u8,
+                        stdout,
+                        ..Answer::default()
+                    }
+                }
+                Err(e) => {
+                    let e = anyhow::Error::from(e);
+                    let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                    fatal = Some(e);
+                    answer
+                }
+            },
             Request::Decline { model, reason } => decide(
                 lifecycle::decline(owner, model, &reason, &user),
                 json,

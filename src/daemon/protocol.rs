@@ -52,6 +52,9 @@ pub enum Request {
         model: ModelId,
         reason: String,
     },
+    /// Check the audit chain, the store, the archive and the checkpoints
+    /// (it needs the open store, which the daemon holds).
+    Verify,
 }
 
 impl Request {
@@ -64,6 +67,7 @@ impl Request {
             Request::Rollback { .. } => "rollback",
             Request::Approve { .. } => "approve",
             Request::Decline { .. } => "decline",
+            Request::Verify => "verify",
         }
     }
 }

@@ -5,7 +5,7 @@
 use std::path::Path;
 use std::sync::mpsc::Sender;
 
-use notify::{RecommendedWatcher, RecursiveMode, Watcher};
+use notify::{EventKind, RecommendedWatcher, RecursiveMode, Watcher};
 
 use super::event_loop::Event;
 
@@ -15,6 +15,10 @@ pub fn start(inbox: &Path, events: Sender<Event>) -> Option<RecommendedWatcher> 
     let handler = move |result: notify::Result<notify::Event>| {
         let event = match result {
             Ok(e) if e.need_rescan() => Event::Rescan,
+            // Opening or reading the inbox (the loop's own listing does)
+            // changes nothing; counting it would keep the inbox from ever
+            // looking quiet.
+            Ok(e) if matches!(e.kind, EventKind::Access(_)) => return,
             Ok(_) => Event::InboxChanged,
             Err(_) => Event::Rescan,
         };

@@ -115,6 +115,19 @@ fn wait_for(secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
     }
 }
 
+/// Like `wait_for`, with the daemon's log in the failure message.
+fn wait_daemon(env: &Env, secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while !ok() {
+        assert!(
+            Instant::now() < deadline,
+            "timed out waiting for {what}; daemon log:\n{}",
+            watch_log(env)
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
 /// The daemon's status as `status --json` reports it (`None`: not running).
 fn daemon_status(env: &Env) -> Option<serde_json::Value> {
     let out = env.run(&["--json", "status"]);
@@ -180,10 +193,10 @@ fn watch_takes_published_files_and_retrains() {
         let mut f = fs::OpenOptions::new().append(true).open(&slow).unwrap();
         std::io::Write::write_all(&mut f, chunk).unwrap();
     }
-    wait_for(30, "all four files to be taken", || {
+    wait_daemon(&env, 30, "all four files to be taken", || {
         inbox_files(&env).is_empty()
     });
-    wait_for(60, "the cycle's decision", || {
+    wait_daemon(&env, 60, "the cycle's decision", || {
         count_kind(&env, "kept") + count_kind(&env, "promoted") >= 1
     });
     let accepted = env.log_json(&["--kind", "batch-accepted"]);
@@ -229,6 +242,9 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
     let out = env.ingest(&[env.dir.path().join("missing.csv")]);
     assert_eq!(code(&out), 1);
     assert!(stderr(&out).contains("missing.csv"), "{}", stderr(&out));
+    let more = env.dir.path().join("more.csv");
+    fs::write(&more, rows_csv(100, 40)).unwrap();
+    assert_eq!(code(&env.ingest(&[more])), 0);
     // Decisions are taken (or refused) by the daemon.
     let out = env.run(&["rollback", "--reason", "test"]);
     assert_eq!(code(&out), 1);
@@ -251,13 +267,13 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
     let out = env.run(&["watch"]);
     assert_eq!(code(&out), 75, "{}", stderr(&out));
     assert!(stderr(&out).contains(&watch.pid().to_string()));
-    assert_eq!(count_kind(&env, "batch-accepted"), 2);
+    assert_eq!(count_kind(&env, "batch-accepted"), 3);
     let who: Vec<String> = env
         .log_json(&["--kind", "batch-accepted"])
         .iter()
         .map(|e| e["user"].as_str().unwrap_or("").to_string())
         .collect();
-    assert_eq!(who, ["tester", "tester"], "the client's user is recorded");
+    assert_eq!(who, ["tester"; 3], "the client's user is recorded");
     let (code, _) = watch.stop();
     assert_eq!(code, 0);
     let out = env.run(&["status"]);
@@ -273,7 +289,7 @@ fn sigterm_during_training_exits_promptly_and_leaves_the_store_usable() {
     let env = env_with("settle_seconds = 0.0\nmin_new_rows = 20", true);
     let watch = Watch::start(&env);
     publish(&env, "a.csv", &rows_csv(0, 40));
-    wait_for(30, "training to start", || {
+    wait_daemon(&env, 30, "training to start", || {
         daemon_status(&env).is_some_and(|d| d["activity"] == "training")
     });
     // Read-only commands and ping answer while the worker trains.
@@ -344,8 +360,10 @@ fn killed_daemons_never_lose_or_double_a_file() {
     }
     // A final clean run takes whatever is left.
     let watch = Watch::start(&env);
-    wait_for(30, "the inbox to empty", || inbox_files(&env).is_empty());
-    wait_for(30, "the daemon to be idle", || {
+    wait_daemon(&env, 30, "the inbox to empty", || {
+        inbox_files(&env).is_empty()
+    });
+    wait_daemon(&env, 30, "the daemon to be idle", || {
         daemon_status(&env).is_some_and(|d| d["activity"] == "idle")
     });
     let (code_, _) = watch.stop();
