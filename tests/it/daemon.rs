@@ -188,7 +188,7 @@ fn watch_takes_published_files_and_retrains() {
     let (head, tail) = text.split_at(text.len() / 2);
     let head_end = head.rfind('\n').unwrap() + 1;
     fs::write(&slow, &text[..head_end]).unwrap();
-    for chunk in text[head_end..].as_bytes().chunks(tail.len() / 3 + 1) {
+    for chunk in text.as_bytes()[head_end..].chunks(tail.len() / 3 + 1) {
         std::thread::sleep(Duration::from_millis(150));
         let mut f = fs::OpenOptions::new().append(true).open(&slow).unwrap();
         std::io::Write::write_all(&mut f, chunk).unwrap();
