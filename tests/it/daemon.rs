@@ -138,6 +138,16 @@ fn daemon_status(env: &Env) -> Option<serde_json::Value> {
     v.get("daemon").filter(|d| !d.is_null()).cloned()
 }
 
+/// A plain HTTP/1.1 GET; the whole response as text.
+fn http_get(addr: &str, path: &str) -> String {
+    use std::io::{Read, Write};
+    let mut s = std::net::TcpStream::connect(addr).unwrap();
+    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\n\r\n").unwrap();
+    let mut out = String::new();
+    s.read_to_string(&mut out).unwrap();
+    out
+}
+
 /// CSV text with rows whose ids start at `first`.
 fn rows_csv(first: usize, n: usize) -> String {
     let mut text = String::from("id,city,temp,flag,y\n");
@@ -219,8 +229,14 @@ fn watch_takes_published_files_and_retrains() {
 
 #[test]
 fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
-    let env = env_with("settle_seconds = 0.2\nmin_new_rows = 100000", false);
+    let env = env_with(
+        "settle_seconds = 0.2\nmin_new_rows = 100000\nmetrics_addr = \"127.0.0.1:0\"",
+        false,
+    );
     let watch = Watch::start(&env);
+    use std::os::unix::fs::PermissionsExt;
+    let sock = fs::metadata(env.state().join("control.sock")).unwrap();
+    assert_eq!(sock.permissions().mode() & 0o777, 0o600);
     // Routed: printed exactly as a direct ingest prints it.
     let out = env.ingest(&[data("good/plain.csv")]);
     assert_eq!(code(&out), 0, "{}", stderr(&out));
@@ -263,6 +279,26 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
         let out = env.run(args);
         assert_eq!(code(&out), 0, "{args:?}: {}", stderr(&out));
     }
+    // The metrics endpoint (port chosen by the system, named in the log).
+    let log = watch_log(&env);
+    let addr = log
+        .split("metrics on http://")
+        .nth(1)
+        .and_then(|r| r.split("/metrics").next())
+        .unwrap_or_else(|| panic!("no metrics address in the log: {log}"));
+    let metrics = http_get(addr, "/metrics");
+    assert!(metrics.starts_with("HTTP/1.1 200"), "{metrics}");
+    assert!(metrics.contains("\ntidegate_batches 3\n"), "{metrics}");
+    assert!(
+        metrics.contains("\ntidegate_rejected_files 1\n"),
+        "{metrics}"
+    );
+    assert!(
+        metrics.contains("tidegate_last_decision{decision="),
+        "{metrics}"
+    );
+    assert!(http_get(addr, "/health").starts_with("HTTP/1.1 200"));
+    assert!(http_get(addr, "/other").starts_with("HTTP/1.1 404"));
     // A second daemon is refused with the owner's PID.
     let out = env.run(&["watch"]);
     assert_eq!(code(&out), 75, "{}", stderr(&out));
@@ -483,7 +519,11 @@ fn latency_from_file_drop_to_decision() {
         if seen(&["promoted", "kept", "awaiting-approval"], before) {
             break dropped.elapsed();
         }
-        assert!(Instant::now() < deadline, "no decision: {}", watch_log(&env));
+        assert!(
+            Instant::now() < deadline,
+            "no decision: {}",
+            watch_log(&env)
+        );
         std::thread::sleep(Duration::from_millis(5));
     };
     let accepted = accepted.unwrap_or(decided);
@@ -496,9 +536,7 @@ fn latency_from_file_drop_to_decision() {
         let v: serde_json::Value = serde_json::from_str(l).unwrap();
         eprintln!(
             "  {} {} {}",
-            v["kind"],
-            v["candidates"],
-            v["evidence"]["reason"]
+            v["kind"], v["candidates"], v["evidence"]["reason"]
         );
     }
     let (c, _) = watch.stop();
