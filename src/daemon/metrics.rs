@@ -271,10 +271,16 @@ fn answer_http(stream: TcpStream, shared: &Shared) -> std::io::Result<()> {
     let mut reader = BufReader::new(std::io::Read::take(&stream, 8192));
     let mut line = String::new();
     reader.read_line(&mut line)?;
-    let path = line.split_whitespace().nth(1).unwrap_or("");
+    let path = line.split_whitespace().nth(1).unwrap_or("").to_string();
+    // Read the headers too: closing with unread input would reset the
+    // connection before the client has read the answer.
+    let mut header = String::new();
+    while reader.read_line(&mut header)? > 0 && !header.trim().is_empty() {
+        header.clear();
+    }
     let (code, body) = {
         let p = shared.lock();
-        match path {
+        match path.as_str() {
             "/health" => {
                 if p.heartbeat.elapsed() < STALL {
                     ("200 OK", format!("ok {}\n", p.status.activity))
