@@ -215,7 +215,7 @@ impl<C: Clock> Daemon<C> {
 
     /// How long the caller may wait for the next event before a `Tick`.
     pub fn tick_every(&self) -> std::time::Duration {
-        if self.settler.tracked() > 0 || self.dirty {
+        if self.settler.tracked() > self.stuck.len() || self.dirty {
             std::time::Duration::from_millis(100)
         } else {
             std::time::Duration::from_millis(500)
@@ -265,7 +265,7 @@ impl<C: Clock> Daemon<C> {
                     self.dirty = true;
                 }
                 // Files seen but not taken yet: look again whether they settled.
-                if self.settler.tracked() > 0 {
+                if self.settler.tracked() > self.stuck.len() {
                     self.dirty = true;
                 }
             }

@@ -9,6 +9,7 @@
 
 use std::collections::HashMap;
 use std::fs;
+use std::os::unix::ffi::OsStrExt;
 use std::os::unix::fs::MetadataExt;
 use std::path::{Path, PathBuf};
 
@@ -37,7 +38,11 @@ impl Signature {
 
 /// Whether a name in the inbox is a published file (not a temp or hidden one).
 pub fn is_published(name: &str) -> bool {
-    !name.starts_with('.') && !name.ends_with(".part") && !name.is_empty()
+    is_published_bytes(name.as_bytes())
+}
+
+fn is_published_bytes(name: &[u8]) -> bool {
+    !name.starts_with(b".") && !name.ends_with(b".part") && !name.is_empty()
 }
 
 /// Lists the published entries of the inbox (directories are skipped),
@@ -46,17 +51,10 @@ pub fn list(inbox: &Path) -> std::io::Result<Vec<(PathBuf, Signature)>> {
     let mut out = Vec::new();
     for entry in fs::read_dir(inbox)? {
         let entry = entry?;
+        // Names need not be UTF-8 (intake names such a file lossily); the
+        // rules look at bytes.
         let name = entry.file_name();
-        let Some(name) = name.to_str() else {
-            // Not UTF-8: still a file to take (intake names it lossily).
-            if let Ok(meta) = fs::symlink_metadata(entry.path())
-                && !meta.is_dir()
-            {
-                out.push((entry.path(), Signature::of(&meta)));
-            }
-            continue;
-        };
-        if !is_published(name) {
+        if !is_published_bytes(name.as_bytes()) {
             continue;
         }
         // Gone between the listing and the stat: the next listing decides.
@@ -226,11 +224,15 @@ mod tests {
         fs::write(dir.path().join(".hidden"), "a").unwrap();
         fs::write(dir.path().join("z.csv"), "zz").unwrap();
         fs::write(dir.path().join("a.csv"), "a").unwrap();
+        let odd = |b: &[u8]| dir.path().join(std::ffi::OsStr::from_bytes(b));
+        fs::write(odd(b".\xff.csv"), "a").unwrap();
+        fs::write(odd(b"\xff.csv.part"), "a").unwrap();
+        fs::write(odd(b"n\xff.csv"), "a").unwrap();
         let names: Vec<String> = list(dir.path())
             .unwrap()
             .into_iter()
             .map(|(p, _)| p.file_name().unwrap().to_string_lossy().into_owned())
             .collect();
-        assert_eq!(names, ["a.csv", "z.csv"]);
+        assert_eq!(names, ["a.csv", "n\u{fffd}.csv", "z.csv"]);
     }
 }
