@@ -43,6 +43,10 @@ pub enum Event {
         /// Category values seen for the first time, per column.
         #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
         new_categories: BTreeMap<String, Vec<String>>,
+        /// Each column against the stored training rows (absent for the
+        /// first batch).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        drift: Option<crate::drift::BatchReport>,
     },
     /// A file was refused; nothing from it was stored.
     BatchRejected {
@@ -84,10 +88,51 @@ pub enum Event {
         holdout_loss: f64,
         /// blake3 of the checkpoint's manifest.json (which holds the other files' hashes).
         manifest_hash: String,
+        /// Inputs a warm candidate's first layer gained, per category column,
+        /// for values that arrived since its parent was trained.
+        #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+        widened: BTreeMap<String, usize>,
+        /// Number columns whose standardisation a warm candidate's parent
+        /// refreshed (folded into its first layer) before training.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        rescaled: Vec<String>,
+    },
+    /// The cycle's reference models, fitted on the same training rows as
+    /// the candidates and scored on the same holdout rows.
+    BaselinesScored {
+        cycle: u64,
+        holdout_rows: usize,
+        /// Mean holdout loss of the training mean / class frequencies.
+        trivial_loss: f64,
+        /// Mean holdout loss of ridge regression on the encoded inputs;
+        /// absent when it could not be fitted (`ridge_problem` says why).
+        ridge_loss: Option<f64>,
+        ridge_lambda: f64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        ridge_problem: Option<String>,
+        /// The serving model's mean loss on the same rows.
+        serving: Option<ModelId>,
+        serving_loss: Option<f64>,
     },
     /// A cycle that started was cut short (crash, kill, cancel); the serving
     /// model was not changed by it.
     CycleAbandoned { cycle: u64 },
+    /// A consistent copy of the state dir was written to `out`.
+    BackupMade {
+        out: String,
+        batches: u64,
+        rows: u64,
+    },
+    /// This state dir was restored from a backup; entries up to
+    /// `backup_seq` came with it.
+    Restored {
+        from: String,
+        backup_created_at: String,
+        backup_seq: u64,
+    },
+    /// An accepted batch was scored by the serving model (and by the model
+    /// it replaced) before anything trained on it.
+    FreshChecked { check: FreshEvidence },
     /// A candidate became the serving model.
     Promoted {
         cycle: u64,
@@ -126,7 +171,61 @@ pub enum Event {
         /// "manual" or "automatic".
         how: String,
         reason: String,
+        /// The fresh-data check behind an automatic rollback.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        evidence: Option<FreshEvidence>,
     },
+}
+
+/// The fresh-data check's numbers as written in the log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FreshEvidence {
+    pub batch: BatchId,
+    /// Rows of the batch scored (training and holdout side: no model has
+    /// trained on either yet).
+    pub rows: usize,
+    pub serving: ModelId,
+    /// "regressed", "shifted", "steady" or "untested".
+    pub verdict: String,
+    pub mean_loss_serving: Option<f64>,
+    /// The serving model's mean loss on the stored holdout rows.
+    pub mean_loss_reference: Option<f64>,
+    /// One-sided Welch p that the fresh rows cost the serving model more.
+    pub p_shift: Option<f64>,
+    /// The model the serving one replaced by promotion or approval.
+    pub previous: Option<ModelId>,
+    pub mean_loss_previous: Option<f64>,
+    /// Paired t of serving − previous losses, and its one-sided p.
+    pub t: Option<f64>,
+    pub p_regression: Option<f64>,
+    /// Category values whose rows carry the most loss above the reference.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub hotspots: Vec<Hotspot>,
+    pub reason: String,
+}
+
+/// Rows of a batch sharing one category value, and how much loss above the
+/// serving model's usual level they carry.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Hotspot {
+    pub column: String,
+    pub value: String,
+    pub rows: usize,
+    pub mean_loss: f64,
+    /// Mean loss on stored holdout rows with the same value.
+    pub usual_loss: f64,
+    /// Σ (row loss − usual loss) over these rows.
+    pub excess_loss: f64,
+}
+
+impl std::fmt::Display for Hotspot {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "{} = {}: mean loss {:.4} on {} rows (usually {:.4})",
+            self.column, self.value, self.mean_loss, self.rows, self.usual_loss
+        )
+    }
 }
 
 /// The gate's numbers as written in the log.
@@ -142,6 +241,9 @@ pub struct GateEvidence {
     pub t: Option<f64>,
     /// One-sided p-value that the candidate is better.
     pub p: f64,
+    /// Wilcoxon signed-rank one-sided p, recorded beside the t-test's.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub wilcoxon_p: Option<f64>,
     pub new_rows: usize,
     pub old_rows: usize,
     pub reason: String,
@@ -157,7 +259,11 @@ impl Event {
             Event::BatchDuplicate { .. } => "batch-duplicate",
             Event::CycleStarted { .. } => "cycle-started",
             Event::CandidateTrained { .. } => "candidate-trained",
+            Event::BaselinesScored { .. } => "baselines-scored",
             Event::CycleAbandoned { .. } => "cycle-abandoned",
+            Event::FreshChecked { .. } => "fresh-checked",
+            Event::BackupMade { .. } => "backup-made",
+            Event::Restored { .. } => "restored",
             Event::Promoted { .. } => "promoted",
             Event::Kept { .. } => "kept",
             Event::AwaitingApproval { .. } => "awaiting-approval",
@@ -175,7 +281,11 @@ impl Event {
         "batch-duplicate",
         "cycle-started",
         "candidate-trained",
+        "baselines-scored",
         "cycle-abandoned",
+        "fresh-checked",
+        "backup-made",
+        "restored",
         "promoted",
         "kept",
         "awaiting-approval",
@@ -194,6 +304,7 @@ impl Event {
             | Event::Approved { model, .. }
             | Event::Declined { model, .. } => Some(*model),
             Event::RolledBack { to, .. } => Some(*to),
+            Event::FreshChecked { check } => Some(check.serving),
             _ => None,
         }
     }
@@ -203,6 +314,7 @@ impl Event {
         match self {
             Event::BatchAccepted { batch, .. } => Some(*batch),
             Event::BatchDuplicate { duplicate_of, .. } => Some(*duplicate_of),
+            Event::FreshChecked { check } => Some(check.batch),
             _ => None,
         }
     }
@@ -228,6 +340,7 @@ impl Event {
                 train_rows,
                 holdout_rows,
                 new_categories,
+                drift,
                 ..
             } => {
                 let mut s = format!(
@@ -235,6 +348,12 @@ impl Event {
                 );
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
+                }
+                if let Some(d) = drift {
+                    let flagged = d.flagged();
+                    if !flagged.is_empty() {
+                        s.push_str(&format!("; drift in {}", flagged.join(", ")));
+                    }
                 }
                 s
             }
@@ -269,11 +388,20 @@ impl Event {
                 epochs,
                 seconds,
                 holdout_loss,
+                widened,
+                rescaled,
                 ..
             } => {
-                format!(
+                let mut s = format!(
                     "{model} ({run}): {epochs} epochs in {seconds:.1} s, holdout loss {holdout_loss:.4}"
-                )
+                );
+                for (col, n) in widened {
+                    s.push_str(&format!("; {n} new {col} input(s)"));
+                }
+                if !rescaled.is_empty() {
+                    s.push_str(&format!("; rescaled {}", rescaled.join(", ")));
+                }
+                s
             }
             Event::Promoted {
                 model,
@@ -284,6 +412,52 @@ impl Event {
                 "{model} serves (was {}): {}",
                 previous.map_or_else(|| "none".to_string(), |m| m.to_string()),
                 evidence.reason
+            ),
+            Event::BaselinesScored {
+                cycle,
+                trivial_loss,
+                ridge_loss,
+                ridge_problem,
+                serving,
+                serving_loss,
+                ..
+            } => {
+                let ridge = match (ridge_loss, ridge_problem) {
+                    (Some(r), _) => format!("ridge {r:.4}"),
+                    (None, Some(p)) => format!("ridge not fitted ({p})"),
+                    (None, None) => "ridge not fitted".to_string(),
+                };
+                let mut s = format!("cycle {cycle} baselines: {ridge}, trivial {trivial_loss:.4}");
+                if let (Some(m), Some(l)) = (serving, serving_loss) {
+                    s.push_str(&format!("; serving {m} {l:.4}"));
+                    if let Some(r) = ridge_loss
+                        && l >= r
+                    {
+                        s.push_str(" (does not beat ridge)");
+                    }
+                }
+                s
+            }
+            Event::FreshChecked { check } => {
+                let mut s = format!(
+                    "{} fresh check of {}: {}; {}",
+                    check.batch, check.serving, check.verdict, check.reason
+                );
+                if !check.hotspots.is_empty() {
+                    let list: Vec<String> = check.hotspots.iter().map(|h| h.to_string()).collect();
+                    s.push_str(&format!("; most excess loss in {}", list.join("; ")));
+                }
+                s
+            }
+            Event::BackupMade { out, batches, rows } => {
+                format!("backup of {batches} batches ({rows} rows) written to {out}")
+            }
+            Event::Restored {
+                from,
+                backup_created_at,
+                backup_seq,
+            } => format!(
+                "restored from {from} (backup of {backup_created_at}, entries up to #{backup_seq})"
             ),
             Event::CycleAbandoned { cycle } => {
                 format!("cycle {cycle} was cut short; the serving model did not change")
@@ -311,6 +485,7 @@ impl Event {
                 to,
                 how,
                 reason,
+                ..
             } => {
                 format!("{to} serves again instead of {from} ({how}): {reason}")
             }
@@ -753,6 +928,8 @@ mod tests {
                     holdout_rows: 10,
                     holdout_loss: x * 3.0,
                     manifest_hash: "00".into(),
+                    widened: BTreeMap::new(),
+                    rescaled: Vec::new(),
                 },
                 &prev,
             );

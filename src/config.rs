@@ -25,6 +25,54 @@ pub struct Config {
     pub gate: GateConfig,
     #[serde(default)]
     pub daemon: DaemonConfig,
+    #[serde(default)]
+    pub drift: DriftConfig,
+}
+
+/// Levels of the drift report computed for every accepted batch.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct DriftConfig {
+    /// Flag a number column when the two-sample KS p-value is below this.
+    pub ks_alpha: f64,
+    /// PSI from here up is reported as a moderate shift.
+    pub psi_warn: f64,
+    /// Flag a number column when PSI reaches this.
+    pub psi_alert: f64,
+    /// Flag a category column when the chi-square p-value is below this.
+    pub chi_alpha: f64,
+    /// Flag a category column when more than this share of the batch's rows
+    /// hold values never seen before.
+    pub unseen_share: f64,
+    /// The stored training rows compared against are thinned evenly to at
+    /// most this many.
+    pub max_reference_rows: usize,
+}
+
+impl Default for DriftConfig {
+    fn default() -> Self {
+        let t = crate::drift::Thresholds::default();
+        DriftConfig {
+            ks_alpha: t.ks_alpha,
+            psi_warn: t.psi_warn,
+            psi_alert: t.psi_alert,
+            chi_alpha: t.chi_alpha,
+            unseen_share: t.unseen_share,
+            max_reference_rows: 20_000,
+        }
+    }
+}
+
+impl DriftConfig {
+    pub fn thresholds(&self) -> crate::drift::Thresholds {
+        crate::drift::Thresholds {
+            ks_alpha: self.ks_alpha,
+            psi_warn: self.psi_warn,
+            psi_alert: self.psi_alert,
+            chi_alpha: self.chi_alpha,
+            unseen_share: self.unseen_share,
+        }
+    }
 }
 
 /// What the rows look like and how they are split.
@@ -170,6 +218,11 @@ pub struct TrainingConfig {
     /// Shrink-and-perturb: θ ← shrink·θ + perturb·θ_fresh (1.0 and 0.0 turn it off).
     pub shrink: f64,
     pub perturb: f64,
+    /// A warm parent's standardisation of a number column is refreshed (and
+    /// folded into its first layer) when the column's mean moved more than
+    /// this many old standard deviations or its std changed by more than
+    /// this share; 0 never refreshes.
+    pub rescale_threshold: f64,
 }
 
 impl Default for TrainingConfig {
@@ -189,6 +242,7 @@ impl Default for TrainingConfig {
             replay_ratio: 1.0,
             shrink: 1.0,
             perturb: 0.0,
+            rescale_threshold: 0.5,
         }
     }
 }
@@ -207,6 +261,13 @@ pub struct GateConfig {
     pub require_approval: bool,
     /// Train a cold candidate every this many cycles (0 = only on request).
     pub cold_every: usize,
+    /// Penalty of the ridge baseline scored beside the network each cycle.
+    pub ridge_lambda: f64,
+    /// Smallest accepted batch the fresh-data check runs a test on.
+    pub fresh_min_rows: usize,
+    /// Roll back by itself when the fresh-data check finds the serving model
+    /// significantly worse than the one it replaced (never in approval mode).
+    pub auto_rollback: bool,
 }
 
 impl Default for GateConfig {
@@ -217,6 +278,9 @@ impl Default for GateConfig {
             min_holdout_rows: 200,
             require_approval: false,
             cold_every: 7,
+            ridge_lambda: 1.0,
+            fresh_min_rows: 100,
+            auto_rollback: true,
         }
     }
 }
@@ -437,7 +501,7 @@ impl Config {
             );
         }
         let t = &self.training;
-        let checks: [(&str, bool, &str); 10] = [
+        let checks: [(&str, bool, &str); 11] = [
             (
                 "batch_size",
                 t.batch_size >= 1,
@@ -478,6 +542,11 @@ impl Config {
                 "perturb",
                 t.perturb >= 0.0 && t.perturb <= 1.0,
                 "perturb must be in [0, 1]; 0 turns shrink-and-perturb off",
+            ),
+            (
+                "rescale_threshold",
+                t.rescale_threshold >= 0.0 && t.rescale_threshold.is_finite(),
+                "rescale_threshold must be 0 (never) or more; 0.5 is usual",
             ),
             (
                 "cold_epochs",
@@ -529,7 +598,17 @@ impl Config {
             }
         }
         let g = &self.gate;
-        let checks: [(&str, bool, &str); 2] = [
+        let checks: [(&str, bool, &str); 4] = [
+            (
+                "ridge_lambda",
+                g.ridge_lambda > 0.0 && g.ridge_lambda.is_finite(),
+                "ridge_lambda must be a number > 0; 1.0 suits standardised inputs",
+            ),
+            (
+                "fresh_min_rows",
+                g.fresh_min_rows >= 2,
+                "fresh_min_rows must be at least 2 (a paired test needs two rows); 100 is usual",
+            ),
             (
                 "min_improvement",
                 g.min_improvement >= 0.0 && g.min_improvement < 1.0,
@@ -545,6 +624,23 @@ impl Config {
             if !ok {
                 return fail(whole(key), msg.into());
             }
+        }
+        if let Err(crate::drift::DriftError::BadThreshold { name, value }) =
+            self.drift.thresholds().validate()
+        {
+            return fail(
+                whole(name),
+                format!(
+                    "{name} = {value} is out of range: alphas are in (0, 1), \
+                     0 <= psi_warn <= psi_alert, unseen_share is in [0, 1]"
+                ),
+            );
+        }
+        if self.drift.max_reference_rows < 100 {
+            return fail(
+                whole("max_reference_rows"),
+                "max_reference_rows must be at least 100".into(),
+            );
         }
         let d = &self.daemon;
         if !(d.settle_seconds >= 0.0 && d.settle_seconds.is_finite()) {

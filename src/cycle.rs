@@ -16,12 +16,12 @@ use chrono::Utc;
 use serde::{Deserialize, Serialize};
 
 use crate::audit::{Event, GateEvidence};
-use crate::config::Task;
+use crate::baseline::{self, Ridge};
 use crate::gate::{self, Decision, Scores};
 use crate::ids::{BatchId, ModelId};
 use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta, RunKind};
 use crate::model::{Model, ModelError, TrainingSummary};
-use crate::schema::{FeatureSpec, RowMatrix};
+use crate::schema::FeatureSpec;
 use crate::state::{Owner, StateError};
 use crate::store::{
     META_CYCLES, META_NEXT_MODEL, META_OPEN_CYCLE, META_SERVING, MetaChange, Split, StoreError,
@@ -84,6 +84,10 @@ pub struct Report {
     /// Mean holdout loss of the serving model (or of the trivial predictor
     /// when nothing serves yet).
     pub baseline_loss: f64,
+    /// Mean holdout loss of the training mean / class frequencies.
+    pub trivial_loss: f64,
+    /// Mean holdout loss of the ridge baseline (`None` if it could not be fitted).
+    pub ridge_loss: Option<f64>,
     pub holdout_rows: usize,
     pub new_batches: Vec<BatchId>,
     pub candidates: Vec<Candidate>,
@@ -204,8 +208,7 @@ pub fn run(
     let mut holdout = older_holdout;
     holdout.extend(&new_holdout);
     drop(new_holdout);
-    // Only a cold candidate (always trained when nothing serves, so also the
-    // only case that needs the trivial baseline) uses all training rows at once.
+    // Only a cold candidate uses all training rows as one matrix.
     let all_train = want_cold.then(|| {
         let mut all = older_train.clone();
         all.extend(&new_train);
@@ -222,9 +225,39 @@ pub fn run(
         cancel,
         progress: progress.map(|p| p as &dyn Fn(Progress)),
     };
+    // The warm parent takes category values that arrived since its encoding
+    // was fixed, with zero weights: the same function, room to learn them.
+    // Number columns whose stats moved far are restandardised the same way.
+    let widened = match serving.as_ref().filter(|_| want_warm) {
+        Some((_, _, ck)) => {
+            let (wide, added) = ck.model.widened(store.vocabularies())?;
+            let (parent, rescaled) = wide.rescaled(
+                &store.totals().train_stats,
+                owner.config.training.rescale_threshold,
+            )?;
+            Some((parent, added, rescaled))
+        }
+        None => None,
+    };
+    let rescaled_columns: Vec<String> = widened
+        .as_ref()
+        .map(|(_, _, cols)| {
+            cols.iter()
+                .map(|c| store.schema().columns[*c].name.clone())
+                .collect()
+        })
+        .unwrap_or_default();
+    let widened_columns: std::collections::BTreeMap<String, usize> = widened
+        .as_ref()
+        .map(|(_, added, _)| {
+            added
+                .iter()
+                .map(|(c, n)| (store.schema().columns[*c].name.clone(), *n))
+                .collect()
+        })
+        .unwrap_or_default();
     let (warm, cold) = std::thread::scope(|scope| {
-        let warm = serving.as_ref().filter(|_| want_warm).map(|(_, _, ck)| {
-            let parent = &ck.model;
+        let warm = widened.as_ref().map(|(parent, _, _)| {
             let (new_train, older_train) = (&new_train, &older_train);
             scope.spawn(move || {
                 train::train_warm(
@@ -267,6 +300,15 @@ pub fn run(
     let judged = (0..scored.len())
         .min_by(|&a, &b| scored[a].4.total_cmp(&scored[b].4))
         .expect("at least one candidate is trained");
+    // The reference models, on the same training and holdout rows.
+    let parts = [&older_train, &new_train];
+    let trivial = baseline::trivial_losses(&cold_spec, &parts, &holdout)
+        .map_err(|e| CycleError::Scoring(e.to_string()))?;
+    let trivial_loss = mean(&trivial);
+    let lambda = owner.config.gate.ridge_lambda;
+    let ridge = Ridge::fit(&cold_spec, &parts, lambda)
+        .and_then(|r| r.row_losses(&holdout))
+        .map(|l| mean(&l));
     let policy = gate::Policy::from(&owner.config.gate);
     let candidate_scores = Scores::new(scored[judged].3.clone(), new_flags.clone());
     let (decision, baseline_loss) = match &serving {
@@ -282,22 +324,20 @@ pub fn run(
                 loss,
             )
         }
-        None => {
-            let all = all_train
-                .as_ref()
-                .expect("a cold candidate is trained when nothing serves");
-            let losses = trivial_losses(&cold_spec, all, &holdout)?;
-            let loss = mean(&losses);
-            (
-                gate::decide_first(
-                    &Scores::new(losses, new_flags.clone()),
-                    &candidate_scores,
-                    &policy,
-                ),
-                loss,
-            )
-        }
+        None => (
+            gate::decide_first(
+                &Scores::new(trivial.clone(), new_flags.clone()),
+                &candidate_scores,
+                &policy,
+            ),
+            trivial_loss,
+        ),
     };
+
+    let ridge_loss = ridge.as_ref().ok().copied();
+    if let Err(e) = &ridge {
+        tracing::warn!("ridge baseline not fitted: {e}");
+    }
 
     let mut candidates = Vec::new();
     let mut serving_after = serving_id;
@@ -356,6 +396,16 @@ pub fn run(
                 holdout_rows: holdout.n_rows(),
                 holdout_loss: *loss,
                 manifest_hash,
+                widened: if *run == RunKind::Warm {
+                    widened_columns.clone()
+                } else {
+                    Default::default()
+                },
+                rescaled: if *run == RunKind::Warm {
+                    rescaled_columns.clone()
+                } else {
+                    Vec::new()
+                },
             };
             let entry = owner.store.record_with_meta(
                 event,
@@ -372,6 +422,18 @@ pub fn run(
             owner.mirror.append(&[entry.line().as_bytes()])?;
             ids.push(id);
         }
+        let event = Event::BaselinesScored {
+            cycle,
+            holdout_rows: holdout.n_rows(),
+            trivial_loss,
+            ridge_loss,
+            ridge_lambda: lambda,
+            ridge_problem: ridge.as_ref().err().map(ToString::to_string),
+            serving: serving_id,
+            serving_loss: serving_id.map(|_| baseline_loss),
+        };
+        let entry = owner.store.record_with_meta(event, user, Utc::now(), &[])?;
+        owner.mirror.append(&[entry.line().as_bytes()])?;
         for (i, id) in ids.iter().enumerate() {
             if i != judged {
                 let reason = format!(
@@ -449,6 +511,8 @@ pub fn run(
         cycle,
         serving_before: serving_id,
         baseline_loss,
+        trivial_loss,
+        ridge_loss,
         holdout_rows: holdout.n_rows(),
         new_batches,
         candidates,
@@ -469,7 +533,7 @@ pub fn run_name(run: RunKind) -> &'static str {
     }
 }
 
-fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, CycleError> {
+pub(crate) fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, CycleError> {
     let bytes = owner.store.meta_value(&model_key(id))?.ok_or_else(|| {
         CycleError::Store(StoreError::Corrupt {
             path: owner.store.path().to_path_buf(),
@@ -482,35 +546,6 @@ fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, CycleError> {
             what: format!("record of {id}: {e}"),
         })
     })
-}
-
-/// Per-row holdout losses of the trivial predictor: the training mean
-/// (regression) or the training class frequencies (classification).
-fn trivial_losses(
-    spec: &FeatureSpec,
-    train: &RowMatrix,
-    holdout: &RowMatrix,
-) -> Result<Vec<f64>, CycleError> {
-    let t: Vec<f64> = spec
-        .encode_targets(train)
-        .iter()
-        .filter(|v| !v.is_nan())
-        .map(|&v| f64::from(v))
-        .collect();
-    let h: Vec<f64> = spec
-        .encode_targets(holdout)
-        .iter()
-        .map(|&v| f64::from(v))
-        .collect();
-    let result = match spec.task {
-        Task::Regression => gate::metrics::mean_predictor_losses(&t, &h),
-        Task::Classification => {
-            let tl: Vec<usize> = t.iter().map(|&v| v as usize).collect();
-            let hl: Vec<usize> = h.iter().map(|&v| v as usize).collect();
-            gate::metrics::prior_predictor_losses(&tl, spec.outputs, &hl)
-        }
-    };
-    result.map_err(|e| CycleError::Scoring(e.to_string()))
 }
 
 /// The gate's numbers in the form the audit log keeps.
@@ -526,6 +561,7 @@ pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
         relative_improvement: e.relative_improvement,
         t: e.test.t.is_finite().then_some(e.test.t),
         p: e.test.p_greater,
+        wilcoxon_p: e.wilcoxon_p,
         new_rows: e.new_rows.rows,
         old_rows: e.old_rows.rows,
         reason: decision.reason(),

@@ -26,7 +26,7 @@ use crate::fsutil;
 use crate::ids::BatchId;
 use crate::ingest::{self, Limits, ReadError, Refusal};
 use crate::state::{Owner, StateDir, StateError};
-use crate::store::{BatchRecord, Store};
+use crate::store::{BatchRecord, Split, Store};
 
 /// What to do with the source file once it is dealt with.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -183,11 +183,34 @@ pub fn take_file(
         Ok(b) => b,
         Err(refusal) => return reject(owner, path, &name, Some(&raw), refusal, source, user, now),
     };
+    // Drift against the stored training rows, kept in the batch's entry.
+    let drift = {
+        let reference = crate::drift::thin(
+            &owner.store.rows(Split::Train, None, None)?,
+            owner.config.drift.max_reference_rows,
+        );
+        let mut rows = batch.train.clone();
+        rows.extend(&batch.holdout);
+        let mut vocabs = owner.store.vocabularies().clone();
+        for (col, values) in &batch.new_categories {
+            let v = vocabs.entry(*col).or_default();
+            for value in values {
+                v.code_or_insert(value);
+            }
+        }
+        crate::drift::batch_report(
+            owner.store.schema(),
+            &vocabs,
+            &reference,
+            &rows,
+            &owner.config.drift.thresholds(),
+        )
+    };
     let pending = pending_path(&owner.state, &raw.hash);
     fsutil::write_atomic(&pending, &raw.bytes).map_err(io_at(&pending))?;
     let (record, entry) = owner
         .store
-        .commit_batch(&batch, &name, &raw.hash, user, now)?;
+        .commit_batch(&batch, &name, &raw.hash, drift, user, now)?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let archived = archive_path(&owner.state, record.id);
     fs::rename(&pending, &archived).map_err(io_at(&archived))?;

@@ -7,11 +7,15 @@
 //! to exit codes.
 
 pub mod audit;
+pub mod backup;
+pub mod baseline;
 pub mod cli;
 pub mod config;
 pub mod cycle;
 pub mod daemon;
 pub mod demo;
+pub mod drift;
+pub mod fresh;
 pub mod fsutil;
 pub mod gate;
 pub mod ids;
@@ -19,6 +23,7 @@ pub mod ingest;
 pub mod intake;
 pub mod lifecycle;
 pub mod model;
+pub mod refold;
 pub mod rng;
 pub mod schema;
 pub mod state;

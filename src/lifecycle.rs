@@ -5,7 +5,7 @@
 
 use chrono::Utc;
 
-use crate::audit::{Entry, Event};
+use crate::audit::{Entry, Event, FreshEvidence};
 use crate::cycle::META_PENDING;
 use crate::ids::ModelId;
 use crate::model::ModelError;
@@ -166,8 +166,61 @@ pub fn rollback(
         to,
         how: "manual".into(),
         reason: reason.trim().to_string(),
+        evidence: None,
     };
     commit(owner, event, user, Some(to), false)
+}
+
+/// Lets `to` serve again because the fresh-data check found the serving
+/// model `from` significantly worse on rows neither had trained on.
+pub fn rollback_automatic(
+    owner: &mut Owner,
+    from: ModelId,
+    to: ModelId,
+    evidence: FreshEvidence,
+    user: &str,
+) -> Result<Entry, DecisionError> {
+    if owner.store.serving()? != Some(from) {
+        return Err(DecisionError::AlreadyServes(to));
+    }
+    usable(owner, to)?;
+    let event = Event::RolledBack {
+        from,
+        to,
+        how: "automatic".into(),
+        reason: format!(
+            "fresh-data check on {}: {}",
+            evidence.batch, evidence.reason
+        ),
+        evidence: Some(evidence),
+    };
+    commit(owner, event, user, Some(to), false)
+}
+
+/// The model `current` replaced, when it came to serve by promotion or
+/// approval; `None` when it was the first or came back by a rollback (a
+/// person or the check already chose between the two).
+pub fn replaced_by_promotion(
+    owner: &Owner,
+    current: ModelId,
+) -> Result<Option<ModelId>, DecisionError> {
+    let mut previous = None;
+    for (_, line) in owner.store.audit_entries()? {
+        let Ok(entry) = Entry::from_line(&line) else {
+            continue;
+        };
+        match entry.event {
+            Event::Promoted {
+                model, previous: p, ..
+            }
+            | Event::Approved {
+                model, previous: p, ..
+            } if model == current => previous = p,
+            Event::RolledBack { to, .. } if to == current => previous = None,
+            _ => {}
+        }
+    }
+    Ok(previous)
 }
 
 /// The model that served before `current` started serving, from the log.

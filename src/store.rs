@@ -484,6 +484,7 @@ impl Store {
         batch: &Batch,
         file: &str,
         hash: &blake3::Hash,
+        drift: Option<crate::drift::BatchReport>,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<(BatchRecord, Entry), StoreError> {
@@ -503,6 +504,7 @@ impl Store {
             train_rows: batch.train.n_rows() as u64,
             holdout_rows: batch.holdout.n_rows() as u64,
             new_categories,
+            drift,
         };
         let entry = self.seal(event, user, time);
         let record = BatchRecord {
@@ -602,6 +604,50 @@ impl Store {
         self.totals = totals;
         self.last_audit = Some((entry.seq, entry.hash.clone()));
         Ok((record, entry))
+    }
+
+    /// Writes a logically identical copy of every tree to a new store at
+    /// `dest` (which must not exist) and makes it durable: a consistent
+    /// copy while this store stays open, independent of sled's file layout.
+    /// Returns the number of key-value pairs copied.
+    pub fn copy_to(&self, dest: &Path) -> Result<u64, StoreError> {
+        if dest.exists() {
+            return Err(StoreError::Corrupt {
+                path: dest.to_path_buf(),
+                what: "the copy's destination already exists".into(),
+            });
+        }
+        let sl = |e| StoreError::Sled {
+            path: dest.to_path_buf(),
+            source: e,
+        };
+        let copy = sled::Config::new()
+            .path(dest)
+            .mode(sled::Mode::HighThroughput)
+            .open()
+            .map_err(sl)?;
+        let mut pairs = 0;
+        for (name, tree) in [
+            ("meta", &self.meta),
+            ("batches", &self.batches),
+            ("hashes", &self.hashes),
+            ("chunks", &self.chunks),
+            ("vocab", &self.vocab),
+            ("audit", &self.audit),
+        ] {
+            let target = copy.open_tree(name).map_err(sl)?;
+            for kv in tree.iter() {
+                let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+                target.insert(k, v).map_err(sl)?;
+                pairs += 1;
+            }
+        }
+        copy.flush().map_err(sl)?;
+        drop(copy);
+        let io = |path: PathBuf| move |source| StoreError::Io { path, source };
+        crate::fsutil::sync_file(&dest.join("db")).map_err(io(dest.join("db")))?;
+        crate::fsutil::sync_dir(dest).map_err(io(dest.to_path_buf()))?;
+        Ok(pairs)
     }
 
     /// Makes everything written so far durable: sled's flush writes its log

@@ -5,6 +5,7 @@
 use std::path::{Path, PathBuf};
 
 use super::{Cli, Exit, emit, shown};
+use crate::fresh;
 use crate::intake::{self, Outcome, Source};
 use crate::state::{self, StateDir};
 
@@ -52,7 +53,7 @@ pub(crate) fn take_files(
         let path = base.map_or_else(|| file.clone(), |b| b.join(file));
         let outcome = intake::take_file(owner, &path, Source::Keep, user, chrono::Utc::now())?;
         let shown_file = file.display().to_string();
-        let (status, detail, json) = match &outcome {
+        let (status, mut detail, mut json) = match &outcome {
             Outcome::Accepted { batch, entry } => (
                 "accepted",
                 format!(
@@ -109,6 +110,26 @@ pub(crate) fn take_files(
                 )
             }
         };
+        if let Outcome::Accepted { batch, .. } = &outcome {
+            // The batch is stored whatever the check says; a failure to run
+            // it is reported, not fatal.
+            match fresh::check_batch(owner, batch.id, user) {
+                Ok(Some(found)) => {
+                    let e = &found.evidence;
+                    detail.push_str(&format!("; fresh-data check: {}", e.verdict));
+                    if let Some(r) = &found.rollback {
+                        detail.push_str(&format!("; {}", r.event.summary()));
+                    }
+                    json["fresh_check"] = serde_json::to_value(e).expect("evidence serialises");
+                    json["rolled_back"] = serde_json::Value::Bool(found.rollback.is_some());
+                }
+                Ok(None) => {}
+                Err(err) => {
+                    tracing::warn!("{shown_file}: the fresh-data check could not run: {err}");
+                    detail.push_str(&format!("; fresh-data check failed: {err}"));
+                }
+            }
+        }
         if json_out {
             out.push_str(&format!("{json}\n"));
         } else {

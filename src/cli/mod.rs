@@ -3,7 +3,10 @@
 //! messages on stderr; `--json` switches data to JSON.
 
 mod approve;
+mod backup;
+mod completions;
 mod decline;
+mod demo;
 mod ingest;
 mod init;
 mod log;
@@ -46,15 +49,9 @@ pub enum Exit {
     about = "Keeps a tabular neural-network model up to date as data arrives, with a paired-test gate and an audit log."
 )]
 pub struct Cli {
-    /// State directory.
-    #[arg(
-        long,
-        global = true,
-        env = "TIDEGATE_STATE",
-        default_value = "state",
-        value_name = "DIR"
-    )]
-    pub state: PathBuf,
+    /// State directory [default: ./state].
+    #[arg(long, global = true, env = "TIDEGATE_STATE", value_name = "DIR")]
+    pub state: Option<PathBuf>,
     /// Config file (default: the copy in the state dir; for init: the one to use).
     #[arg(long, global = true, value_name = "FILE")]
     pub config: Option<PathBuf>,
@@ -95,19 +92,35 @@ pub enum Command {
     Predict(predict::Args),
     /// Check the audit chain, the store against the log, and the archive.
     Verify(verify::Args),
+    /// Run the bundled bakery scenario (invented data) night by night in a scratch state dir.
+    Demo(demo::Args),
+    /// Print a shell completion script (bash, zsh, fish, elvish, powershell).
+    Completions(completions::Args),
+    /// Write a consistent copy of the state dir (store, log, archive, models) to a folder.
+    Backup(backup::BackupArgs),
+    /// Recreate a state dir (--state) from a backup, check it and verify it.
+    Restore(backup::RestoreArgs),
     /// Run as the daemon: take inbox files, retrain as data arrives, answer the CLI.
     Watch(watch::Args),
 }
 
 /// Runs a parsed command line.
 pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
-    let state = StateDir::new(&cli.state);
     match &cli.command {
+        Command::Demo(a) => return demo::run(cli, a),
+        Command::Completions(a) => return completions::run(a),
+        _ => {}
+    }
+    let state = StateDir::new(cli.state.clone().unwrap_or_else(|| PathBuf::from("state")));
+    match &cli.command {
+        Command::Demo(_) | Command::Completions(_) => unreachable!("handled above"),
         Command::Init(a) => init::run(cli, &state, a),
         Command::Ingest(a) => ingest::run(cli, &state, a),
         Command::Status(a) => status::run(cli, &state, a),
         Command::Log(a) => log::run(cli, &state, a),
         Command::Verify(a) => verify::run(cli, &state, a),
+        Command::Backup(a) => backup::run_backup(cli, &state, a),
+        Command::Restore(a) => backup::run_restore(cli, &state, a),
         Command::Predict(a) => predict::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),
         Command::Models(a) => models::run(cli, &state, a),

@@ -26,6 +26,9 @@ struct Row {
     epochs: usize,
     seconds: f64,
     holdout_loss: Option<f64>,
+    /// The ridge baseline's holdout loss in the same cycle, on the same rows.
+    ridge_loss: Option<f64>,
+    beats_ridge: Option<bool>,
     /// What the log says became of it, latest last.
     decisions: Vec<String>,
     serving: bool,
@@ -66,6 +69,18 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
         }
     }
     for e in state.mirror().entries()? {
+        if let Event::BaselinesScored {
+            cycle,
+            ridge_loss: Some(ridge),
+            ..
+        } = &e.event
+        {
+            for row in rows.values_mut().filter(|r| r.cycle == Some(*cycle)) {
+                row.ridge_loss = Some(*ridge);
+                row.beats_ridge = row.holdout_loss.map(|l| l < *ridge);
+            }
+            continue;
+        }
         let Some(model) = e.event.model() else {
             continue;
         };
@@ -81,6 +96,8 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
                 row.cycle = Some(*cycle);
                 row.holdout_loss = Some(*holdout_loss);
             }
+            // Checks of the serving model on each batch are not decisions.
+            Event::FreshChecked { .. } => {}
             other => row.decisions.push(other.kind().to_string()),
         }
     }
@@ -110,6 +127,11 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
                 r.epochs.to_string(),
                 r.holdout_loss
                     .map_or_else(|| "-".into(), |l| format!("{l:.4}")),
+                match (r.ridge_loss, r.beats_ridge) {
+                    (Some(l), Some(true)) => format!("{l:.4} (beaten)"),
+                    (Some(l), _) => format!("{l:.4} (NOT beaten)"),
+                    (None, _) => "-".into(),
+                },
                 r.decisions.join(", "),
             ]
         })
@@ -124,6 +146,7 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
             "rows",
             "epochs",
             "holdout loss",
+            "ridge loss",
             "decisions",
         ],
         &lines,

@@ -156,6 +156,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
             "baseline": baseline, "baseline_loss": report.baseline_loss, "holdout_rows": report.holdout_rows,
             "new_batches": report.new_batches, "candidates": candidates, "judged": report.judged,
             "evidence": evidence, "reason": report.decision.reason(),
+            "ridge_loss": report.ridge_loss, "trivial_loss": report.trivial_loss,
         });
         return format!("{v}\n");
     }
@@ -166,9 +167,26 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         "-".into(),
         format!("{:.4}", report.baseline_loss),
     ]];
-    if report.serving_before.is_none() {
+    if report.serving_before.is_some() {
+        rows.push(vec![
+            "trivial predictor".into(),
+            "baseline".into(),
+            "-".into(),
+            "-".into(),
+            format!("{:.4}", report.trivial_loss),
+        ]);
+    } else {
         rows[0][1] = "baseline".into();
     }
+    rows.push(vec![
+        "ridge".into(),
+        "baseline".into(),
+        "-".into(),
+        "-".into(),
+        report
+            .ridge_loss
+            .map_or_else(|| "not fitted".into(), |l| format!("{l:.4}")),
+    ]);
     for (i, c) in report.candidates.iter().enumerate() {
         let name =
             c.id.map_or_else(|| "(dry run)".to_string(), |m| m.to_string());
@@ -206,6 +224,14 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
     ));
     if let Some(s) = report.serving_after {
         out.push_str(&format!("serving: {s}\n"));
+    }
+    let best = report.candidates[report.judged].holdout_loss;
+    if let Some(r) = report.ridge_loss
+        && best >= r
+    {
+        out.push_str(&format!(
+            "warning: the best network ({best:.4}) does not beat the ridge baseline ({r:.4}) on the holdout rows\n"
+        ));
     }
     out
 }

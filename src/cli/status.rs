@@ -6,7 +6,8 @@ use std::collections::BTreeMap;
 use serde::Serialize;
 
 use super::{Cli, Exit, emit, table};
-use crate::audit::{Entry, Event};
+use crate::audit::{Entry, Event, FreshEvidence};
+use crate::ids::ModelId;
 use crate::state::{self, StateDir};
 
 #[derive(Debug, clap::Args)]
@@ -33,6 +34,31 @@ pub struct Summary {
     pub models_trained: u64,
     /// The last gate decision, in words.
     pub last_decision: Option<String>,
+    /// The serving network against the ridge baseline, from the last cycle
+    /// that scored both on the same holdout rows.
+    pub versus_ridge: Option<VersusRidge>,
+    /// The last fresh-data check, unless a cycle has started since.
+    pub fresh_check: Option<FreshEvidence>,
+    /// The last accepted batch's drift report.
+    pub last_drift: Option<LastDrift>,
+}
+
+/// Which columns of the last accepted batch moved away from the stored rows.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LastDrift {
+    pub batch: crate::ids::BatchId,
+    pub flagged: Vec<String>,
+    pub reasons: Vec<String>,
+}
+
+/// A network's holdout loss beside the ridge baseline's on the same rows.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct VersusRidge {
+    pub model: ModelId,
+    pub cycle: u64,
+    pub network_loss: f64,
+    pub ridge_loss: f64,
+    pub beats_ridge: bool,
 }
 
 impl Summary {
@@ -42,15 +68,31 @@ impl Summary {
             audit_entries: entries.len() as u64,
             ..Summary::default()
         };
+        // Holdout losses of this cycle's candidates, and each model's latest
+        // comparison with ridge.
+        let mut cycle_losses: BTreeMap<ModelId, f64> = BTreeMap::new();
+        let mut vs_ridge: BTreeMap<ModelId, VersusRidge> = BTreeMap::new();
         for e in entries {
             match &e.event {
                 Event::BatchAccepted {
+                    batch,
                     rows,
                     train_rows,
                     holdout_rows,
                     new_categories,
+                    drift,
                     ..
                 } => {
+                    s.last_drift = drift.as_ref().map(|d| LastDrift {
+                        batch: *batch,
+                        flagged: d.flagged().iter().map(|c| c.to_string()).collect(),
+                        reasons: d
+                            .columns
+                            .iter()
+                            .filter(|c| c.flagged)
+                            .map(|c| format!("{}: {}", c.column, c.reason))
+                            .collect(),
+                    });
                     s.batches += 1;
                     s.rows += rows;
                     s.train_rows += train_rows;
@@ -76,12 +118,51 @@ impl Summary {
                 Event::Kept { .. } | Event::AwaitingApproval { .. } => {
                     s.last_decision = Some(e.event.summary())
                 }
-                Event::CandidateTrained { .. } => s.models_trained += 1,
+                Event::CandidateTrained {
+                    model,
+                    holdout_loss,
+                    ..
+                } => {
+                    s.models_trained += 1;
+                    cycle_losses.insert(*model, *holdout_loss);
+                }
+                Event::BaselinesScored {
+                    cycle,
+                    ridge_loss: Some(ridge),
+                    serving,
+                    serving_loss,
+                    ..
+                } => {
+                    let mut scored = std::mem::take(&mut cycle_losses);
+                    if let (Some(m), Some(l)) = (serving, serving_loss) {
+                        scored.insert(*m, *l);
+                    }
+                    for (model, loss) in scored {
+                        vs_ridge.insert(
+                            model,
+                            VersusRidge {
+                                model,
+                                cycle: *cycle,
+                                network_loss: loss,
+                                ridge_loss: *ridge,
+                                beats_ridge: loss < *ridge,
+                            },
+                        );
+                    }
+                }
+                Event::CycleStarted { .. } => {
+                    cycle_losses.clear();
+                    s.fresh_check = None;
+                }
+                Event::FreshChecked { check } => s.fresh_check = Some(check.clone()),
                 Event::Initialized { .. }
-                | Event::CycleStarted { .. }
+                | Event::BackupMade { .. }
+                | Event::Restored { .. }
+                | Event::BaselinesScored { .. }
                 | Event::CycleAbandoned { .. } => {}
             }
         }
+        s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
         s
     }
 }
@@ -131,6 +212,55 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     ));
     if let Some(d) = &summary.last_decision {
         out.push_str(&format!("last gate   {d}\n"));
+    }
+    if let Some(v) = &summary.versus_ridge {
+        let share = (v.ridge_loss - v.network_loss) / v.ridge_loss.abs().max(f64::MIN_POSITIVE);
+        if v.beats_ridge {
+            out.push_str(&format!(
+                "vs ridge    {} holdout loss {:.4} vs ridge {:.4} in cycle {} ({:.1}% lower)\n",
+                v.model,
+                v.network_loss,
+                v.ridge_loss,
+                v.cycle,
+                100.0 * share
+            ));
+        } else {
+            out.push_str(&format!(
+                "WARNING     the serving network {} does not beat the ridge baseline: holdout loss \
+                 {:.4} vs {:.4} in cycle {}; check the model settings before relying on it\n",
+                v.model, v.network_loss, v.ridge_loss, v.cycle
+            ));
+        }
+    }
+    if let Some(d) = &summary.last_drift {
+        if d.flagged.is_empty() {
+            out.push_str(&format!("drift       {}: no column flagged\n", d.batch));
+        } else {
+            out.push_str(&format!(
+                "drift       {}: {} flagged against the stored rows\n",
+                d.batch,
+                d.flagged.join(", ")
+            ));
+            for r in &d.reasons {
+                out.push_str(&format!("            {r}\n"));
+            }
+        }
+    }
+    if let Some(f) = &summary.fresh_check {
+        let lead = match f.verdict.as_str() {
+            "shifted" | "regressed" => "WARNING    ",
+            _ => "fresh check",
+        };
+        out.push_str(&format!(
+            "{lead} {} scored by {}: {}\n",
+            f.batch, f.serving, f.verdict
+        ));
+        if matches!(f.verdict.as_str(), "shifted" | "regressed") {
+            out.push_str(&format!("            {}\n", f.reason));
+            for h in &f.hotspots {
+                out.push_str(&format!("            most excess loss: {h}\n"));
+            }
+        }
     }
     out.push_str(&format!(
         "files       {} rejected, {} duplicates\n",
@@ -223,6 +353,7 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: cats.clone(),
+                drift: None,
             },
             Event::BatchRejected {
                 file: "b".into(),
@@ -244,6 +375,7 @@ mod tests {
                 train_rows: 4,
                 holdout_rows: 1,
                 new_categories: BTreeMap::new(),
+                drift: None,
             },
         ];
         let entries: Vec<Entry> = events

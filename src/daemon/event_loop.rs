@@ -328,7 +328,7 @@ impl<C: Clock> Daemon<C> {
                     batch.rows()
                 );
                 self.untrained_rows += batch.rows();
-                after_accept(owner, &batch)?;
+                after_accept(owner, &batch, &self.user);
             }
             Ok(Outcome::Duplicate { of, .. }) => {
                 tracing::info!("{shown}: duplicate of batch {of}; set aside in the archive")
@@ -819,16 +819,22 @@ pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
         .sum())
 }
 
-/// Runs after each batch the daemon accepts from the inbox.
-///
-/// WIRING POINT for the fresh-data check: call it from here once it is
-/// exposed (it scores the serving model and its predecessor on the new
-/// rows and may roll back). Until then this only logs.
-pub fn after_accept(owner: &mut Owner, batch: &BatchRecord) -> Result<(), StateError> {
-    tracing::debug!(
-        "batch {} accepted into {}; fresh-data check not wired yet",
-        batch.id,
-        owner.state.root().display()
-    );
-    Ok(())
+/// Runs after each batch the daemon accepts from the inbox: the fresh-data
+/// check (serving model against the one it replaced, on the new rows; it
+/// may roll back). The batch is stored whatever the check finds, and a
+/// check that cannot run is reported, not fatal, as with `ingest`.
+pub fn after_accept(owner: &mut Owner, batch: &BatchRecord, user: &str) {
+    match crate::fresh::check_batch(owner, batch.id, user) {
+        Ok(Some(found)) => {
+            tracing::info!("batch {}: fresh-data check: {}", batch.id, found.verdict());
+            if let Some(r) = &found.rollback {
+                tracing::warn!("batch {}: {}", batch.id, r.event.summary());
+            }
+        }
+        Ok(None) => {}
+        Err(e) => tracing::warn!(
+            "batch {}: the fresh-data check could not run: {e}",
+            batch.id
+        ),
+    }
 }

@@ -329,6 +329,7 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: Default::default(),
+                drift: None,
             },
         );
         c.fold(&accepted);

@@ -23,7 +23,7 @@
 use std::cmp::Ordering;
 use std::fmt;
 
-use super::paired::{PairedT, differences, paired_t};
+use super::paired::{PairedT, WelchT, differences, paired_t, welch_t, wilcoxon_signed_rank};
 use super::{InputError, mean, show};
 use crate::config::GateConfig;
 
@@ -145,6 +145,10 @@ pub struct Evidence {
     pub relative_improvement: Option<f64>,
     /// One-sided paired t on all rows; `p_greater` is the decision's p.
     pub test: PairedT,
+    /// Wilcoxon signed-rank p that the candidate's losses tend to be lower:
+    /// a second opinion that does not rest on the mean of heavy-tailed
+    /// losses. Recorded, not part of the rule.
+    pub wilcoxon_p: Option<f64>,
     pub new_rows: Guard,
     pub old_rows: Guard,
     pub policy: Policy,
@@ -410,6 +414,7 @@ fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> D
         mean_loss_candidate,
         relative_improvement,
         test,
+        wilcoxon_p: wilcoxon_signed_rank(&d).ok().map(|w| w.p_greater),
         new_rows: guard(base, cand, true, policy.alpha),
         old_rows: guard(base, cand, false, policy.alpha),
         policy: *policy,
@@ -590,6 +595,57 @@ pub fn regression_check(serving_losses: &[f64], previous_losses: &[f64], alpha: 
         FreshVerdict::NoRegression
     };
     check
+}
+
+/// Has the data moved away from what the serving model knows? Its per-row
+/// losses on fresh rows against its losses on the stored holdout rows
+/// (Welch's t, one-sided, level `alpha`). A shift is not a reason to roll
+/// back (every model trained on the old rows suffers alike); it is a reason
+/// to retrain soon and to look.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShiftCheck {
+    pub test: Option<WelchT>,
+    pub alpha: f64,
+    /// `Some(true)` when the fresh loss is significantly higher; `None`
+    /// when untestable.
+    pub shifted: Option<bool>,
+}
+
+pub fn shift_check(fresh_losses: &[f64], reference_losses: &[f64], alpha: f64) -> ShiftCheck {
+    let test = welch_t(fresh_losses, reference_losses).ok();
+    let shifted = test
+        .filter(|t| !t.p_greater.is_nan() && alpha > 0.0 && alpha <= 0.5)
+        .map(|t| t.p_greater <= alpha);
+    ShiftCheck {
+        test,
+        alpha,
+        shifted,
+    }
+}
+
+impl ShiftCheck {
+    pub fn reason(&self) -> String {
+        match (self.test, self.shifted) {
+            (Some(t), Some(s)) => format!(
+                "mean loss {} on {} fresh rows vs {} on {} stored holdout rows; Welch t = {} \
+                 with {} df, p = {} (alpha {}): {}",
+                show(t.mean_a),
+                t.n_a,
+                show(t.mean_b),
+                t.n_b,
+                show(t.t),
+                show(t.df),
+                show(t.p_greater),
+                show(self.alpha),
+                if s {
+                    "the serving model does significantly worse on the new rows"
+                } else {
+                    "no significant shift"
+                }
+            ),
+            _ => "shift not tested (too few rows or non-finite losses)".to_string(),
+        }
+    }
 }
 
 #[cfg(test)]
@@ -955,6 +1011,7 @@ mod tests {
             min_holdout_rows: 500,
             require_approval: true,
             cold_every: 3,
+            ..GateConfig::default()
         };
         let p = Policy::from(&config);
         assert_eq!(
@@ -996,5 +1053,32 @@ mod tests {
             );
             assert!(!check.regressed());
         }
+    }
+
+    #[test]
+    fn shift_check_flags_higher_fresh_losses_only() {
+        let mut rng = Rng::new(11);
+        let (reference, _) = losses(&mut rng, 400, 0.3, 0.3);
+        let (fresh_same, _) = losses(&mut rng, 200, 0.3, 0.3);
+        let (fresh_worse, _) = losses(&mut rng, 200, 1.2, 0.3);
+        assert_eq!(
+            shift_check(&fresh_worse, &reference, 0.05).shifted,
+            Some(true)
+        );
+        assert_eq!(
+            shift_check(&fresh_same, &reference, 0.01).shifted,
+            Some(false)
+        );
+        // Lower fresh losses are not a shift in this one-sided sense.
+        assert_eq!(
+            shift_check(&reference, &fresh_worse, 0.05).shifted,
+            Some(false)
+        );
+        assert_eq!(shift_check(&[1.0], &reference, 0.05).shifted, None);
+        assert!(
+            shift_check(&fresh_worse, &reference, 0.05)
+                .reason()
+                .contains("significantly worse")
+        );
     }
 }

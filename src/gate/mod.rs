@@ -30,7 +30,7 @@ use std::fmt;
 
 pub use decide::{
     Baseline, Decision, Evidence, FreshCheck, FreshVerdict, Guard, GuardStatus, Policy, Scores,
-    Shortfall, decide, decide_first, regression_check,
+    ShiftCheck, Shortfall, decide, decide_first, regression_check, shift_check,
 };
 
 /// Why a metric or test could not be computed from its inputs.

@@ -88,6 +88,65 @@ pub fn paired_t(d: &[f64]) -> Result<PairedT, InputError> {
     })
 }
 
+/// Welch's two-sample t-test of mean(a) − mean(b) (unequal variances,
+/// Welch–Satterthwaite degrees of freedom).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct WelchT {
+    pub n_a: usize,
+    pub n_b: usize,
+    pub mean_a: f64,
+    pub mean_b: f64,
+    pub t: f64,
+    pub df: f64,
+    /// P(T ≥ t): evidence that mean(a) is above mean(b).
+    pub p_greater: f64,
+}
+
+/// Welch's t-test; needs at least 2 finite values on each side. When both
+/// samples have zero variance, t is taken as its limit (±∞, or 0 for equal
+/// means) as in `paired_t`.
+pub fn welch_t(a: &[f64], b: &[f64]) -> Result<WelchT, InputError> {
+    for (what, v) in [("first sample", a), ("second sample", b)] {
+        if v.len() < 2 {
+            return Err(InputError::TooFew {
+                what,
+                need: 2,
+                have: v.len(),
+            });
+        }
+        check_finite(what, v)?;
+    }
+    let (na, nb) = (a.len() as f64, b.len() as f64);
+    let (ma, mb) = (mean(a), mean(b));
+    let var =
+        |v: &[f64], m: f64| v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() - 1) as f64;
+    let (qa, qb) = (var(a, ma) / na, var(b, mb) / nb);
+    let se2 = qa + qb;
+    let diff = ma - mb;
+    let (t, df) = if se2 > 0.0 {
+        let df = se2 * se2 / (qa * qa / (na - 1.0) + qb * qb / (nb - 1.0));
+        (diff / se2.sqrt(), df)
+    } else {
+        let t = if diff > 0.0 {
+            f64::INFINITY
+        } else if diff < 0.0 {
+            f64::NEG_INFINITY
+        } else {
+            0.0
+        };
+        (t, na + nb - 2.0)
+    };
+    Ok(WelchT {
+        n_a: a.len(),
+        n_b: b.len(),
+        mean_a: ma,
+        mean_b: mb,
+        t,
+        df,
+        p_greater: t_sf(t, df),
+    })
+}
+
 /// Diebold–Mariano test with the small-sample correction, at horizon 1.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct DieboldMariano {
@@ -598,5 +657,37 @@ mod tests {
         assert_eq!((zero.t, zero.p_greater, zero.p_two_sided), (0.0, 0.5, 1.0));
         assert!(differences(&[1.0, 2.0], &[1.0]).is_err());
         assert!(differences(&[f64::MAX], &[-f64::MAX]).is_err());
+    }
+
+    #[test]
+    fn welch_equals_student_for_equal_sizes_and_matches_statrs() {
+        // With equal sizes the Welch statistic equals the pooled Student t
+        // (algebraic identity: s²/n + s²/n both ways); its df lie between
+        // min(n)−1 and n_a+n_b−2 (Welch–Satterthwaite bounds).
+        let a = [5.1, 4.9, 6.2, 5.8, 6.0, 5.5, 5.3, 6.1];
+        let b = [4.2, 4.8, 3.9, 4.5, 5.0, 4.1, 4.6, 4.4];
+        let w = welch_t(&a, &b).unwrap();
+        let n = a.len() as f64;
+        let var = |v: &[f64]| {
+            let m = mean(v);
+            v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (n - 1.0)
+        };
+        let pooled = ((var(&a) + var(&b)) / 2.0 * (2.0 / n)).sqrt();
+        let student = (mean(&a) - mean(&b)) / pooled;
+        assert!((w.t - student).abs() < 1e-12, "{} vs {student}", w.t);
+        assert!(w.df >= n - 1.0 && w.df <= 2.0 * n - 2.0, "{}", w.df);
+        // The one-sided p from the t distribution, against statrs.
+        use statrs::distribution::{ContinuousCDF, StudentsT};
+        let reference = 1.0 - StudentsT::new(0.0, 1.0, w.df).unwrap().cdf(w.t);
+        assert!(
+            (w.p_greater - reference).abs() < 1e-10,
+            "{} vs {reference}",
+            w.p_greater
+        );
+        // Swapping the samples flips the sign.
+        let back = welch_t(&b, &a).unwrap();
+        assert!((back.t + w.t).abs() < 1e-12 && back.p_greater > 0.99);
+        assert!(welch_t(&a, &[1.0]).is_err());
+        assert!(welch_t(&a, &[1.0, f64::NAN]).is_err());
     }
 }

@@ -14,7 +14,7 @@
 pub mod activation;
 pub mod checkpoint;
 
-use burn::module::{Module, Param, ParamId};
+use burn::module::{Module, Param, ParamGroup, ParamId};
 use burn::nn::Linear;
 use burn::optim::{AdamConfig, ModuleOptimizer};
 use burn::tensor::{Device, Tensor, TensorData};
@@ -97,6 +97,8 @@ pub enum ModelError {
     },
     #[error("feature matrix has {len} values, not a multiple of the model's input width {width}")]
     FeatureWidth { len: usize, width: usize },
+    #[error("could not change the first layer for new inputs or scales: {0}")]
+    FirstLayer(String),
     #[error("row {row} has no target value; per-row losses need the target column")]
     MissingTarget { row: usize },
     #[error(
@@ -534,6 +536,128 @@ impl Model {
     }
 
     /// Predictions for stored rows (the target column is ignored).
+    /// A copy whose first layer also takes the category values added to
+    /// `vocabs` since this model's encoding was fixed: each new one-hot
+    /// input gets zero weights, so every prediction (old rows, and new
+    /// values, which were scored as "none of the known values") is exactly
+    /// unchanged, and the next warm cycle can learn the new values. Adam's
+    /// state of the first layer is reset (its moments have the old shape).
+    /// Returns the copy and how many inputs each column gained; the copy is
+    /// a plain clone when nothing was added.
+    ///
+    /// Not covered: a new class of a classification target (the output
+    /// layer keeps its classes; a cold candidate learns the new one).
+    pub fn widened(
+        &self,
+        vocabs: &crate::schema::Vocabularies,
+    ) -> Result<(Model, std::collections::BTreeMap<usize, usize>), ModelError> {
+        use crate::schema::InputEncoding;
+        let mut added = std::collections::BTreeMap::new();
+        let mut inserts = Vec::new();
+        let mut spec = self.spec.clone();
+        let mut at = 0;
+        for enc in &mut spec.inputs {
+            match enc {
+                InputEncoding::Number { .. } => at += 1,
+                InputEncoding::OneHot { column, width } => {
+                    let now = vocabs.get(column).map_or(0, |v| v.len());
+                    if now > *width {
+                        inserts.push((at + *width, now - *width));
+                        added.insert(*column, now - *width);
+                        *width = now;
+                    }
+                    at += *width;
+                }
+            }
+        }
+        if inserts.is_empty() {
+            return Ok((self.clone(), added));
+        }
+        let mut weights = self.net.weights();
+        let first = &mut weights[0];
+        // Positions are in the widened layout; inserting from left to right
+        // makes the matrix match that layout up to each next position.
+        for &(pos, count) in &inserts {
+            first.weight =
+                crate::refold::widen_inputs(&first.weight, first.inputs, first.outputs, pos, count)
+                    .map_err(|e| ModelError::FirstLayer(e.to_string()))?;
+            first.inputs += count;
+        }
+        Ok((self.with_first_layer(spec, &weights), added))
+    }
+
+    /// A copy whose standardisation of number inputs follows `stats` where
+    /// they moved past `threshold` (see `refold::should_refresh`), with the
+    /// change folded into the first layer so every row without missing
+    /// values gets the same prediction (to float rounding). A missing value
+    /// encodes as the mean, so for such rows it now means the new mean.
+    /// Returns the copy and the schema columns refreshed.
+    pub fn rescaled(
+        &self,
+        stats: &crate::schema::ColumnStats,
+        threshold: f64,
+    ) -> Result<(Model, Vec<usize>), ModelError> {
+        use crate::refold::{ScaleChange, refold_scalers, should_refresh};
+        use crate::schema::InputEncoding;
+        let mut spec = self.spec.clone();
+        let mut changes = Vec::new();
+        let mut columns = Vec::new();
+        let mut at = 0;
+        for enc in &mut spec.inputs {
+            match enc {
+                InputEncoding::Number { column, mean, std } => {
+                    if let Some(st) = stats.numbers.get(column).filter(|s| s.count >= 2) {
+                        let sd = st.std_dev();
+                        let new = (st.mean as f32, if sd > 1e-12 { sd as f32 } else { 1.0 });
+                        if threshold > 0.0 && should_refresh((*mean, *std), new, threshold as f32) {
+                            changes.push(ScaleChange {
+                                col: at,
+                                old: (*mean, *std),
+                                new,
+                            });
+                            columns.push(*column);
+                            (*mean, *std) = new;
+                        }
+                    }
+                    at += 1;
+                }
+                InputEncoding::OneHot { width, .. } => at += *width,
+            }
+        }
+        if changes.is_empty() {
+            return Ok((self.clone(), columns));
+        }
+        let mut weights = self.net.weights();
+        let first = &mut weights[0];
+        refold_scalers(
+            &mut first.weight,
+            &mut first.bias,
+            first.inputs,
+            first.outputs,
+            &changes,
+        )
+        .map_err(|e| ModelError::FirstLayer(e.to_string()))?;
+        Ok((self.with_first_layer(spec, &weights), columns))
+    }
+
+    /// The same model with a new encoding and first layer; Adam's state of
+    /// the first layer is reset (its moments belong to the old inputs).
+    fn with_first_layer(&self, spec: FeatureSpec, weights: &[LayerWeights]) -> Model {
+        let reset = ParamGroup::ids_from_module(self.net.layers[0].clone());
+        let optimizer = self
+            .optimizer
+            .clone()
+            .with_group(reset, AdamConfig::new().build(), None);
+        Model::from_parts(
+            spec,
+            self.config.clone(),
+            self.target,
+            self.backend,
+            weights,
+            optimizer,
+        )
+    }
+
     pub fn predict(&self, rows: &RowMatrix, backend: Backend) -> Result<Predictions, ModelError> {
         self.predict_features(&self.spec.encode_inputs(rows), backend)
     }

@@ -441,3 +441,142 @@ fn empty_shapes_are_refused() {
     );
     assert!(matches!(err, Err(ModelError::Shape { outputs: 0, .. })));
 }
+
+/// A spec of one number column (0) and one category column (1) with
+/// `width` known values; the target is column 2.
+fn mixed_spec(width: usize) -> FeatureSpec {
+    FeatureSpec {
+        inputs: vec![
+            crate::schema::InputEncoding::Number {
+                column: 0,
+                mean: 1.0,
+                std: 2.0,
+            },
+            crate::schema::InputEncoding::OneHot { column: 1, width },
+            crate::schema::InputEncoding::Number {
+                column: 3,
+                mean: 0.0,
+                std: 1.0,
+            },
+        ],
+        target: 2,
+        task: Task::Regression,
+        outputs: 1,
+    }
+}
+
+fn mixed_rows(codes: &[u32]) -> RowMatrix {
+    let cells = codes
+        .iter()
+        .enumerate()
+        .flat_map(|(i, &c)| {
+            [
+                number_cell(Some(i as f32 * 0.37 - 2.0)),
+                c,
+                number_cell(Some(i as f32)),
+                number_cell(Some(1.5 - i as f32 * 0.11)),
+            ]
+        })
+        .collect();
+    RowMatrix::from_cells(4, cells)
+}
+
+#[test]
+fn widening_for_new_categories_keeps_every_prediction_and_trains_on() {
+    let cfg = config(vec![16, 8], Activation::Tanh, 0.5);
+    let model = Model::new(mixed_spec(3), &cfg, TargetScale::IDENTITY, Backend::Flex, 7).unwrap();
+    let mut vocabs = Vocabularies::new();
+    vocabs.insert(
+        1,
+        Vocab::from_values(["a", "b", "c", "d", "e"].map(String::from).to_vec()),
+    );
+    let (wide, added) = model.widened(&vocabs).unwrap();
+    assert_eq!(added.get(&1), Some(&2));
+    assert_eq!(wide.spec().width(), model.spec().width() + 2);
+    // Known values and the two new ones (scored as "none" before) alike.
+    let rows = mixed_rows(&[0, 1, 2, 3, 4, 0, 2, 4]);
+    let before = model
+        .raw_outputs(&model.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    let after = wide
+        .raw_outputs(&wide.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    assert_eq!(before, after, "zero weights for new inputs change nothing");
+    // Nothing new: the same model back.
+    let (same, none) = wide.widened(&vocabs).unwrap();
+    assert!(none.is_empty());
+    assert_eq!(same.spec(), wide.spec());
+    // The widened model trains on (Adam's state of the first layer was
+    // reset to the new shape) and learns something about a new value.
+    let cfg_train = crate::config::TrainingConfig {
+        warm_epochs: 3,
+        patience: 0,
+        ..crate::config::TrainingConfig::default()
+    };
+    let new_rows = mixed_rows(&[3, 4, 3, 4, 3, 4, 3, 4, 3, 4, 3, 4]);
+    let old_rows = mixed_rows(&[0, 1, 2, 0, 1, 2]);
+    let trained = crate::train::train_warm(
+        &wide,
+        &cfg_train,
+        &new_rows,
+        &old_rows,
+        crate::train::Control::default(),
+    )
+    .unwrap();
+    let w = trained.model.weights();
+    let width = wide.spec().width();
+    assert_eq!(w[0].inputs, width);
+    // Rows of inputs 4 and 5 (values "d" and "e") are no longer all zero.
+    let moved = (4..6).any(|r| {
+        w[0].weight[r * w[0].outputs..(r + 1) * w[0].outputs]
+            .iter()
+            .any(|v| *v != 0.0)
+    });
+    assert!(moved, "the new inputs' weights were trained");
+}
+
+#[test]
+fn rescaling_folds_new_standardisation_into_the_first_layer() {
+    let cfg = config(vec![16, 8], Activation::Tanh, 0.5);
+    let model = Model::new(
+        mixed_spec(3),
+        &cfg,
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        11,
+    )
+    .unwrap();
+    let rows = mixed_rows(&[0, 1, 2, 0, 1, 2, 0, 1]);
+    // Column 0 was standardised with (1, 2); the store now says (5, 4):
+    // mean moved 2 old stds, past a threshold of 0.5. Column 3 barely moved.
+    let mut stats = crate::schema::ColumnStats::default();
+    let mut st0 = crate::schema::RunningStats::default();
+    for v in [1.0, 9.0, 1.0, 9.0, 5.0 + 8f64.sqrt(), 5.0 - 8f64.sqrt()] {
+        st0.push(v);
+    }
+    stats.numbers.insert(0, st0);
+    let mut st3 = crate::schema::RunningStats::default();
+    for v in [-1.01, 1.01] {
+        st3.push(v);
+    }
+    stats.numbers.insert(3, st3);
+    let (moved, columns) = model.rescaled(&stats, 0.5).unwrap();
+    assert_eq!(columns, vec![0]);
+    let crate::schema::InputEncoding::Number { mean, std, .. } = moved.spec().inputs[0] else {
+        panic!("column 0 is a number");
+    };
+    assert!(
+        (f64::from(mean) - st0.mean).abs() < 1e-5 && (f64::from(std) - st0.std_dev()).abs() < 1e-5
+    );
+    let before = model
+        .raw_outputs(&model.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    let after = moved
+        .raw_outputs(&moved.spec().encode_inputs(&rows), Backend::Flex)
+        .unwrap();
+    for (a, b) in before.iter().zip(&after) {
+        assert!((a - b).abs() <= 1e-5 * (1.0 + a.abs()), "{a} vs {b}");
+    }
+    // Threshold 0 never refreshes.
+    assert!(model.rescaled(&stats, 0.0).unwrap().1.is_empty());
+}

@@ -185,12 +185,73 @@ const BAD: &[(&str, u64, Option<&str>, &str)] = &[
         "over the limit of 4096 bytes (data.max_file_bytes)",
     ),
     ("many-bad-rows.csv", 2, Some("temp"), "not a number"),
+    ("bom-only.csv", 0, None, "no header line"),
+    (
+        "deep-quotes.csv",
+        2,
+        Some("city"),
+        "over the limit of 64 (data.max_field_bytes)",
+    ),
+    ("empty-header-name.csv", 1, None, "missing column(s): city"),
+    ("header-case.csv", 1, None, "unknown column(s): ID, Y"),
+    (
+        "header-field-too-long.csv",
+        1,
+        None,
+        "expected these columns (any order)",
+    ),
+    ("hex-float.csv", 2, Some("temp"), "not a number"),
+    (
+        "huge-exponent.csv",
+        2,
+        Some("y"),
+        "NaN and infinity are not accepted",
+    ),
+    (
+        "missing-target.csv",
+        3,
+        Some("y"),
+        "empty field in a required column",
+    ),
+    ("number-with-unit.csv", 2, Some("temp"), "not a number"),
+    (
+        "row-of-commas.csv",
+        2,
+        Some("id"),
+        "empty field in a required column",
+    ),
+    (
+        "semicolon-separated.csv",
+        1,
+        None,
+        "unknown column(s): id;city;temp;flag;y",
+    ),
+    ("tab-separated.csv", 1, None, "missing column(s): id, city"),
+    (
+        "thousands-separator.csv",
+        2,
+        None,
+        "has 6 fields but the header has 5",
+    ),
+    (
+        "trailing-comma.csv",
+        3,
+        None,
+        "has 6 fields but the header has 5",
+    ),
+    (
+        "truncated-multibyte.csv",
+        3,
+        None,
+        "has 2 fields but the header has 5",
+    ),
+    ("whitespace-only.csv", 1, None, "missing column(s): id"),
 ];
 
 #[test]
 fn malformed_files_are_refused_whole_with_reasons() {
     let env = small();
-    assert!(BAD.len() >= 20);
+    assert!(BAD.len() >= 40);
     let listed: std::collections::BTreeSet<String> = fs::read_dir(data("bad"))
         .unwrap()
         .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
@@ -527,4 +588,25 @@ fn broken_pipe_is_success() {
     drop(child.stdout.take());
     let status = child.wait().unwrap();
     assert_eq!(status.code(), Some(0));
+}
+
+#[test]
+fn a_file_over_the_size_limit_is_refused_unread_even_at_two_gigabytes() {
+    // A sparse 2 GiB file costs no disk; it must be refused by its size
+    // alone, before a byte is read (the demo config allows 256 MiB).
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    let big = env.dir.path().join("huge.csv");
+    let f = fs::File::create(&big).unwrap();
+    f.set_len(2 << 30).unwrap();
+    drop(f);
+    let started = std::time::Instant::now();
+    let out = env.ingest(std::slice::from_ref(&big));
+    assert_eq!(code(&out), 65, "{}", stderr(&out));
+    assert!(stdout(&out).contains("max_file_bytes"), "{}", stdout(&out));
+    assert!(started.elapsed().as_secs() < 10, "refused without reading");
+    assert_eq!(env.status_json()["summary"]["rows"], 0);
+    assert!(
+        !env.state().join("rejected/huge.csv").exists(),
+        "an oversized file is not copied"
+    );
 }

@@ -66,14 +66,22 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     assert_eq!(r["baseline"], "m000001");
     assert_eq!(r["candidates"][0]["run"], "warm");
     assert_eq!(r["new_batches"], serde_json::json!([5, 6]));
+    // The warm parent took the values nights 6 and 7 brought: Saturday,
+    // Sunday and the new shop (demo-data/README.md).
+    let trained = env.log_json(&["--kind", "candidate-trained"]);
+    assert_eq!(
+        trained.last().unwrap()["widened"],
+        serde_json::json!({"weekday": 2, "shop": 1})
+    );
     let decided = r["outcome"].as_str().unwrap();
     assert!(decided == "promote" || decided == "keep", "{r}");
     let log = kinds(&env);
     assert_eq!(
-        &log[log.len() - 3..],
+        &log[log.len() - 4..],
         &[
             "cycle-started".to_string(),
             "candidate-trained".to_string(),
+            "baselines-scored".to_string(),
             if decided == "promote" {
                 "promoted".into()
             } else {
@@ -86,6 +94,8 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     assert_eq!(promoted.len(), 1);
     assert_eq!(promoted[0]["evidence"]["baseline"], "trivial");
     assert!(promoted[0]["evidence"]["p"].as_f64().unwrap() < 0.05);
+    // The rank test agrees on this clear win.
+    assert!(promoted[0]["evidence"]["wilcoxon_p"].as_f64().unwrap() < 0.05);
     let out = env.run(&["verify"]);
     assert_eq!(code(&out), 0, "{}", stdout(&out));
     assert!(stdout(&out).contains("2 checkpoints"), "{}", stdout(&out));
@@ -305,8 +315,11 @@ fn a_warm_cycle_in_a_new_process_continues_the_checkpoint_exactly() {
         .store
         .rows(Split::Train, Some(BatchId(4)), None)
         .unwrap();
+    // As the cycle does: widened for the weekday night 4 brought.
+    let (parent_model, added) = parent.model.widened(owner.store.vocabularies()).unwrap();
+    assert_eq!(added.len(), 1, "Thursday is new on night 4");
     let here = train_warm(
-        &parent.model,
+        &parent_model,
         &config.training,
         &new,
         &older,
@@ -469,4 +482,225 @@ fn manual_rollback_and_the_model_list() {
     let out = env.run(&["models"]);
     assert!(stdout(&out).contains("m000001 *"), "{}", stdout(&out));
     assert_eq!(code(&env.run(&["verify"])), 0);
+}
+
+#[test]
+fn every_cycle_scores_ridge_and_the_log_models_and_status_compare_with_it() {
+    let env = demo_with(&["01", "02", "03", "04"]);
+    let r = retrain(&env, &[]);
+    let ridge = r["ridge_loss"].as_f64().expect("ridge fitted");
+    let trivial = r["trivial_loss"].as_f64().unwrap();
+    let network = r["candidates"][0]["holdout_loss"].as_f64().unwrap();
+    // Ridge on the encoded inputs is far better than the mean, and the
+    // network better still on this data (shop × bread effects and lags).
+    assert!(ridge < trivial / 2.0, "ridge {ridge} vs trivial {trivial}");
+    assert!(network < ridge, "network {network} vs ridge {ridge}");
+    let b = env.log_json(&["--kind", "baselines-scored"]);
+    assert_eq!(b.len(), 1);
+    assert_eq!(b[0]["ridge_loss"].as_f64(), Some(ridge));
+    assert_eq!(b[0]["holdout_rows"], r["holdout_rows"]);
+    let models: Vec<serde_json::Value> = stdout(&env.run(&["--json", "models"]))
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(models[0]["ridge_loss"].as_f64(), Some(ridge));
+    assert_eq!(models[0]["beats_ridge"], true);
+    let vs = &env.status_json()["summary"]["versus_ridge"];
+    assert_eq!(vs["model"], 1);
+    assert_eq!(vs["beats_ridge"], true);
+    assert!(!stdout(&env.run(&["status"])).contains("does not beat the ridge"));
+}
+
+/// The fresh-data check of each accepted batch, as logged.
+fn fresh_checks(env: &Env) -> Vec<serde_json::Value> {
+    env.log_json(&["--kind", "fresh-checked"])
+        .into_iter()
+        .map(|e| e["check"].clone())
+        .collect()
+}
+
+#[test]
+fn the_demand_shift_night_is_flagged_by_the_fresh_data_check() {
+    // Night 10 is the first with Corrin's demand 45% higher (demo-data/README.md).
+    let env = demo_with(&["01", "02", "03", "04"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    assert_eq!(code(&env.ingest(&[night("09"), night("10")])), 0);
+    let checks = fresh_checks(&env);
+    assert_eq!(checks.len(), 2);
+    let (before, shift) = (&checks[0], &checks[1]);
+    assert_eq!(before["verdict"], "steady", "{before}");
+    assert_eq!(shift["verdict"], "shifted", "{shift}");
+    assert!(shift["p_shift"].as_f64().unwrap() < 0.05);
+    assert!(
+        shift["mean_loss_serving"].as_f64().unwrap()
+            > shift["mean_loss_reference"].as_f64().unwrap()
+    );
+    // Where it went wrong: the shops of the town whose demand moved.
+    let spots = shift["hotspots"].as_array().unwrap();
+    assert_eq!(spots.len(), 3, "{shift}");
+    for h in spots {
+        assert_eq!(h["column"], "shop");
+        assert!(h["value"].as_str().unwrap().starts_with("Corrin "), "{h}");
+    }
+    // The first model replaced nothing, so nothing is rolled back.
+    assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
+    let status = stdout(&env.run(&["status"]));
+    assert!(status.contains("WARNING"), "{status}");
+    assert!(status.contains("shop = Corrin"), "{status}");
+    // A cycle answers the warning; status stops repeating it.
+    retrain(&env, &[]);
+    assert!(env.status_json()["summary"]["fresh_check"].is_null());
+}
+
+/// Night `n` with every `loaves_sold` scaled by 1.3: a short festival
+/// (test data derived from the invented demo).
+fn festival_night(env: &Env, n: &str) -> PathBuf {
+    let text = fs::read_to_string(night(n)).unwrap();
+    let mut lines = text.lines();
+    let header = lines.next().unwrap();
+    let target = header.split(',').position(|c| c == "loaves_sold").unwrap();
+    let mut out = format!("{header}\n");
+    for line in lines {
+        let mut fields: Vec<String> = line.split(',').map(String::from).collect();
+        let v: f64 = fields[target].parse().unwrap();
+        fields[target] = format!("{}", (v * 1.3).round());
+        out.push_str(&fields.join(","));
+        out.push('\n');
+    }
+    let path = env.dir.path().join(format!("festival-{n}.csv"));
+    fs::write(&path, out).unwrap();
+    path
+}
+
+/// Nights 1–4, then two festival nights; the warm model trained on them
+/// passes the gate (it is far better on the festival rows and not
+/// significantly worse on the older ones) and serves.
+fn festival_promoted(env: &Env, approve: bool) {
+    let files: Vec<PathBuf> = ["01", "02", "03", "04"].iter().map(|n| night(n)).collect();
+    assert_eq!(code(&env.ingest(&files)), 0);
+    let winner = if approve { "await-approval" } else { "promote" };
+    assert_eq!(retrain(env, &[])["outcome"], winner);
+    if approve {
+        assert_eq!(
+            code(&env.run(&["approve", "m000001", "--reason", "first"])),
+            0
+        );
+    }
+    let fest = [festival_night(env, "08"), festival_night(env, "09")];
+    assert_eq!(code(&env.ingest(&fest)), 0);
+    assert_eq!(retrain(env, &[])["outcome"], winner);
+    if approve {
+        assert_eq!(
+            code(&env.run(&["approve", "m000002", "--reason", "festival"])),
+            0
+        );
+    }
+}
+
+#[test]
+fn a_model_that_does_worse_on_fresh_rows_is_rolled_back_automatically() {
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    festival_promoted(&env, false);
+    // Back to normal: the first night is not yet conclusive, the second is.
+    assert_eq!(code(&env.ingest(&[night("10")])), 0);
+    assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
+    let out = env.run(&["--json", "ingest", night("11").to_str().unwrap()]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let answer: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    assert_eq!(answer["fresh_check"]["verdict"], "regressed", "{answer}");
+    assert_eq!(answer["rolled_back"], true);
+    let rb = env.log_json(&["--kind", "rolled-back"]);
+    assert_eq!(rb.len(), 1);
+    assert_eq!(
+        (rb[0]["from"].as_u64(), rb[0]["to"].as_u64()),
+        (Some(2), Some(1))
+    );
+    assert_eq!(rb[0]["how"], "automatic");
+    let ev = &rb[0]["evidence"];
+    assert_eq!(ev["previous"], 1);
+    assert!(ev["p_regression"].as_f64().unwrap() < 0.05, "{ev}");
+    assert!(ev["mean_loss_serving"].as_f64().unwrap() > ev["mean_loss_previous"].as_f64().unwrap());
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000001\n"
+    );
+    // m000001 now serves by a rollback: the next batch has nothing to
+    // compare it with, so there is no flip back.
+    assert_eq!(code(&env.ingest(&[night("12")])), 0);
+    let last = fresh_checks(&env).pop().unwrap();
+    assert_eq!(last["serving"], 1);
+    assert!(last["previous"].is_null(), "{last}");
+    assert_eq!(env.log_json(&["--kind", "rolled-back"]).len(), 1);
+    assert_eq!(code(&env.run(&["verify"])), 0);
+}
+
+#[test]
+fn in_approval_mode_a_regression_is_reported_not_acted_on() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("approval.toml");
+    let text = fs::read_to_string(repo("demo-data/tidegate.toml"))
+        .unwrap()
+        .replace("require_approval = false", "require_approval = true");
+    fs::write(&cfg, text).unwrap();
+    let env = Env::new(&cfg);
+    festival_promoted(&env, true);
+    assert_eq!(code(&env.ingest(&[night("10"), night("11")])), 0);
+    let last = fresh_checks(&env).pop().unwrap();
+    assert_eq!(last["verdict"], "regressed", "{last}");
+    assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
+    assert_eq!(
+        fs::read_to_string(env.state().join("serving")).unwrap(),
+        "m000002\n"
+    );
+    let status = stdout(&env.run(&["status"]));
+    assert!(
+        status.contains("WARNING") && status.contains("regressed"),
+        "{status}"
+    );
+}
+
+#[test]
+fn every_accepted_batch_carries_a_drift_report() {
+    let env = demo_with(&["01", "02"]);
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    assert!(
+        accepted[0]["drift"].is_null(),
+        "nothing to compare the first with"
+    );
+    let d = &accepted[1]["drift"];
+    let col = |name: &str| {
+        d["columns"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["column"] == name)
+            .unwrap_or_else(|| panic!("{name} in {d}"))
+            .clone()
+    };
+    // Night 2 is a Tuesday after a Monday: every row has an unseen weekday.
+    let weekday = col("weekday");
+    assert_eq!(weekday["unseen_share"].as_f64(), Some(1.0));
+    assert_eq!(weekday["flagged"], true);
+    // The same shops upload every night.
+    assert_eq!(col("shop")["flagged"], false);
+    assert_eq!(col("shop")["unseen_share"].as_f64(), Some(0.0));
+    // KS critical value: c(0.01)·sqrt((n+m)/(n·m)) with c(0.01) = 1.62762
+    // (two-sample Kolmogorov–Smirnov critical value formula; CHECKS.md).
+    let temp = col("temp_c");
+    let (n, m) = (
+        d["reference_rows"].as_f64().unwrap(),
+        accepted[1]["rows"].as_f64().unwrap(),
+    );
+    let want = 1.62762 * ((n + m) / (n * m)).sqrt();
+    assert!(
+        (temp["critical"].as_f64().unwrap() - want).abs() < 1e-4,
+        "{temp}"
+    );
+    assert_eq!(col("loaves_sold")["target"], true);
+    // status names the flagged columns of the last batch.
+    let status = stdout(&env.run(&["status"]));
+    assert!(
+        status.contains("drift") && status.contains("weekday"),
+        "{status}"
+    );
 }

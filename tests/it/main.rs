@@ -1,8 +1,10 @@
 //! The integration suite: one test binary (so the build stays fast) that
 //! drives the real library and the real `tidegate` binary on temp dirs.
 
+mod backup;
 mod crash;
 mod daemon;
+mod demo;
 mod ingest;
 mod lifecycle;
 mod support;

@@ -1,0 +1,82 @@
+//! `tidegate demo` through the real binary: the whole story in one run.
+
+use crate::support::{code, stderr, stdout};
+
+#[test]
+fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
+    let dir = tempfile::tempdir().unwrap();
+    let state = dir.path().join("demo-state");
+    let bin = env!("CARGO_BIN_EXE_tidegate");
+    let out = std::process::Command::new(bin)
+        .args(["--json", "demo", "--into"])
+        .arg(&state)
+        .env("USER", "tester")
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    let nights = v["nights"].as_array().unwrap();
+    assert_eq!(nights.len(), 13, "twelve nights and one resent file");
+    let has = |field: &str, pat: &str| {
+        nights
+            .iter()
+            .any(|n| n[field].as_str().unwrap_or("").contains(pat))
+    };
+    assert!(has("decision", "promote"), "{v}");
+    assert!(has("decision", "keep"), "{v}");
+    assert!(has("intake", "refused"), "{v}");
+    assert!(has("intake", "duplicate of"), "{v}");
+    assert!(has("intake", "new shop"), "{v}");
+    assert!(has("fresh_check", "shifted"), "{v}");
+    let automatic = has("fresh_check", "rolled back");
+    assert!(
+        automatic || !v["rollback"].is_null(),
+        "a rollback of either kind: {v}"
+    );
+    // The budget is one minute on 2 cores after the build.
+    assert!(v["seconds"].as_f64().unwrap() < 60.0, "{v}");
+    let verify = std::process::Command::new(bin)
+        .arg("--state")
+        .arg(&state)
+        .arg("verify")
+        .output()
+        .unwrap();
+    assert_eq!(code(&verify), 0, "{}", stdout(&verify));
+    let rb = std::process::Command::new(bin)
+        .arg("--state")
+        .arg(&state)
+        .args(["--json", "log", "--kind", "rolled-back"])
+        .output()
+        .unwrap();
+    assert!(!stdout(&rb).trim().is_empty(), "the rollback is in the log");
+}
+
+#[test]
+fn completions_are_printed_for_each_shell() {
+    let bin = env!("CARGO_BIN_EXE_tidegate");
+    for (shell, marker) in [
+        ("bash", "complete -F"),
+        ("zsh", "#compdef tidegate"),
+        ("fish", "complete -c tidegate"),
+    ] {
+        let out = std::process::Command::new(bin)
+            .args(["completions", shell])
+            .output()
+            .unwrap();
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        let text = stdout(&out);
+        assert!(
+            text.contains(marker),
+            "{shell}: {}",
+            &text[..text.len().min(200)]
+        );
+        for sub in ["ingest", "retrain", "rollback", "demo"] {
+            assert!(text.contains(sub), "{shell} script lacks {sub}");
+        }
+    }
+    let out = std::process::Command::new(bin)
+        .args(["completions", "tcsh"])
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 2, "an unknown shell is a usage error");
+}
