@@ -23,6 +23,7 @@ use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
 
+pub(crate) use backup::render_backup;
 pub(crate) use ingest::take_files as ingest_files;
 pub(crate) use retrain::render as render_cycle;
 pub(crate) use verify::render as render_verify;

@@ -471,6 +471,31 @@ impl<C: Clock> Daemon<C> {
                 json,
                 &mut fatal,
             ),
+            Request::Backup { out } => match crate::backup::backup(owner, &out, &user) {
+                Ok(m) => match cli::render_backup(&m, &out, json) {
+                    Ok(stdout) => Answer {
+                        stdout,
+                        ..Answer::default()
+                    },
+                    Err(e) => Answer::failed(Exit::Failure as u8, format!("{e:#}")),
+                },
+                Err(e) => {
+                    // The destination's problems are the command's; the
+                    // store's are the machine's.
+                    let machine = match &e {
+                        crate::backup::BackupError::Refused { .. }
+                        | crate::backup::BackupError::Verify(_) => false,
+                        crate::backup::BackupError::Io { path, .. } => !path.starts_with(&out),
+                        _ => true,
+                    };
+                    let e = anyhow::Error::from(e);
+                    let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                    if machine {
+                        fatal = Some(e);
+                    }
+                    answer
+                }
+            },
             Request::Verify => match crate::verify::check(owner) {
                 Ok(result) => {
                     let (stdout, exit) = cli::render_verify(&result, json);

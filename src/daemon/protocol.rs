@@ -55,6 +55,10 @@ pub enum Request {
     /// Check the audit chain, the store, the archive and the checkpoints
     /// (it needs the open store, which the daemon holds).
     Verify,
+    /// Write a consistent copy of the state dir to `out` (an absolute path).
+    Backup {
+        out: PathBuf,
+    },
 }
 
 impl Request {
@@ -68,6 +72,7 @@ impl Request {
             Request::Approve { .. } => "approve",
             Request::Decline { .. } => "decline",
             Request::Verify => "verify",
+            Request::Backup { .. } => "backup",
         }
     }
 }

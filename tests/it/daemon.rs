@@ -293,6 +293,19 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
         let out = env.run(args);
         assert_eq!(code(&out), 0, "{args:?}: {}", stderr(&out));
     }
+    // A backup is written by the daemon, which holds the store.
+    let out = env.run(&[
+        "backup",
+        "--out",
+        env.dir.path().join("copy").to_str().unwrap(),
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(
+        stdout(&out).contains("backup written to"),
+        "{}",
+        stdout(&out)
+    );
+    assert!(env.dir.path().join("copy").is_dir());
     // The metrics endpoint (port chosen by the system, named in the log).
     let log = watch_log(&env);
     let addr = log
