@@ -117,6 +117,18 @@ pub enum Event {
     /// A cycle that started was cut short (crash, kill, cancel); the serving
     /// model was not changed by it.
     CycleAbandoned { cycle: u64 },
+    /// The config's columns changed and every stored row was rewritten for
+    /// the new schema; no model serves until a cold candidate is promoted.
+    SchemaMigrated {
+        from_fingerprint: String,
+        to_fingerprint: String,
+        added: Vec<String>,
+        removed: Vec<String>,
+        changed: Vec<String>,
+        previous_serving: Option<ModelId>,
+        config_hash: String,
+        reason: String,
+    },
     /// A consistent copy of the state dir was written to `out`.
     BackupMade {
         out: String,
@@ -263,6 +275,7 @@ impl Event {
             Event::CycleAbandoned { .. } => "cycle-abandoned",
             Event::FreshChecked { .. } => "fresh-checked",
             Event::BackupMade { .. } => "backup-made",
+            Event::SchemaMigrated { .. } => "schema-migrated",
             Event::Restored { .. } => "restored",
             Event::Promoted { .. } => "promoted",
             Event::Kept { .. } => "kept",
@@ -286,6 +299,7 @@ impl Event {
         "fresh-checked",
         "backup-made",
         "restored",
+        "schema-migrated",
         "promoted",
         "kept",
         "awaiting-approval",
@@ -448,6 +462,29 @@ impl Event {
                     s.push_str(&format!("; most excess loss in {}", list.join("; ")));
                 }
                 s
+            }
+            Event::SchemaMigrated {
+                added,
+                removed,
+                changed,
+                previous_serving,
+                reason,
+                ..
+            } => {
+                let list = |v: &Vec<String>| {
+                    if v.is_empty() {
+                        "none".to_string()
+                    } else {
+                        v.join(", ")
+                    }
+                };
+                format!(
+                    "schema migrated (added {}; removed {}; changed {}); {} no longer serves, a cold candidate comes next: {reason}",
+                    list(added),
+                    list(removed),
+                    list(changed),
+                    previous_serving.map_or_else(|| "no model".to_string(), |m| m.to_string())
+                )
             }
             Event::BackupMade { out, batches, rows } => {
                 format!("backup of {batches} batches ({rows} rows) written to {out}")

@@ -218,7 +218,7 @@ pub fn trivial_losses(
 
 /// Solves `A·X = B` for a symmetric positive definite `A` (`n × n`) and
 /// `k` right-hand sides by Cholesky; `None` if `A` is not positive definite.
-fn solve_spd(a: &[f64], b: &[f64], n: usize, k: usize) -> Option<Vec<f64>> {
+pub(crate) fn solve_spd(a: &[f64], b: &[f64], n: usize, k: usize) -> Option<Vec<f64>> {
     let mut l = vec![0.0; n * n];
     for j in 0..n {
         for i in 0..=j {

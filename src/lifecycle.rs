@@ -197,6 +197,29 @@ pub fn rollback_automatic(
     commit(owner, event, user, Some(to), false)
 }
 
+/// How `current` came to serve, from the log: the model serving before it,
+/// and whether it came back by a rollback (rather than a promotion or an
+/// approval).
+fn arrival(owner: &Owner, current: ModelId) -> Result<(Option<ModelId>, bool), DecisionError> {
+    let mut found = (None, false);
+    for (_, line) in owner.store.audit_entries()? {
+        let Ok(entry) = Entry::from_line(&line) else {
+            continue;
+        };
+        match entry.event {
+            Event::Promoted {
+                model, previous: p, ..
+            }
+            | Event::Approved {
+                model, previous: p, ..
+            } if model == current => found = (p, false),
+            Event::RolledBack { to, from, .. } if to == current => found = (Some(from), true),
+            _ => {}
+        }
+    }
+    Ok(found)
+}
+
 /// The model `current` replaced, when it came to serve by promotion or
 /// approval; `None` when it was the first or came back by a rollback (a
 /// person or the check already chose between the two).
@@ -204,42 +227,11 @@ pub fn replaced_by_promotion(
     owner: &Owner,
     current: ModelId,
 ) -> Result<Option<ModelId>, DecisionError> {
-    let mut previous = None;
-    for (_, line) in owner.store.audit_entries()? {
-        let Ok(entry) = Entry::from_line(&line) else {
-            continue;
-        };
-        match entry.event {
-            Event::Promoted {
-                model, previous: p, ..
-            }
-            | Event::Approved {
-                model, previous: p, ..
-            } if model == current => previous = p,
-            Event::RolledBack { to, .. } if to == current => previous = None,
-            _ => {}
-        }
-    }
-    Ok(previous)
+    let (previous, by_rollback) = arrival(owner, current)?;
+    Ok(previous.filter(|_| !by_rollback))
 }
 
-/// The model that served before `current` started serving, from the log.
+/// The model that served before `current` started serving.
 fn previous_of(owner: &Owner, current: ModelId) -> Result<Option<ModelId>, DecisionError> {
-    let mut previous = None;
-    for (_, line) in owner.store.audit_entries()? {
-        let Ok(entry) = Entry::from_line(&line) else {
-            continue;
-        };
-        match entry.event {
-            Event::Promoted {
-                model, previous: p, ..
-            }
-            | Event::Approved {
-                model, previous: p, ..
-            } if model == current => previous = p,
-            Event::RolledBack { to, from, .. } if to == current => previous = Some(from),
-            _ => {}
-        }
-    }
-    Ok(previous)
+    Ok(arrival(owner, current)?.0)
 }

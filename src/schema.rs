@@ -504,6 +504,118 @@ impl FeatureSpec {
     }
 }
 
+/// How stored rows map onto a changed schema: for each new column, the old
+/// column it comes from (`None`: added, stored rows get a missing value).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Migration {
+    pub from_old: Vec<Option<usize>>,
+    pub added: Vec<String>,
+    pub removed: Vec<String>,
+    /// Columns whose `required`, `min` or `max` changed.
+    pub changed: Vec<String>,
+}
+
+/// Checks that `new` can take the rows stored under `old` and says how.
+/// Allowed: adding optional columns, removing input columns, reordering,
+/// and changing `required`, `min` and `max`. Refused, with the reason: a
+/// changed target or task, a column whose kind changed, a new required
+/// column (stored rows have no value for it).
+pub fn plan_migration(old: &Schema, new: &Schema) -> Result<Migration, String> {
+    if old.task != new.task {
+        return Err(format!(
+            "the task changed ({} to {}); start a new state dir for a different task",
+            old.task, new.task
+        ));
+    }
+    let (old_target, new_target) = (&old.columns[old.target].name, &new.columns[new.target].name);
+    if old_target != new_target {
+        return Err(format!(
+            "the target changed ({old_target} to {new_target}); start a new state dir for a different target"
+        ));
+    }
+    let mut from_old = Vec::with_capacity(new.width());
+    let mut added = Vec::new();
+    let mut changed = Vec::new();
+    for col in &new.columns {
+        match old.index_of(&col.name) {
+            Some(i) => {
+                let was = &old.columns[i];
+                if was.kind != col.kind {
+                    return Err(format!(
+                        "column {} changed kind ({} to {}); stored values cannot be reread — \
+                         add a column under a new name instead",
+                        col.name, was.kind, col.kind
+                    ));
+                }
+                if was.required != col.required || was.min != col.min || was.max != col.max {
+                    changed.push(col.name.clone());
+                }
+                from_old.push(Some(i));
+            }
+            None => {
+                if col.required {
+                    return Err(format!(
+                        "new column {} must have required = false: the stored rows have no value for it",
+                        col.name
+                    ));
+                }
+                added.push(col.name.clone());
+                from_old.push(None);
+            }
+        }
+    }
+    let removed: Vec<String> = old
+        .columns
+        .iter()
+        .filter(|c| new.index_of(&c.name).is_none())
+        .map(|c| c.name.clone())
+        .collect();
+    Ok(Migration {
+        from_old,
+        added,
+        removed,
+        changed,
+    })
+}
+
+impl Migration {
+    /// Stored rows in the new layout.
+    pub fn rows(&self, old_rows: &RowMatrix, new: &Schema) -> RowMatrix {
+        let mut out = RowMatrix::with_capacity(new.width(), old_rows.n_rows());
+        let mut row = vec![0u32; new.width()];
+        for r in 0..old_rows.n_rows() {
+            let old = old_rows.row(r);
+            for (j, from) in self.from_old.iter().enumerate() {
+                row[j] = match from {
+                    Some(i) => old[*i],
+                    None => match new.columns[j].kind {
+                        ColumnKind::Number => number_cell(None),
+                        ColumnKind::Category => MISSING_CODE,
+                    },
+                };
+            }
+            out.push_row(&row);
+        }
+        out
+    }
+
+    /// Column statistics keyed by the new column indexes.
+    pub fn stats(&self, old: &ColumnStats) -> ColumnStats {
+        let mut out = ColumnStats::default();
+        for (j, from) in self.from_old.iter().enumerate() {
+            if let Some(i) = from {
+                if let Some(s) = old.numbers.get(i) {
+                    out.numbers.insert(j, *s);
+                }
+                if let Some(m) = old.missing.get(i) {
+                    out.missing.insert(j, *m);
+                }
+            }
+        }
+        out
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -633,5 +745,109 @@ mod tests {
         }
         assert_eq!(spec.encode_targets(&rows), vec![10.0, 20.0, 30.0]);
         assert_eq!(stats.missing.get(&0), Some(&1));
+    }
+
+    fn schema_of(cols: &[(&str, ColumnKind, bool)], target: &str) -> Schema {
+        let columns: Vec<Column> = cols
+            .iter()
+            .map(|(n, k, r)| Column {
+                name: n.to_string(),
+                kind: *k,
+                min: None,
+                max: None,
+                required: *r,
+            })
+            .collect();
+        let target = columns.iter().position(|c| c.name == target).unwrap();
+        Schema {
+            columns,
+            target,
+            task: Task::Regression,
+        }
+    }
+
+    #[test]
+    fn migration_maps_rows_by_column_name() {
+        use ColumnKind::{Category, Number};
+        let old = schema_of(
+            &[
+                ("a", Number, true),
+                ("shop", Category, true),
+                ("y", Number, true),
+            ],
+            "y",
+        );
+        // Reordered, `a` removed, `rain` (optional) added.
+        let new = schema_of(
+            &[
+                ("y", Number, true),
+                ("rain", Number, false),
+                ("shop", Category, true),
+            ],
+            "y",
+        );
+        let m = plan_migration(&old, &new).unwrap();
+        assert_eq!(m.from_old, vec![Some(2), None, Some(1)]);
+        assert_eq!(
+            (m.added.clone(), m.removed.clone()),
+            (vec!["rain".to_string()], vec!["a".to_string()])
+        );
+        let rows =
+            RowMatrix::from_cells(3, vec![number_cell(Some(1.5)), 7, number_cell(Some(9.0))]);
+        let moved = m.rows(&rows, &new);
+        assert_eq!(moved.number(0, 0), Some(9.0));
+        assert_eq!(moved.number(0, 1), None, "the new column is missing");
+        assert_eq!(moved.code(0, 2), Some(7));
+        let mut stats = ColumnStats::default();
+        stats.numbers.insert(
+            2,
+            RunningStats {
+                count: 1,
+                mean: 9.0,
+                ..RunningStats::default()
+            },
+        );
+        assert_eq!(m.stats(&stats).numbers.get(&0).map(|s| s.mean), Some(9.0));
+        // Refused changes say why.
+        let kind = schema_of(
+            &[
+                ("a", Category, true),
+                ("shop", Category, true),
+                ("y", Number, true),
+            ],
+            "y",
+        );
+        assert!(
+            plan_migration(&old, &kind)
+                .unwrap_err()
+                .contains("changed kind")
+        );
+        let required = schema_of(
+            &[
+                ("a", Number, true),
+                ("shop", Category, true),
+                ("rain", Number, true),
+                ("y", Number, true),
+            ],
+            "y",
+        );
+        assert!(
+            plan_migration(&old, &required)
+                .unwrap_err()
+                .contains("required = false")
+        );
+        let target = schema_of(
+            &[
+                ("a", Number, true),
+                ("shop", Category, true),
+                ("y", Number, true),
+            ],
+            "a",
+        );
+        assert!(
+            plan_migration(&old, &target)
+                .unwrap_err()
+                .contains("target changed")
+        );
     }
 }

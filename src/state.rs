@@ -281,6 +281,10 @@ fn open_with(
                 .map_err(io_at(&state.serving()))?;
             rec.serving_rewritten = true;
         }
+    } else if state.serving().exists() {
+        // Nothing serves (e.g. after a schema migration): no stale mirror.
+        fs::remove_file(state.serving()).map_err(io_at(&state.serving()))?;
+        rec.serving_rewritten = true;
     }
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;

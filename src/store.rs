@@ -200,11 +200,7 @@ impl Store {
             path: path.to_path_buf(),
             source: e,
         };
-        let db = sled::Config::new()
-            .path(path)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(sl)?;
+        let db = open_sled(path).map_err(sl)?;
         let tree = |name: &str| db.open_tree(name).map_err(sl);
         Ok(Store {
             path: path.to_path_buf(),
@@ -606,6 +602,117 @@ impl Store {
         Ok((record, entry))
     }
 
+    /// Rewrites every stored row, vocabulary and column statistic for a new
+    /// schema (see `schema::plan_migration`), in one transaction with the
+    /// audit entry `event`; the serving pointer is cleared (checkpoints
+    /// belong to the old schema). Chunks are re-cut for the new row width.
+    pub fn migrate(
+        &mut self,
+        new_schema: &Schema,
+        new_fingerprint: &str,
+        plan: &crate::schema::Migration,
+        event: Event,
+        user: &str,
+        time: chrono::DateTime<chrono::Utc>,
+    ) -> Result<Entry, StoreError> {
+        let entry = self.seal(event, user, time);
+        let mut old_keys = Vec::new();
+        for kv in self.chunks.iter() {
+            old_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
+        }
+        let mut chunk_values: Vec<(Vec<u8>, Vec<u8>)> = Vec::new();
+        let mut records = Vec::new();
+        for rec in self.batches()? {
+            for split in [Split::Train, Split::Holdout] {
+                let moved = plan.rows(&self.rows(split, Some(rec.id), Some(rec.id))?, new_schema);
+                let width = new_schema.width();
+                let per_chunk = (CHUNK_CELLS / width).max(1) * width;
+                for (i, cells) in moved.cells().chunks(per_chunk).enumerate() {
+                    let mut key = Vec::with_capacity(13);
+                    key.extend_from_slice(&rec.id.key());
+                    key.push(split.byte());
+                    key.extend_from_slice(
+                        &u32::try_from(i)
+                            .expect("fewer than 2^32 chunks")
+                            .to_be_bytes(),
+                    );
+                    let val: Vec<u8> = cells.iter().flat_map(|c| c.to_le_bytes()).collect();
+                    chunk_values.push((key, val));
+                }
+            }
+            let mut rec = rec;
+            rec.train_stats = plan.stats(&rec.train_stats);
+            records.push(rec);
+        }
+        let mut old_vocab_keys = Vec::new();
+        for kv in self.vocab.iter() {
+            old_vocab_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
+        }
+        let mut vocab_values: Vec<([u8; 8], Vec<u8>)> = Vec::new();
+        for (j, from) in plan.from_old.iter().enumerate() {
+            let Some(v) = from.and_then(|i| self.vocabs.get(&i)) else {
+                continue;
+            };
+            for (code, value) in v.values().iter().enumerate() {
+                let mut key = [0u8; 8];
+                key[..4].copy_from_slice(&u32::try_from(j).expect("column index").to_be_bytes());
+                key[4..].copy_from_slice(&u32::try_from(code).expect("code").to_be_bytes());
+                vocab_values.push((key, value.as_bytes().to_vec()));
+            }
+        }
+        let totals = Totals {
+            train_stats: plan.stats(&self.totals.train_stats),
+            ..self.totals.clone()
+        };
+        let totals_json = json(&totals);
+        let schema_json = json(new_schema);
+        let line = entry.line().into_bytes();
+        let result: Result<(), TransactionError<StoreError>> = (
+            &self.meta,
+            &self.batches,
+            &self.chunks,
+            &self.vocab,
+            &self.audit,
+        )
+            .transaction(
+                |(meta, batches, chunks, vocab, audit): &(
+                    TransactionalTree,
+                    TransactionalTree,
+                    TransactionalTree,
+                    TransactionalTree,
+                    TransactionalTree,
+                )| {
+                    for k in &old_keys {
+                        chunks.remove(k.as_slice())?;
+                    }
+                    for (k, v) in &chunk_values {
+                        chunks.insert(k.as_slice(), v.as_slice())?;
+                    }
+                    for k in &old_vocab_keys {
+                        vocab.remove(k.as_slice())?;
+                    }
+                    for (k, v) in &vocab_values {
+                        vocab.insert(&k[..], v.as_slice())?;
+                    }
+                    for rec in &records {
+                        batches.insert(&rec.id.key()[..], json(rec).as_slice())?;
+                    }
+                    meta.insert(META_TOTALS, totals_json.as_slice())?;
+                    meta.insert(META_SCHEMA, schema_json.as_slice())?;
+                    meta.insert(META_FINGERPRINT, new_fingerprint.as_bytes())?;
+                    meta.remove(META_SERVING)?;
+                    meta.remove(&b"pending"[..])?;
+                    audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                    Ok(())
+                },
+            );
+        self.settle(result)?;
+        self.schema = new_schema.clone();
+        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        self.load_state()?;
+        Ok(entry)
+    }
+
     /// Writes a logically identical copy of every tree to a new store at
     /// `dest` (which must not exist) and makes it durable: a consistent
     /// copy while this store stays open, independent of sled's file layout.
@@ -621,11 +728,7 @@ impl Store {
             path: dest.to_path_buf(),
             source: e,
         };
-        let copy = sled::Config::new()
-            .path(dest)
-            .mode(sled::Mode::HighThroughput)
-            .open()
-            .map_err(sl)?;
+        let copy = open_sled(dest).map_err(sl)?;
         let mut pairs = 0;
         for (name, tree) in [
             ("meta", &self.meta),
@@ -664,6 +767,14 @@ impl Store {
         })?;
         Ok(())
     }
+}
+
+/// The one place sled's settings are chosen.
+fn open_sled(path: &Path) -> sled::Result<sled::Db> {
+    sled::Config::new()
+        .path(path)
+        .mode(sled::Mode::HighThroughput)
+        .open()
 }
 
 /// sled 0.34.7 writes a snapshot to `snap.<lsn>.generating`, fsyncs it and

@@ -567,37 +567,7 @@ pub fn least_squares(x: &[f64], y: &[f64], width: usize, lambda: f64) -> Option<
             a[l * width + j] = a[j * width + l];
         }
     }
-    // Cholesky: a = L·Lᵀ.
-    let mut lo = vec![0.0; width * width];
-    for j in 0..width {
-        for l in 0..=j {
-            let mut s = a[j * width + l];
-            for m in 0..l {
-                s -= lo[j * width + m] * lo[l * width + m];
-            }
-            if j == l {
-                if s <= 0.0 {
-                    return None;
-                }
-                lo[j * width + j] = s.sqrt();
-            } else {
-                lo[j * width + l] = s / lo[l * width + l];
-            }
-        }
-    }
-    let mut z = vec![0.0; width];
-    for j in 0..width {
-        let s = b[j] - (0..j).map(|m| lo[j * width + m] * z[m]).sum::<f64>();
-        z[j] = s / lo[j * width + j];
-    }
-    let mut beta = vec![0.0; width];
-    for j in (0..width).rev() {
-        let s = z[j]
-            - (j + 1..width)
-                .map(|m| lo[m * width + j] * beta[m])
-                .sum::<f64>();
-        beta[j] = s / lo[j * width + j];
-    }
+    let beta = crate::baseline::solve_spd(&a, &b, width, 1)?;
     let intercept = mean_y - beta.iter().zip(&mean_x).map(|(b, m)| b * m).sum::<f64>();
     let mut out = vec![intercept];
     out.extend(beta);

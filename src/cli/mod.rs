@@ -10,6 +10,7 @@ mod demo;
 mod ingest;
 mod init;
 mod log;
+mod migrate;
 mod models;
 mod predict;
 mod retrain;
@@ -101,6 +102,8 @@ pub enum Command {
     Backup(backup::BackupArgs),
     /// Recreate a state dir (--state) from a backup, check it and verify it.
     Restore(backup::RestoreArgs),
+    /// Take a config whose columns changed (--config NEW.toml): rewrite the stored rows.
+    Migrate(migrate::Args),
     /// Run as the daemon: take inbox files, retrain as data arrives, answer the CLI.
     Watch(watch::Args),
 }
@@ -121,6 +124,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Log(a) => log::run(cli, &state, a),
         Command::Verify(a) => verify::run(cli, &state, a),
         Command::Backup(a) => backup::run_backup(cli, &state, a),
+        Command::Migrate(a) => migrate::run(cli, &state, a),
         Command::Restore(a) => backup::run_restore(cli, &state, a),
         Command::Predict(a) => predict::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),

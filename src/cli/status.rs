@@ -111,6 +111,10 @@ impl Summary {
                     s.last_decision = Some(e.event.summary());
                 }
                 Event::Declined { .. } => s.last_decision = Some(e.event.summary()),
+                Event::SchemaMigrated { .. } => {
+                    s.serving = None;
+                    s.last_decision = Some(e.event.summary());
+                }
                 Event::Promoted { model, .. } => {
                     s.serving = Some(*model);
                     s.last_decision = Some(e.event.summary());

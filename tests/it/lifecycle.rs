@@ -355,15 +355,20 @@ fn a_warm_cycle_in_a_new_process_continues_the_checkpoint_exactly() {
     );
 }
 
-#[test]
-fn approval_mode_waits_for_a_person() {
+/// A state dir on the demo config in approval mode.
+fn approval_env() -> Env {
     let dir = tempfile::tempdir().unwrap();
     let cfg = dir.path().join("approval.toml");
     let text = fs::read_to_string(repo("demo-data/tidegate.toml"))
         .unwrap()
         .replace("require_approval = false", "require_approval = true");
     fs::write(&cfg, text).unwrap();
-    let env = Env::new(&cfg);
+    Env::new(&cfg)
+}
+
+#[test]
+fn approval_mode_waits_for_a_person() {
+    let env = approval_env();
     assert_eq!(
         code(&env.ingest(&[night("01"), night("02"), night("03")])),
         0
@@ -636,13 +641,7 @@ fn a_model_that_does_worse_on_fresh_rows_is_rolled_back_automatically() {
 
 #[test]
 fn in_approval_mode_a_regression_is_reported_not_acted_on() {
-    let dir = tempfile::tempdir().unwrap();
-    let cfg = dir.path().join("approval.toml");
-    let text = fs::read_to_string(repo("demo-data/tidegate.toml"))
-        .unwrap()
-        .replace("require_approval = false", "require_approval = true");
-    fs::write(&cfg, text).unwrap();
-    let env = Env::new(&cfg);
+    let env = approval_env();
     festival_promoted(&env, true);
     assert_eq!(code(&env.ingest(&[night("10"), night("11")])), 0);
     let last = fresh_checks(&env).pop().unwrap();

@@ -7,6 +7,7 @@ mod daemon;
 mod demo;
 mod ingest;
 mod lifecycle;
+mod migrate;
 mod support;
 mod tamper;
 mod training;
