@@ -299,6 +299,10 @@ pub struct DaemonConfig {
     pub train_at: Option<String>,
     /// Seconds between full inbox listings, whatever the watcher reports.
     pub rescan_seconds: f64,
+    /// "127.0.0.1:PORT" to serve /health and /metrics over HTTP; off when unset.
+    pub metrics_addr: Option<String>,
+    /// Allow a metrics_addr that is not a loopback address.
+    pub metrics_allow_remote: bool,
 }
 
 impl Default for DaemonConfig {
@@ -309,6 +313,8 @@ impl Default for DaemonConfig {
             min_new_rows: 1000,
             train_at: None,
             rescan_seconds: 60.0,
+            metrics_addr: None,
+            metrics_allow_remote: false,
         }
     }
 }
@@ -657,6 +663,27 @@ impl Config {
                 format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"),
             );
         }
+        if let Some(addr) = &d.metrics_addr {
+            match addr.parse::<std::net::SocketAddr>() {
+                Err(_) => {
+                    return fail(
+                        whole("metrics_addr"),
+                        format!(
+                            "metrics_addr {addr:?} must be an IP address and port, such as \"127.0.0.1:9187\""
+                        ),
+                    );
+                }
+                Ok(a) if !a.ip().is_loopback() && !d.metrics_allow_remote => {
+                    return fail(
+                        whole("metrics_addr"),
+                        format!(
+                            "metrics_addr {addr:?} is not a loopback address; the endpoint has no authentication, so use 127.0.0.1 or ::1 (or set metrics_allow_remote = true to expose it anyway)"
+                        ),
+                    );
+                }
+                Ok(_) => {}
+            }
+        }
         Ok(())
     }
 
@@ -779,6 +806,19 @@ kind = "number"
     fn template_is_valid() {
         let c = parse(TEMPLATE).unwrap();
         assert_eq!(c.data.target.get_ref(), "loaves_sold");
+    }
+
+    #[test]
+    fn metrics_address_must_be_loopback_unless_allowed() {
+        let with = |extra: &str| format!("{MINIMAL}\n[daemon]\n{extra}\n");
+        assert!(parse(&with("metrics_addr = \"127.0.0.1:9187\"")).is_ok());
+        assert!(parse(&with("metrics_addr = \"[::1]:9187\"")).is_ok());
+        let (_, _, msg) = err_at(&with("metrics_addr = \"0.0.0.0:9187\""));
+        assert!(msg.contains("not a loopback address"), "{msg}");
+        let (_, _, msg) = err_at(&with("metrics_addr = \"localhost\""));
+        assert!(msg.contains("IP address and port"), "{msg}");
+        let open = with("metrics_addr = \"0.0.0.0:9187\"\nmetrics_allow_remote = true");
+        assert!(parse(&open).is_ok());
     }
 
     #[test]

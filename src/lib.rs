@@ -12,6 +12,7 @@ pub mod baseline;
 pub mod cli;
 pub mod config;
 pub mod cycle;
+pub mod daemon;
 pub mod demo;
 pub mod drift;
 pub mod failpoint;

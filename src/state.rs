@@ -52,6 +52,9 @@ impl StateDir {
     pub fn serving(&self) -> PathBuf {
         self.root.join("serving")
     }
+    pub fn control_socket(&self) -> PathBuf {
+        self.root.join("control.sock")
+    }
     pub fn mirror(&self) -> Mirror {
         Mirror::new(self.audit())
     }
@@ -286,20 +289,7 @@ fn open_with(
     }
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
-        // A cycle that started and never ended was cut short: say so.
-        if let Some(v) = store.meta_value(crate::store::META_OPEN_CYCLE)?
-            && let Ok(bytes) = <[u8; 8]>::try_from(v.as_slice())
-        {
-            let cycle = u64::from_be_bytes(bytes);
-            let entry = store.record_with_meta(
-                Event::CycleAbandoned { cycle },
-                &current_user(),
-                chrono::Utc::now(),
-                &[(crate::store::META_OPEN_CYCLE, None)],
-            )?;
-            mirror.append(&[entry.line().as_bytes()])?;
-            rec.abandoned_cycle = Some(cycle);
-        }
+        rec.abandoned_cycle = close_open_cycle(&mut store, &mirror, &current_user())?;
     }
     Ok((
         Owner {
@@ -311,6 +301,30 @@ fn open_with(
         },
         rec,
     ))
+}
+
+/// Records a cycle that started and never ended (cut short by a crash, a
+/// cancel or a failure) as abandoned; it changed nothing. Returns its number.
+pub fn close_open_cycle(
+    store: &mut Store,
+    mirror: &Mirror,
+    user: &str,
+) -> Result<Option<u64>, StateError> {
+    let Some(v) = store.meta_value(crate::store::META_OPEN_CYCLE)? else {
+        return Ok(None);
+    };
+    let Ok(bytes) = <[u8; 8]>::try_from(v.as_slice()) else {
+        return Ok(None);
+    };
+    let cycle = u64::from_be_bytes(bytes);
+    let entry = store.record_with_meta(
+        Event::CycleAbandoned { cycle },
+        user,
+        chrono::Utc::now(),
+        &[(crate::store::META_OPEN_CYCLE, None)],
+    )?;
+    mirror.append(&[entry.line().as_bytes()])?;
+    Ok(Some(cycle))
 }
 
 /// The acting user: the login name, or the numeric uid when none is set.

@@ -17,7 +17,11 @@ pub struct Args {
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
-    super::run_decision(cli, state, |owner, user| {
+    let request = crate::daemon::Request::Approve {
+        model: args.model,
+        reason: args.reason.clone(),
+    };
+    super::run_decision(cli, state, request, |owner, user| {
         lifecycle::approve(owner, args.model, &args.reason, user)
     })
 }

@@ -22,25 +22,40 @@ pub struct RestoreArgs {
 }
 
 pub fn run_backup(cli: &Cli, state: &StateDir, args: &BackupArgs) -> anyhow::Result<Exit> {
+    // A running daemon holds the store: it writes the copy in its loop.
+    let request = crate::daemon::Request::Backup {
+        out: std::env::current_dir()?.join(&args.out),
+    };
+    if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
+        return Ok(exit);
+    }
     let config = super::load_config(cli, state)?;
     let (mut owner, _) = state::open(state, &config)?;
     let m = backup::backup(&mut owner, &args.out, &state::current_user())?;
-    let text = if cli.json {
+    emit(&render_backup(&m, &args.out, cli.json)?)?;
+    Ok(Exit::Ok)
+}
+
+/// A written backup as printed; the daemon answers a routed `backup` with the same.
+pub(crate) fn render_backup(
+    m: &backup::Manifest,
+    out: &std::path::Path,
+    json: bool,
+) -> anyhow::Result<String> {
+    Ok(if json {
         format!("{}\n", serde_json::to_string(&m)?)
     } else {
         format!(
             "backup written to {}: {} batches, {} rows, {} files and the store ({} entries), \
              audit log up to #{}\n",
-            args.out.display(),
+            out.display(),
             m.batches,
             m.rows,
             m.files.len(),
             m.store_pairs,
             m.audit_seq
         )
-    };
-    emit(&text)?;
-    Ok(Exit::Ok)
+    })
 }
 
 pub fn run_restore(cli: &Cli, state: &StateDir, args: &RestoreArgs) -> anyhow::Result<Exit> {

@@ -2,7 +2,7 @@
 //! Each file is taken whole or refused whole; the files themselves are left
 //! where they are (their bytes are archived in the state dir).
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use super::{Cli, Exit, emit, shown};
 use crate::fresh;
@@ -17,16 +17,41 @@ pub struct Args {
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
+    // A running daemon owns the state dir: it takes the files in its loop.
+    let request = crate::daemon::Request::Ingest {
+        cwd: std::env::current_dir()?,
+        files: args.files.clone(),
+    };
+    if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
+        return Ok(exit);
+    }
     let config = super::load_config(cli, state)?;
     let (mut owner, recovery) = state::open(state, &config)?;
     if recovery != state::Recovery::default() {
         tracing::info!("recovered after an interrupted run: {recovery:?}");
     }
     let user = state::current_user();
+    let (out, exit) = take_files(&mut owner, None, &args.files, cli.json, &user)?;
+    emit(&out)?;
+    Ok(exit)
+}
+
+/// Takes each file through intake and renders the outcomes (text or JSON
+/// lines) with the exit code they call for; the daemon answers with the same.
+/// Relative names are read from `base` (the caller's folder) when given.
+pub(crate) fn take_files(
+    owner: &mut state::Owner,
+    base: Option<&Path>,
+    files: &[PathBuf],
+    json_out: bool,
+    user: &str,
+) -> anyhow::Result<(String, Exit)> {
+    let state = &owner.state.clone();
     let mut exit = Exit::Ok;
     let mut out = String::new();
-    for file in &args.files {
-        let outcome = intake::take_file(&mut owner, file, Source::Keep, &user, chrono::Utc::now())?;
+    for file in files {
+        let path = base.map_or_else(|| file.clone(), |b| b.join(file));
+        let outcome = intake::take_file(owner, &path, Source::Keep, user, chrono::Utc::now())?;
         let shown_file = file.display().to_string();
         let (status, mut detail, mut json) = match &outcome {
             Outcome::Accepted { batch, entry } => (
@@ -88,7 +113,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         if let Outcome::Accepted { batch, .. } = &outcome {
             // The batch is stored whatever the check says; a failure to run
             // it is reported, not fatal.
-            match fresh::check_batch(&mut owner, batch.id, &user) {
+            match fresh::check_batch(owner, batch.id, user) {
                 Ok(Some(found)) => {
                     let e = &found.evidence;
                     detail.push_str(&format!("; fresh-data check: {}", e.verdict));
@@ -105,12 +130,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                 }
             }
         }
-        if cli.json {
+        if json_out {
             out.push_str(&format!("{json}\n"));
         } else {
             out.push_str(&format!("{shown_file}: {status}: {detail}\n"));
         }
     }
-    emit(&out)?;
-    Ok(exit)
+    Ok((out, exit))
 }

@@ -17,11 +17,17 @@ mod retrain;
 mod rollback;
 mod status;
 mod verify;
+mod watch;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
+
+pub(crate) use backup::render_backup;
+pub(crate) use ingest::take_files as ingest_files;
+pub(crate) use retrain::render as render_cycle;
+pub(crate) use verify::render as render_verify;
 
 use crate::config::{Config, ConfigError};
 use crate::state::{StateDir, StateError};
@@ -107,6 +113,8 @@ pub enum Command {
     Restore(backup::RestoreArgs),
     /// Take a config whose columns changed (--config NEW.toml): rewrite the stored rows.
     Migrate(migrate::Args),
+    /// Run as the daemon: take inbox files, retrain as data arrives, answer the CLI.
+    Watch(watch::Args),
 }
 
 /// Runs a parsed command line.
@@ -133,6 +141,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Rollback(a) => rollback::run(cli, &state, a),
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
+        Command::Watch(a) => watch::run(cli, &state, a),
     }
 }
 
@@ -189,21 +198,30 @@ pub(crate) fn load_config(cli: &Cli, state: &StateDir) -> anyhow::Result<Config>
 pub(crate) fn run_decision(
     cli: &Cli,
     state: &StateDir,
+    request: crate::daemon::Request,
     decide: impl FnOnce(
         &mut crate::state::Owner,
         &str,
     ) -> Result<crate::audit::Entry, crate::lifecycle::DecisionError>,
 ) -> anyhow::Result<Exit> {
+    // A running daemon owns the state dir: it takes the decision in its loop.
+    if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
+        return Ok(exit);
+    }
     let config = load_config(cli, state)?;
     let (mut owner, _) = crate::state::open(state, &config)?;
     let entry = decide(&mut owner, &crate::state::current_user())?;
-    let text = if cli.json {
+    emit(&render_decision(&entry, cli.json))?;
+    Ok(Exit::Ok)
+}
+
+/// A decision's audit entry as printed; the daemon answers with the same.
+pub(crate) fn render_decision(entry: &crate::audit::Entry, json: bool) -> String {
+    if json {
         format!("{}\n", entry.line())
     } else {
         format!("{}\n", entry.event.summary())
-    };
-    emit(&text)?;
-    Ok(Exit::Ok)
+    }
 }
 
 /// Writes to stdout; a closed pipe (`| head`) is not a failure.

@@ -76,6 +76,14 @@ impl Bars {
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
+    // A running daemon owns the state dir: the cycle runs on its worker.
+    let request = crate::daemon::Request::Retrain {
+        cold: args.cold,
+        dry_run: args.dry_run,
+    };
+    if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
+        return Ok(exit);
+    }
     let config = super::load_config(cli, state)?;
     let (mut owner, recovery) = state::open(state, &config)?;
     if let Some(c) = recovery.abandoned_cycle {
@@ -101,9 +109,16 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     if let Some(b) = &bars {
         b.finish();
     }
-    let report = match outcome? {
+    emit(&render(outcome?, cli.json))?;
+    Ok(Exit::Ok)
+}
+
+/// A cycle's outcome as printed (text, or one JSON object); the daemon
+/// answers a routed `retrain` with the same.
+pub(crate) fn render(outcome: Outcome, json: bool) -> String {
+    let report = match outcome {
         Outcome::NothingNew { serving } => {
-            let text = if cli.json {
+            return if json {
                 format!(
                     "{}\n",
                     serde_json::json!({"outcome": "nothing-new", "serving": serving})
@@ -113,8 +128,6 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                     "nothing to do: {serving} serves and has been trained on every batch (use --cold to train from scratch anyway)\n"
                 )
             };
-            emit(&text)?;
-            return Ok(Exit::Ok);
         }
         Outcome::Decided(r) => r,
     };
@@ -122,7 +135,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         Some(m) => m.to_string(),
         None => "trivial predictor".to_string(),
     };
-    if cli.json {
+    if json {
         let candidates: Vec<serde_json::Value> = report
             .candidates
             .iter()
@@ -145,8 +158,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             "evidence": evidence, "reason": report.decision.reason(),
             "ridge_loss": report.ridge_loss, "trivial_loss": report.trivial_loss,
         });
-        emit(&format!("{v}\n"))?;
-        return Ok(Exit::Ok);
+        return format!("{v}\n");
     }
     let mut rows: Vec<Vec<String>> = vec![vec![
         baseline.clone(),
@@ -222,6 +234,5 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             "warning: the best network ({best:.4}) does not beat the ridge baseline ({r:.4}) on the holdout rows\n"
         ));
     }
-    emit(&out)?;
-    Ok(Exit::Ok)
+    out
 }

@@ -17,7 +17,11 @@ pub struct Args {
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
-    super::run_decision(cli, state, |owner, user| {
+    let request = crate::daemon::Request::Rollback {
+        to: args.to,
+        reason: args.reason.clone(),
+    };
+    super::run_decision(cli, state, request, |owner, user| {
         lifecycle::rollback(owner, args.to, &args.reason, user)
     })
 }

@@ -181,11 +181,13 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let entries = state.mirror().entries()?;
     let summary = Summary::from_entries(&entries);
     let owner = state::owner_pid(state);
+    let daemon = crate::daemon::client::ping(state);
     let recent: Vec<&Entry> = entries.iter().rev().take(args.recent).rev().collect();
     if cli.json {
         let v = serde_json::json!({
             "state": state.root(),
             "owner_pid": owner,
+            "daemon": daemon,
             "summary": summary,
             "recent": recent,
         });
@@ -201,6 +203,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             |p| format!("PID {p}")
         )
     ));
+    out.push_str(&format!("daemon      {}\n", daemon_line(daemon.as_ref())));
     out.push_str(&format!(
         "rows        {} in {} batches ({} train, {} holdout)\n",
         summary.rows, summary.batches, summary.train_rows, summary.holdout_rows
@@ -302,6 +305,41 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     ));
     emit(&out)?;
     Ok(Exit::Ok)
+}
+
+/// What the running daemon is doing, in one line.
+fn daemon_line(d: Option<&crate::daemon::DaemonStatus>) -> String {
+    let Some(d) = d else {
+        return "not running".to_string();
+    };
+    let mut line = format!(
+        "running (PID {}, since {}): {}",
+        d.pid, d.started_at, d.activity
+    );
+    if let Some(c) = d.cycle {
+        line.push_str(&format!(" cycle {c}"));
+    }
+    if let Some(why) = &d.cycle_reason {
+        line.push_str(&format!(" ({why})"));
+    }
+    if let Some(p) = &d.progress {
+        line.push_str(&format!(", {p}"));
+    }
+    line.push_str(&format!(
+        "; {} untrained rows (a cycle starts at {}{})",
+        d.untrained_rows,
+        d.min_new_rows,
+        d.train_at
+            .as_ref()
+            .map_or_else(String::new, |t| format!(" or daily at {t}"))
+    ));
+    if d.waiting_requests > 0 {
+        line.push_str(&format!("; {} command(s) waiting", d.waiting_requests));
+    }
+    if d.inbox_files > 0 {
+        line.push_str(&format!("; {} inbox file(s) settling", d.inbox_files));
+    }
+    line
 }
 
 #[cfg(test)]

@@ -9,10 +9,26 @@ use crate::verify;
 pub struct Args {}
 
 pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
+    // A running daemon holds the store open: it checks in its loop.
+    let request = crate::daemon::Request::Verify;
+    if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
+        return Ok(exit);
+    }
     let config = super::load_config(cli, state)?;
     let (owner, _) = state::open_untouched_log(state, &config)?;
     let result = verify::check(&owner)?;
-    let text = match (&result, cli.json) {
+    let (text, exit) = render(&result, cli.json);
+    emit(&text)?;
+    Ok(exit)
+}
+
+/// The check's result as printed, with its exit code; the daemon answers
+/// a routed `verify` with the same.
+pub(crate) fn render(
+    result: &Result<verify::Report, verify::Problem>,
+    json: bool,
+) -> (String, Exit) {
+    let text = match (result, json) {
         (Ok(r), true) => format!("{}\n", serde_json::json!({"ok": true, "report": r})),
         (Err(p), true) => format!("{}\n", serde_json::json!({"ok": false, "problem": p})),
         (Ok(r), false) => format!(
@@ -21,10 +37,10 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
         ),
         (Err(p), false) => format!("problem: {p}\n"),
     };
-    emit(&text)?;
-    Ok(if result.is_ok() {
+    let exit = if result.is_ok() {
         Exit::Ok
     } else {
         Exit::Failure
-    })
+    };
+    (text, exit)
 }

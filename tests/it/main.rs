@@ -3,6 +3,7 @@
 
 mod backup;
 mod crash;
+mod daemon;
 mod demo;
 mod faults;
 mod ingest;

@@ -1,0 +1,366 @@
+//! What the daemon publishes for others to read without waiting for its
+//! loop: the status answered to `ping`, counters folded from the audit log,
+//! and an optional loopback HTTP endpoint with `/health` and `/metrics`
+//! (Prometheus text format).
+
+use std::collections::HashMap;
+use std::io::{BufRead, BufReader, Write};
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::time::{Duration, Instant};
+
+use chrono::{DateTime, Utc};
+
+use super::protocol::DaemonStatus;
+use crate::audit::{Entry, Event};
+use crate::ids::{AuditSeq, ModelId};
+
+/// Totals folded from the audit log, entry by entry.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Counters {
+    pub last_seq: AuditSeq,
+    pub batches: u64,
+    pub rows: u64,
+    pub rejected_files: u64,
+    pub duplicate_files: u64,
+    pub cycles_started: u64,
+    pub cycles_abandoned: u64,
+    /// Kind of the last gate or human decision ("promoted", "kept", …).
+    pub last_decision: Option<String>,
+    pub serving: Option<ModelId>,
+    /// When the serving model started serving.
+    pub serving_since: Option<DateTime<Utc>>,
+    /// Holdout loss of each model when it was trained.
+    pub holdout_loss: HashMap<ModelId, f64>,
+}
+
+impl Default for Counters {
+    fn default() -> Counters {
+        Counters {
+            last_seq: AuditSeq(0),
+            batches: 0,
+            rows: 0,
+            rejected_files: 0,
+            duplicate_files: 0,
+            cycles_started: 0,
+            cycles_abandoned: 0,
+            last_decision: None,
+            serving: None,
+            serving_since: None,
+            holdout_loss: HashMap::new(),
+        }
+    }
+}
+
+impl Counters {
+    /// Adds one entry (entries at or before `last_seq` are skipped, so
+    /// folding the same entries twice counts them once).
+    pub fn fold(&mut self, e: &Entry) {
+        if e.seq <= self.last_seq {
+            return;
+        }
+        self.last_seq = e.seq;
+        let serve = |c: &mut Counters, m: ModelId| {
+            c.serving = Some(m);
+            c.serving_since = e.timestamp();
+        };
+        match &e.event {
+            Event::BatchAccepted { rows, .. } => {
+                self.batches += 1;
+                self.rows += rows;
+            }
+            Event::BatchRejected { .. } => self.rejected_files += 1,
+            Event::BatchDuplicate { .. } => self.duplicate_files += 1,
+            Event::CycleStarted { .. } => self.cycles_started += 1,
+            Event::CycleAbandoned { .. } => self.cycles_abandoned += 1,
+            Event::CandidateTrained {
+                model,
+                holdout_loss,
+                ..
+            } => {
+                self.holdout_loss.insert(*model, *holdout_loss);
+            }
+            Event::Promoted { model, .. }
+            | Event::Approved { model, .. }
+            | Event::RolledBack { to: model, .. } => {
+                serve(self, *model);
+                self.last_decision = Some(e.event.kind().to_string());
+            }
+            Event::Kept { .. } | Event::AwaitingApproval { .. } | Event::Declined { .. } => {
+                self.last_decision = Some(e.event.kind().to_string());
+            }
+            #[allow(unreachable_patterns)]
+            _ => {}
+        }
+    }
+}
+
+/// Durations of the cycles this daemon ran.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct CycleTimes {
+    pub count: u64,
+    pub sum_seconds: f64,
+    pub last_seconds: Option<f64>,
+}
+
+/// Everything published, behind one mutex.
+#[derive(Debug)]
+pub struct Published {
+    pub status: DaemonStatus,
+    pub counters: Counters,
+    pub cycles: CycleTimes,
+    /// Last time the loop finished an iteration.
+    pub heartbeat: Instant,
+}
+
+/// The handle the loop writes to and the socket and HTTP threads read.
+#[derive(Debug, Clone)]
+pub struct Shared(Arc<Mutex<Published>>);
+
+impl Shared {
+    pub fn new(status: DaemonStatus) -> Shared {
+        Shared(Arc::new(Mutex::new(Published {
+            status,
+            counters: Counters::default(),
+            cycles: CycleTimes::default(),
+            heartbeat: Instant::now(),
+        })))
+    }
+
+    /// The published data; a panic elsewhere while holding it does not
+    /// make it unreadable (it only holds plain values).
+    pub fn lock(&self) -> MutexGuard<'_, Published> {
+        self.0.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    pub fn status(&self) -> DaemonStatus {
+        self.lock().status.clone()
+    }
+}
+
+/// How long without a loop iteration before `/health` reports a stall.
+pub const STALL: Duration = Duration::from_secs(60);
+
+/// The metrics in Prometheus text format.
+pub fn render(p: &Published, now: DateTime<Utc>) -> String {
+    let c = &p.counters;
+    let mut out = String::new();
+    let mut metric = |name: &str, kind: &str, help: &str, lines: &[(String, String)]| {
+        out.push_str(&format!(
+            "# HELP tidegate_{name} {help}\n# TYPE tidegate_{name} {kind}\n"
+        ));
+        for (labels, value) in lines {
+            out.push_str(&format!("tidegate_{name}{labels} {value}\n"));
+        }
+    };
+    let one = |v: String| vec![(String::new(), v)];
+    metric(
+        "rows",
+        "gauge",
+        "Rows stored (all accepted batches).",
+        &one(c.rows.to_string()),
+    );
+    metric(
+        "batches",
+        "gauge",
+        "Accepted batches.",
+        &one(c.batches.to_string()),
+    );
+    metric(
+        "rejected_files",
+        "gauge",
+        "Files refused, in the whole audit log.",
+        &one(c.rejected_files.to_string()),
+    );
+    metric(
+        "duplicate_files",
+        "gauge",
+        "Files whose bytes were already stored.",
+        &one(c.duplicate_files.to_string()),
+    );
+    metric(
+        "untrained_rows",
+        "gauge",
+        "Accepted rows no cycle has trained on yet.",
+        &one(p.status.untrained_rows.to_string()),
+    );
+    metric(
+        "training",
+        "gauge",
+        "1 while a retrain cycle runs.",
+        &one(u8::from(p.status.activity == "training").to_string()),
+    );
+    metric(
+        "cycles_started",
+        "gauge",
+        "Retrain cycles started, in the whole audit log.",
+        &one(c.cycles_started.to_string()),
+    );
+    metric(
+        "cycles_abandoned",
+        "gauge",
+        "Retrain cycles cut short (cancel, crash or failure).",
+        &one(c.cycles_abandoned.to_string()),
+    );
+    if let Some(d) = &c.last_decision {
+        metric(
+            "last_decision",
+            "gauge",
+            "The last decision on a model version (label), always 1.",
+            &[(format!("{{decision=\"{d}\"}}"), "1".into())],
+        );
+    }
+    if let (Some(m), Some(since)) = (c.serving, c.serving_since) {
+        let age = (now - since).num_milliseconds().max(0) as f64 / 1000.0;
+        metric(
+            "serving_model_age_seconds",
+            "gauge",
+            "Seconds since the serving model started serving.",
+            &[(format!("{{model=\"{m}\"}}"), format!("{age:.3}"))],
+        );
+        if let Some(loss) = c.holdout_loss.get(&m) {
+            metric(
+                "serving_holdout_loss",
+                "gauge",
+                "Mean holdout loss of the serving model when it was trained.",
+                &[(format!("{{model=\"{m}\"}}"), format!("{loss}"))],
+            );
+        }
+    }
+    let t = &p.cycles;
+    // A summary without quantiles: `_sum` and `_count` follow the name.
+    metric(
+        "cycle_duration_seconds",
+        "summary",
+        "Wall time of the retrain cycles this daemon ran.",
+        &[
+            ("_sum".to_string(), format!("{:.3}", t.sum_seconds)),
+            ("_count".to_string(), t.count.to_string()),
+        ],
+    );
+    if let Some(last) = t.last_seconds {
+        metric(
+            "last_cycle_duration_seconds",
+            "gauge",
+            "Wall time of the last cycle this daemon ran.",
+            &one(format!("{last:.3}")),
+        );
+    }
+    out
+}
+
+/// Serves `/health` and `/metrics` on `addr` from a thread of its own.
+pub fn serve(addr: SocketAddr, shared: Shared) -> std::io::Result<SocketAddr> {
+    let listener = TcpListener::bind(addr)?;
+    let bound = listener.local_addr()?;
+    std::thread::Builder::new()
+        .name("metrics".into())
+        .spawn(move || {
+            for stream in listener.incoming().flatten() {
+                if let Err(e) = answer_http(stream, &shared) {
+                    tracing::debug!("metrics request failed: {e}");
+                }
+            }
+        })?;
+    Ok(bound)
+}
+
+fn answer_http(stream: TcpStream, shared: &Shared) -> std::io::Result<()> {
+    stream.set_read_timeout(Some(Duration::from_secs(2)))?;
+    stream.set_write_timeout(Some(Duration::from_secs(2)))?;
+    let mut reader = BufReader::new(std::io::Read::take(&stream, 8192));
+    let mut line = String::new();
+    reader.read_line(&mut line)?;
+    let path = line.split_whitespace().nth(1).unwrap_or("").to_string();
+    // Read the headers too: closing with unread input would reset the
+    // connection before the client has read the answer.
+    let mut header = String::new();
+    while reader.read_line(&mut header)? > 0 && !header.trim().is_empty() {
+        header.clear();
+    }
+    let (code, body) = {
+        let p = shared.lock();
+        match path.as_str() {
+            "/health" => {
+                if p.heartbeat.elapsed() < STALL {
+                    ("200 OK", format!("ok {}\n", p.status.activity))
+                } else {
+                    (
+                        "503 Service Unavailable",
+                        format!(
+                            "stalled: the loop has not run for {} s\n",
+                            p.heartbeat.elapsed().as_secs()
+                        ),
+                    )
+                }
+            }
+            "/metrics" => ("200 OK", render(&p, Utc::now())),
+            _ => ("404 Not Found", "try /health or /metrics\n".to_string()),
+        }
+    };
+    let mut w = &stream;
+    write!(
+        w,
+        "HTTP/1.1 {code}\r\nContent-Type: text/plain; version=0.0.4; charset=utf-8\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
+        body.len()
+    )?;
+    w.flush()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::ids::BatchId;
+
+    fn entry(seq: u64, event: Event) -> Entry {
+        Entry::seal(AuditSeq(seq), Utc::now(), "u", event, "p")
+    }
+
+    #[test]
+    fn counters_fold_each_entry_once() {
+        let mut c = Counters::default();
+        let accepted = entry(
+            1,
+            Event::BatchAccepted {
+                batch: BatchId(1),
+                file: "a".into(),
+                file_hash: "h".into(),
+                rows: 10,
+                train_rows: 8,
+                holdout_rows: 2,
+                new_categories: Default::default(),
+                drift: None,
+            },
+        );
+        c.fold(&accepted);
+        c.fold(&accepted);
+        c.fold(&entry(
+            2,
+            Event::BatchRejected {
+                file: "b".into(),
+                file_hash: String::new(),
+                problems: 1,
+                first_problem: "x".into(),
+                kept_as: None,
+            },
+        ));
+        assert_eq!((c.batches, c.rows, c.rejected_files), (1, 10, 1));
+        let text = render(
+            &Published {
+                status: DaemonStatus::default(),
+                counters: c,
+                cycles: CycleTimes {
+                    count: 2,
+                    sum_seconds: 3.5,
+                    last_seconds: Some(1.5),
+                },
+                heartbeat: Instant::now(),
+            },
+            Utc::now(),
+        );
+        assert!(text.contains("tidegate_rows 10\n"), "{text}");
+        assert!(text.contains("tidegate_rejected_files 1\n"), "{text}");
+        assert!(text.contains("tidegate_cycle_duration_seconds_count 2\n"));
+        assert!(text.contains("# TYPE tidegate_batches gauge\n"));
+    }
+}

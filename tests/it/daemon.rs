@@ -1,0 +1,573 @@
+//! The real `tidegate watch` process on temp state dirs: files published to
+//! the inbox, CLI commands routed through the control socket, SIGTERM
+//! during training, a second daemon, and SIGKILL at random moments while a
+//! producer keeps publishing.
+
+use std::collections::BTreeSet;
+use std::fs;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Stdio};
+use std::time::{Duration, Instant};
+
+use tidegate::config::Config;
+use tidegate::rng::Rng;
+use tidegate::state::{self, StateDir};
+use tidegate::store::Split;
+
+use crate::support::{Env, code, data, stderr, stdout};
+
+/// The fixtures' schema with a daemon that reacts fast and trains briefly
+/// (`long`: until cancelled).
+fn config(dir: &Path, daemon: &str, long: bool) -> PathBuf {
+    let training = if long {
+        "[training]\ncold_epochs = 1000000\npatience = 0\nmax_seconds = 600.0\n"
+    } else {
+        "[training]\ncold_epochs = 5\n"
+    };
+    let text = format!(
+        "{}\n[model]\nhidden = [4]\n\n{training}\n[daemon]\nrescan_seconds = 1.0\n{daemon}\n",
+        fs::read_to_string(data("small.toml")).unwrap()
+    );
+    let path = dir.join("daemon.toml");
+    fs::write(&path, text).unwrap();
+    path
+}
+
+fn env_with(daemon: &str, long: bool) -> Env {
+    let tmp = tempfile::tempdir().unwrap();
+    let cfg = config(tmp.path(), daemon, long);
+    let env = Env::new(&cfg);
+    drop(tmp);
+    env
+}
+
+/// A running daemon; killed if a test fails before stopping it.
+struct Watch {
+    child: Child,
+}
+
+impl Drop for Watch {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+impl Watch {
+    fn start(env: &Env) -> Watch {
+        let log = fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(env.dir.path().join("watch.log"))
+            .unwrap();
+        let child = env
+            .command()
+            .arg("watch")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(log)
+            .spawn()
+            .unwrap();
+        let mut w = Watch { child };
+        wait_for(20, "the daemon to answer ping", || {
+            if let Ok(Some(status)) = w.child.try_wait() {
+                panic!("watch exited early with {status}: {}", watch_log(env));
+            }
+            daemon_status(env).is_some()
+        });
+        w
+    }
+
+    fn pid(&self) -> i32 {
+        i32::try_from(self.child.id()).unwrap()
+    }
+
+    fn signal(&self, sig: i32) {
+        // SAFETY: kill(2) on our own child's pid.
+        assert_eq!(unsafe { libc::kill(self.pid(), sig) }, 0);
+    }
+
+    /// SIGTERM, then the exit code and how long it took.
+    fn stop(mut self) -> (i32, Duration) {
+        let t = Instant::now();
+        self.signal(libc::SIGTERM);
+        let deadline = t + Duration::from_secs(10);
+        loop {
+            if let Some(status) = self.child.try_wait().unwrap() {
+                return (status.code().unwrap_or(-1), t.elapsed());
+            }
+            assert!(Instant::now() < deadline, "no exit 10 s after SIGTERM");
+            std::thread::sleep(Duration::from_millis(20));
+        }
+    }
+}
+
+fn watch_log(env: &Env) -> String {
+    fs::read_to_string(env.dir.path().join("watch.log")).unwrap_or_default()
+}
+
+/// Polls `ok` every 20 ms until it holds, failing after `secs` seconds.
+fn wait_for(secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while !ok() {
+        assert!(Instant::now() < deadline, "timed out waiting for {what}");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// Like `wait_for`, with the daemon's log in the failure message.
+fn wait_daemon(env: &Env, secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while !ok() {
+        assert!(
+            Instant::now() < deadline,
+            "timed out waiting for {what}; daemon log:\n{}",
+            watch_log(env)
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// The daemon's status as `status --json` reports it (`None`: not running).
+fn daemon_status(env: &Env) -> Option<serde_json::Value> {
+    let out = env.run(&["--json", "status"]);
+    if !out.status.success() {
+        return None;
+    }
+    let v: serde_json::Value = serde_json::from_str(&stdout(&out)).ok()?;
+    v.get("daemon").filter(|d| !d.is_null()).cloned()
+}
+
+/// One `ping` over control.sock, written by hand as the protocol says.
+fn raw_ping(env: &Env) -> serde_json::Value {
+    use std::io::{BufRead, Write};
+    let mut s = std::os::unix::net::UnixStream::connect(env.state().join("control.sock")).unwrap();
+    s.write_all(b"{\"v\":1,\"user\":\"tester\",\"json\":true,\"request\":{\"op\":\"ping\"}}\n")
+        .unwrap();
+    let mut line = String::new();
+    std::io::BufReader::new(s).read_line(&mut line).unwrap();
+    serde_json::from_str(&line).unwrap()
+}
+
+/// A plain HTTP/1.1 GET; the whole response as text.
+fn http_get(addr: &str, path: &str) -> String {
+    use std::io::{Read, Write};
+    let mut s = std::net::TcpStream::connect(addr).unwrap();
+    s.write_all(format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\n\r\n").as_bytes())
+        .unwrap();
+    let mut out = String::new();
+    s.read_to_string(&mut out).unwrap();
+    out
+}
+
+/// CSV text with rows whose ids start at `first`.
+fn rows_csv(first: usize, n: usize) -> String {
+    let mut text = String::from("id,city,temp,flag,y\n");
+    for id in first..first + n {
+        text.push_str(&format!(
+            "{id},{},{}.5,x,{}\n",
+            ["Oslo", "Lima", "Rome"][id % 3],
+            id % 30,
+            (id % 30) as f64 * 0.5 + (id % 3) as f64
+        ));
+    }
+    text
+}
+
+/// Publishes by writing under inbox/.tmp and renaming (the producer contract).
+fn publish(env: &Env, name: &str, text: &str) -> PathBuf {
+    let inbox = env.state().join("inbox");
+    let tmp = inbox.join(".tmp").join(name);
+    fs::write(&tmp, text).unwrap();
+    let dest = inbox.join(name);
+    fs::rename(&tmp, &dest).unwrap();
+    dest
+}
+
+fn inbox_files(env: &Env) -> Vec<String> {
+    fs::read_dir(env.state().join("inbox"))
+        .unwrap()
+        .filter_map(Result::ok)
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| !n.starts_with('.'))
+        .collect()
+}
+
+fn count_kind(env: &Env, kind: &str) -> usize {
+    env.log_json(&["--kind", kind]).len()
+}
+
+#[test]
+fn watch_takes_published_files_and_retrains() {
+    // A settle time well above the producer's pauses, so a loaded machine
+    // does not make the slow writer look finished.
+    let env = env_with("settle_seconds = 2.0\nmin_new_rows = 60", false);
+    let watch = Watch::start(&env);
+    publish(&env, "a.csv", &rows_csv(0, 30));
+    publish(&env, "b.csv", &rows_csv(30, 30));
+    publish(&env, "bad.csv", "id,city,temp,flag,y\n1,Oslo,hot,x,1\n");
+    // A producer that writes in place, slowly: only the whole file may be taken.
+    let slow = env.state().join("inbox/slow.csv");
+    let text = rows_csv(1000, 12);
+    let (head, tail) = text.split_at(text.len() / 2);
+    let head_end = head.rfind('\n').unwrap() + 1;
+    fs::write(&slow, &text[..head_end]).unwrap();
+    for chunk in text.as_bytes()[head_end..].chunks(tail.len() / 3 + 1) {
+        std::thread::sleep(Duration::from_millis(150));
+        let mut f = fs::OpenOptions::new().append(true).open(&slow).unwrap();
+        std::io::Write::write_all(&mut f, chunk).unwrap();
+    }
+    wait_daemon(&env, 30, "all four files to be taken", || {
+        inbox_files(&env).is_empty()
+    });
+    wait_daemon(&env, 60, "the cycle's decision", || {
+        count_kind(&env, "kept") + count_kind(&env, "promoted") >= 1
+    });
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    assert_eq!(accepted.len(), 3, "{accepted:?}");
+    let slow_entry = accepted
+        .iter()
+        .find(|e| e["file"] == "slow.csv")
+        .unwrap_or_else(|| panic!("slow.csv not accepted: {accepted:?}"));
+    assert_eq!(
+        slow_entry["rows"], 12,
+        "the half-written file was taken early: {slow_entry}"
+    );
+    assert_eq!(count_kind(&env, "batch-rejected"), 1);
+    assert!(env.state().join("rejected/bad.csv.why.json").exists());
+    assert_eq!(count_kind(&env, "cycle-started"), 1, "{}", watch_log(&env));
+    let (code, took) = watch.stop();
+    assert_eq!(code, 0, "{}", watch_log(&env));
+    assert!(took < Duration::from_secs(5), "took {took:?} to stop");
+}
+
+#[test]
+fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
+    let env = env_with(
+        "settle_seconds = 0.2\nmin_new_rows = 100000\nmetrics_addr = \"127.0.0.1:0\"",
+        false,
+    );
+    let watch = Watch::start(&env);
+    use std::os::unix::fs::PermissionsExt;
+    let sock = fs::metadata(env.state().join("control.sock")).unwrap();
+    assert_eq!(sock.permissions().mode() & 0o777, 0o600);
+    // Routed: printed exactly as a direct ingest prints it.
+    let out = env.ingest(&[data("good/plain.csv")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(
+        stdout(&out).starts_with(&format!(
+            "{}: accepted: batch b000001 with 3 rows",
+            data("good/plain.csv").display()
+        )),
+        "{}",
+        stdout(&out)
+    );
+    let out = env.run(&["--json", "ingest", data("good/crlf.csv").to_str().unwrap()]);
+    let v: serde_json::Value = serde_json::from_str(&stdout(&out)).unwrap();
+    assert_eq!(v["status"], "accepted");
+    // A refused file gives the same exit code through the socket.
+    let out = env.ingest(&[data("bad/hex-number.csv")]);
+    assert_eq!(code(&out), 65, "{}", stderr(&out));
+    // A missing file is an error for the command, not for the daemon.
+    let out = env.ingest(&[env.dir.path().join("missing.csv")]);
+    assert_eq!(code(&out), 1);
+    assert!(stderr(&out).contains("missing.csv"), "{}", stderr(&out));
+    let more = env.dir.path().join("more.csv");
+    fs::write(&more, rows_csv(100, 40)).unwrap();
+    assert_eq!(code(&env.ingest(&[more])), 0);
+    // Decisions are taken (or refused) by the daemon.
+    let out = env.run(&["rollback", "--reason", "test"]);
+    assert_eq!(code(&out), 1);
+    assert!(stderr(&out).contains("no model serves"), "{}", stderr(&out));
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(stdout(&out).contains("decision: "), "{}", stdout(&out));
+    // The daemon is named by status; read-only commands answer.
+    let out = env.run(&["status"]);
+    assert!(
+        stdout(&out).contains("daemon      running"),
+        "{}",
+        stdout(&out)
+    );
+    for args in [&["log"][..], &["models"], &["verify"]] {
+        let out = env.run(args);
+        assert_eq!(code(&out), 0, "{args:?}: {}", stderr(&out));
+    }
+    // A backup is written by the daemon, which holds the store.
+    let out = env.run(&[
+        "backup",
+        "--out",
+        env.dir.path().join("copy").to_str().unwrap(),
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert!(
+        stdout(&out).contains("backup written to"),
+        "{}",
+        stdout(&out)
+    );
+    assert!(env.dir.path().join("copy").is_dir());
+    // The metrics endpoint (port chosen by the system, named in the log).
+    let log = watch_log(&env);
+    let addr = log
+        .split("metrics on http://")
+        .nth(1)
+        .and_then(|r| r.split("/metrics").next())
+        .unwrap_or_else(|| panic!("no metrics address in the log: {log}"));
+    let metrics = http_get(addr, "/metrics");
+    assert!(metrics.starts_with("HTTP/1.1 200"), "{metrics}");
+    assert!(metrics.contains("\ntidegate_batches 3\n"), "{metrics}");
+    assert!(
+        metrics.contains("\ntidegate_rejected_files 1\n"),
+        "{metrics}"
+    );
+    assert!(
+        metrics.contains("tidegate_last_decision{decision="),
+        "{metrics}"
+    );
+    assert!(http_get(addr, "/health").starts_with("HTTP/1.1 200"));
+    assert!(http_get(addr, "/other").starts_with("HTTP/1.1 404"));
+    // A second daemon is refused with the owner's PID.
+    let out = env.run(&["watch"]);
+    assert_eq!(code(&out), 75, "{}", stderr(&out));
+    assert!(stderr(&out).contains(&watch.pid().to_string()));
+    assert_eq!(count_kind(&env, "batch-accepted"), 3);
+    let who: Vec<String> = env
+        .log_json(&["--kind", "batch-accepted"])
+        .iter()
+        .map(|e| e["user"].as_str().unwrap_or("").to_string())
+        .collect();
+    assert_eq!(who, ["tester"; 3], "the client's user is recorded");
+    let (code, _) = watch.stop();
+    assert_eq!(code, 0);
+    let out = env.run(&["status"]);
+    assert!(
+        stdout(&out).contains("daemon      not running"),
+        "{}",
+        stdout(&out)
+    );
+}
+
+#[test]
+fn sigterm_during_training_exits_promptly_and_leaves_the_store_usable() {
+    let env = env_with("settle_seconds = 0.0\nmin_new_rows = 20", true);
+    let watch = Watch::start(&env);
+    publish(&env, "a.csv", &rows_csv(0, 40));
+    wait_daemon(&env, 30, "training to start", || {
+        daemon_status(&env).is_some_and(|d| d["activity"] == "training")
+    });
+    // Ping (the raw protocol) and read-only commands answer while the worker trains.
+    let t = Instant::now();
+    let status = raw_ping(&env);
+    assert!(
+        t.elapsed() < Duration::from_secs(1),
+        "ping took {:?}",
+        t.elapsed()
+    );
+    assert_eq!(status["status"]["activity"], "training", "{status}");
+    assert_eq!(status["status"]["cycle"], 1);
+    assert!(daemon_status(&env).is_some());
+    assert_eq!(code(&env.run(&["models"])), 0);
+    assert_eq!(code(&env.run(&["log", "--limit", "3"])), 0);
+    let (code_, took) = watch.stop();
+    assert_eq!(code_, 0, "{}", watch_log(&env));
+    assert!(took < Duration::from_secs(5), "took {took:?} to stop");
+    assert!(!env.state().join("control.sock").exists());
+    let kinds: Vec<String> = env
+        .log_json(&[])
+        .iter()
+        .map(|e| e["kind"].as_str().unwrap_or("").to_string())
+        .collect();
+    assert_eq!(
+        kinds.last().map(String::as_str),
+        Some("cycle-abandoned"),
+        "{kinds:?}"
+    );
+    assert!(
+        !env.state().join("serving").exists(),
+        "a model started serving"
+    );
+    // The lock is free: a direct command runs.
+    let out = env.ingest(&[data("good/plain.csv")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+}
+
+const KILL_FILES: usize = 36;
+const KILL_ROWS: usize = 15;
+const KILLS: usize = 10;
+
+#[test]
+fn killed_daemons_never_lose_or_double_a_file() {
+    let env = env_with("settle_seconds = 0.0\nmin_new_rows = 120", false);
+    let mut rng = Rng::new(515);
+    let mut published = 0;
+    let mut bad = BTreeSet::new();
+    for round in 0..KILLS {
+        let watch = Watch::start(&env);
+        // A producer publishes a few files while the daemon runs...
+        for _ in 0..KILL_FILES / KILLS {
+            let name = format!("f{published:03}.csv");
+            if rng.below(9) == 0 {
+                publish(&env, &name, "id,city,temp,flag,y\n1,Oslo,x,x,1\n");
+                bad.insert(name);
+            } else {
+                publish(&env, &name, &rows_csv(published * KILL_ROWS, KILL_ROWS));
+            }
+            published += 1;
+            std::thread::sleep(Duration::from_millis(rng.below(40) as u64));
+        }
+        // ...and the daemon dies at a random moment.
+        std::thread::sleep(Duration::from_millis(rng.below(250) as u64));
+        watch.signal(libc::SIGKILL);
+        drop(watch);
+        let _ = round;
+    }
+    // A final clean run takes whatever is left.
+    let watch = Watch::start(&env);
+    wait_daemon(&env, 30, "the inbox to empty", || {
+        inbox_files(&env).is_empty()
+    });
+    wait_daemon(&env, 30, "the daemon to be idle", || {
+        daemon_status(&env).is_some_and(|d| d["activity"] == "idle")
+    });
+    let (code_, _) = watch.stop();
+    assert_eq!(code_, 0, "{}", watch_log(&env));
+
+    let names = |kind: &str| -> Vec<String> {
+        env.log_json(&["--kind", kind])
+            .iter()
+            .map(|e| e["file"].as_str().unwrap().to_string())
+            .collect()
+    };
+    let accepted = names("batch-accepted");
+    let good: BTreeSet<String> = (0..published)
+        .map(|f| format!("f{f:03}.csv"))
+        .filter(|n| !bad.contains(n))
+        .collect();
+    let accepted_set: BTreeSet<String> = accepted.iter().cloned().collect();
+    assert_eq!(accepted.len(), accepted_set.len(), "a file accepted twice");
+    assert_eq!(accepted_set, good, "a good file lost");
+    let rejected: BTreeSet<String> = names("batch-rejected").into_iter().collect();
+    assert_eq!(rejected, bad, "a bad file not refused");
+    // A kill between archiving a file and removing it from the inbox makes
+    // the next run see the same bytes again: logged as a duplicate, never stored.
+    for dup in names("batch-duplicate") {
+        assert!(good.contains(&dup), "{dup} logged as a duplicate");
+    }
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+    // Every row id stored exactly once.
+    let state = StateDir::new(env.state());
+    let config = Config::load(&state.config()).unwrap();
+    let (owner, _) = state::open(&state, &config).unwrap();
+    let id_col = owner.store.schema().index_of("id").unwrap();
+    let mut ids = Vec::new();
+    for split in [Split::Train, Split::Holdout] {
+        let m = owner.store.rows(split, None, None).unwrap();
+        for r in 0..m.n_rows() {
+            ids.push(m.number(r, id_col).unwrap() as usize);
+        }
+    }
+    ids.sort_unstable();
+    let want: Vec<usize> = (0..published)
+        .filter(|f| !bad.contains(&format!("f{f:03}.csv")))
+        .flat_map(|f| f * KILL_ROWS..(f + 1) * KILL_ROWS)
+        .collect();
+    assert_eq!(ids, want);
+}
+
+/// Latency from publishing a file to its `batch-accepted` entry and to the
+/// decision of the cycle it starts, on a store that already holds rows and
+/// a serving model (so the measured cycle is a warm one). Sizes from
+/// TIDEGATE_LATENCY_STORE_ROWS (default 100000) and
+/// TIDEGATE_LATENCY_BATCH_ROWS (default 10000):
+/// `cargo test --release --test it daemon::latency -- --ignored --nocapture`
+#[test]
+#[ignore = "a measurement, not a check; prints the figures"]
+fn latency_from_file_drop_to_decision() {
+    let env_num = |k: &str, d: usize| {
+        std::env::var(k)
+            .ok()
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(d)
+    };
+    let store_rows = env_num("TIDEGATE_LATENCY_STORE_ROWS", 100_000);
+    let batch_rows = env_num("TIDEGATE_LATENCY_BATCH_ROWS", 10_000);
+    let tmp = tempfile::tempdir().unwrap();
+    let text = fs::read_to_string(data("small.toml"))
+        .unwrap()
+        .replace("max_file_bytes = 4096", "max_file_bytes = 268435456")
+        + &format!(
+            "\n[training]\ncold_epochs = 3\n\n[daemon]\nsettle_seconds = 0.0\nmin_new_rows = {batch_rows}\n"
+        );
+    let cfg = tmp.path().join("latency.toml");
+    fs::write(&cfg, text).unwrap();
+    let env = Env::new(&cfg);
+    // The existing store, in files of at most 100k rows, and a first model.
+    let t = Instant::now();
+    let mut files = Vec::new();
+    let mut first = 0;
+    while first < store_rows {
+        let n = (store_rows - first).min(100_000);
+        let p = tmp.path().join(format!("seed-{first}.csv"));
+        fs::write(&p, rows_csv(first, n)).unwrap();
+        files.push(p);
+        first += n;
+    }
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    eprintln!(
+        "seeded {store_rows} rows and a first model in {:.1} s",
+        t.elapsed().as_secs_f64()
+    );
+    let watch = Watch::start(&env);
+    let text = rows_csv(store_rows, batch_rows);
+    let audit = env.state().join("audit.jsonl");
+    let seen = |kinds: &[&str], after: usize| -> bool {
+        let text = fs::read_to_string(&audit).unwrap_or_default();
+        text.lines().skip(after).any(|l| {
+            serde_json::from_str::<serde_json::Value>(l)
+                .ok()
+                .and_then(|v| v["kind"].as_str().map(|k| kinds.contains(&k)))
+                .unwrap_or(false)
+        })
+    };
+    let before = fs::read_to_string(&audit).unwrap().lines().count();
+    // Measured when the entries are seen in audit.jsonl (polled every 5 ms).
+    let dropped = Instant::now();
+    publish(&env, "new.csv", &text);
+    let mut accepted = None;
+    let deadline = dropped + Duration::from_secs(1800);
+    let decided = loop {
+        if accepted.is_none() && seen(&["batch-accepted"], before) {
+            accepted = Some(dropped.elapsed());
+        }
+        if seen(&["promoted", "kept", "awaiting-approval"], before) {
+            break dropped.elapsed();
+        }
+        assert!(
+            Instant::now() < deadline,
+            "no decision: {}",
+            watch_log(&env)
+        );
+        std::thread::sleep(Duration::from_millis(5));
+    };
+    let accepted = accepted.unwrap_or(decided);
+    eprintln!(
+        "store {store_rows} rows, batch {batch_rows} rows: drop -> batch-accepted {} ms, drop -> decision {} ms",
+        accepted.as_millis(),
+        decided.as_millis()
+    );
+    for l in fs::read_to_string(&audit).unwrap().lines().skip(before) {
+        let v: serde_json::Value = serde_json::from_str(l).unwrap();
+        eprintln!(
+            "  {} {} {}",
+            v["kind"], v["candidates"], v["evidence"]["reason"]
+        );
+    }
+    let (c, _) = watch.stop();
+    assert_eq!(c, 0);
+}
