@@ -216,7 +216,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
     out.push_str(&super::table_styled(
         &["model", "kind", "epochs", "seconds", "holdout loss"],
         &rows,
-        cli.colored(),
+        false,
     ));
     out.push_str(&format!(
         "decision: {} — {}\n",
