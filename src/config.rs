@@ -285,6 +285,33 @@ impl Default for GateConfig {
     }
 }
 
+/// What the daemon does when an accepted batch drifts (a drift-report
+/// column flagged, or the serving model's loss rose on it).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum DriftAction {
+    /// Report only; cycles follow `min_new_rows` and `train_at`.
+    #[default]
+    None,
+    /// Start a normal cycle without waiting for `min_new_rows`.
+    Train,
+    /// Start a cycle whose winner waits for a person's approval.
+    Hold,
+    /// Start a cycle with a cold candidate beside the warm one.
+    Cold,
+}
+
+impl DriftAction {
+    pub fn name(self) -> &'static str {
+        match self {
+            DriftAction::None => "none",
+            DriftAction::Train => "train",
+            DriftAction::Hold => "hold",
+            DriftAction::Cold => "cold",
+        }
+    }
+}
+
 /// The watcher's settings.
 #[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
 #[serde(deny_unknown_fields, default)]
@@ -299,6 +326,8 @@ pub struct DaemonConfig {
     pub train_at: Option<String>,
     /// Seconds between full inbox listings, whatever the watcher reports.
     pub rescan_seconds: f64,
+    /// What a drifting batch triggers.
+    pub on_drift: DriftAction,
     /// "127.0.0.1:PORT" to serve /health and /metrics over HTTP; off when unset.
     pub metrics_addr: Option<String>,
     /// Allow a metrics_addr that is not a loopback address.
@@ -313,6 +342,7 @@ impl Default for DaemonConfig {
             min_new_rows: 1000,
             train_at: None,
             rescan_seconds: 60.0,
+            on_drift: DriftAction::None,
             metrics_addr: None,
             metrics_allow_remote: false,
         }

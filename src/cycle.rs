@@ -54,6 +54,9 @@ pub struct Options {
     pub force_cold: bool,
     /// Train and judge, but change nothing and record nothing.
     pub dry_run: bool,
+    /// A winning candidate waits for approval even outside approval mode
+    /// (`[daemon] on_drift = "hold"`).
+    pub hold: bool,
 }
 
 /// One trained candidate and its score.
@@ -309,7 +312,8 @@ pub fn run(
     let ridge = Ridge::fit(&cold_spec, &parts, lambda)
         .and_then(|r| r.row_losses(&holdout))
         .map(|l| mean(&l));
-    let policy = gate::Policy::from(&owner.config.gate);
+    let mut policy = gate::Policy::from(&owner.config.gate);
+    policy.require_approval |= options.hold;
     let candidate_scores = Scores::new(scored[judged].3.clone(), new_flags.clone());
     let (decision, baseline_loss) = match &serving {
         Some((_, _, ck)) => {

@@ -98,6 +98,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let options = Options {
         force_cold: args.cold,
         dry_run: args.dry_run,
+        hold: false,
     };
     let outcome = cycle::run(
         &mut owner,

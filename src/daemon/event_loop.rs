@@ -129,6 +129,8 @@ pub struct Daemon<C: Clock> {
     last_local: NaiveDateTime,
     daily_due: bool,
     untrained_rows: u64,
+    /// A batch since the last cycle drifted (see `[daemon] on_drift`).
+    drift_pending: bool,
     /// Batch count when a cycle last failed: no automatic retry until more arrive.
     blocked_at: Option<u64>,
     shared: Shared,
@@ -186,6 +188,7 @@ impl<C: Clock> Daemon<C> {
             last_local: now.with_timezone(&Local).naive_local(),
             daily_due: false,
             untrained_rows: 0,
+            drift_pending: false,
             blocked_at: None,
             shared,
             user: state::current_user(),
@@ -321,14 +324,33 @@ impl<C: Clock> Daemon<C> {
         let outcome = intake::take_file(owner, path, Source::Inbox, &self.user, self.clock.now());
         let shown = path.display();
         match outcome {
-            Ok(Outcome::Accepted { batch, .. }) => {
+            Ok(Outcome::Accepted { batch, entry }) => {
                 tracing::info!(
                     "{shown}: accepted as batch {} ({} rows)",
                     batch.id,
                     batch.rows()
                 );
                 self.untrained_rows += batch.rows();
-                after_accept(owner, &batch, &self.user);
+                let shifted = after_accept(owner, &batch, &self.user);
+                let flagged = match &entry.event {
+                    crate::audit::Event::BatchAccepted { drift: Some(d), .. } => {
+                        d.flagged().iter().map(|c| c.to_string()).collect()
+                    }
+                    _ => Vec::new(),
+                };
+                if shifted || !flagged.is_empty() {
+                    tracing::info!(
+                        "batch {}: drift ({}); on_drift = {}",
+                        batch.id,
+                        if flagged.is_empty() {
+                            "the serving model's loss rose".to_string()
+                        } else {
+                            flagged.join(", ")
+                        },
+                        owner.config.daemon.on_drift.name()
+                    );
+                    self.drift_pending = true;
+                }
             }
             Ok(Outcome::Duplicate { of, .. }) => {
                 tracing::info!("{shown}: duplicate of batch {of}; set aside in the archive")
@@ -456,6 +478,7 @@ impl<C: Clock> Daemon<C> {
                 let options = cycle::Options {
                     force_cold: cold,
                     dry_run,
+                    hold: false,
                 };
                 self.start_cycle(Why::Asked, options, Some((reply, json)), &user)?;
                 self.blocked_at = None;
@@ -547,11 +570,22 @@ impl<C: Clock> Daemon<C> {
             daily_due: self.daily_due,
             inbox_quiet: self.settler.settling(now) == 0 && now - self.last_wake >= self.settle,
             blocked: self.blocked_at.is_some_and(|b| batches <= b),
+            drift: self.drift_pending
+                && owner.config.daemon.on_drift != crate::config::DriftAction::None,
         };
         if let Some(why) = trigger::decide(inputs) {
             self.daily_due = false;
+            let mut options = cycle::Options::default();
+            if self.drift_pending {
+                match owner.config.daemon.on_drift {
+                    crate::config::DriftAction::None | crate::config::DriftAction::Train => {}
+                    crate::config::DriftAction::Hold => options.hold = true,
+                    crate::config::DriftAction::Cold => options.force_cold = true,
+                }
+            }
+            self.drift_pending = false;
             let user = self.user.clone();
-            self.start_cycle(why, cycle::Options::default(), None, &user)?;
+            self.start_cycle(why, options, None, &user)?;
         }
         Ok(())
     }
@@ -848,18 +882,24 @@ pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
 /// check (serving model against the one it replaced, on the new rows; it
 /// may roll back). The batch is stored whatever the check finds, and a
 /// check that cannot run is reported, not fatal, as with `ingest`.
-pub fn after_accept(owner: &mut Owner, batch: &BatchRecord, user: &str) {
+/// Returns whether the check saw the serving model's loss rise on the
+/// batch (a shift the per-column drift statistics may not see).
+pub fn after_accept(owner: &mut Owner, batch: &BatchRecord, user: &str) -> bool {
     match crate::fresh::check_batch(owner, batch.id, user) {
         Ok(Some(found)) => {
             tracing::info!("batch {}: fresh-data check: {}", batch.id, found.verdict());
             if let Some(r) = &found.rollback {
                 tracing::warn!("batch {}: {}", batch.id, r.event.summary());
             }
+            found.verdict() == "shifted"
         }
-        Ok(None) => {}
-        Err(e) => tracing::warn!(
-            "batch {}: the fresh-data check could not run: {e}",
-            batch.id
-        ),
+        Ok(None) => false,
+        Err(e) => {
+            tracing::warn!(
+                "batch {}: the fresh-data check could not run: {e}",
+                batch.id
+            );
+            false
+        }
     }
 }

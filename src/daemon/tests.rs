@@ -226,6 +226,41 @@ fn a_burst_of_files_becomes_one_cycle_once_enough_rows_arrived() {
 }
 
 #[test]
+fn a_drifting_batch_starts_a_cycle_below_min_new_rows() {
+    // Ids rise from file to file, so the second file's `id` column lies
+    // wholly above the stored one: its drift report flags it.
+    let mut r = rig("settle_seconds = 1.0\nmin_new_rows = 1000\non_drift = \"hold\"");
+    r.publish("a.csv", 40);
+    r.step(Event::InboxChanged);
+    r.tick_after(1000);
+    r.tick_after(1000);
+    assert_eq!(
+        r.daemon.cycles_started, 0,
+        "the first file has nothing to drift from"
+    );
+    r.publish("b.csv", 40);
+    r.step(Event::InboxChanged);
+    r.tick_after(1000);
+    r.tick_after(1000);
+    assert_eq!(
+        r.daemon.cycles_started, 1,
+        "drift started a cycle below min_new_rows"
+    );
+    r.finish_training();
+    assert_eq!(r.count("cycle-started"), 1, "{:?}", r.kinds());
+    // With the default "none" the same files start nothing.
+    let mut quiet = rig("settle_seconds = 1.0\nmin_new_rows = 1000");
+    for name in ["a.csv", "b.csv"] {
+        quiet.publish(name, 40);
+        quiet.step(Event::InboxChanged);
+        quiet.tick_after(1000);
+        quiet.tick_after(1000);
+    }
+    assert_eq!(quiet.count("batch-accepted"), 2);
+    assert_eq!(quiet.daemon.cycles_started, 0);
+}
+
+#[test]
 fn files_and_commands_arriving_during_training_wait_for_the_cycle() {
     let mut r = rig("settle_seconds = 0.0\nmin_new_rows = 10");
     r.publish("a.csv", 20);

@@ -18,6 +18,8 @@ pub enum Why {
     Daily,
     /// A `retrain` command.
     Asked,
+    /// A batch drifted (`[daemon] on_drift`).
+    Drift,
 }
 
 impl Why {
@@ -26,6 +28,7 @@ impl Why {
             Why::Rows => "enough new rows",
             Why::Daily => "daily training time",
             Why::Asked => "retrain command",
+            Why::Drift => "a batch drifted",
         }
     }
 }
@@ -43,6 +46,8 @@ pub struct Inputs {
     /// The last cycle failed (or a candidate awaits approval) and no batch
     /// arrived since: trying again would fail the same way.
     pub blocked: bool,
+    /// A batch accepted since the last cycle drifted.
+    pub drift: bool,
 }
 
 /// Whether to start a cycle now, and why.
@@ -52,6 +57,8 @@ pub fn decide(i: Inputs) -> Option<Why> {
     }
     if i.untrained_rows >= i.min_new_rows.max(1) {
         Some(Why::Rows)
+    } else if i.drift {
+        Some(Why::Drift)
     } else if i.daily_due {
         Some(Why::Daily)
     } else {
@@ -86,6 +93,7 @@ mod tests {
             daily_due: false,
             inbox_quiet: true,
             blocked: false,
+            drift: false,
         }
     }
 
@@ -126,6 +134,37 @@ mod tests {
             ..inputs(0)
         };
         assert_eq!(decide(nothing), None);
+    }
+
+    #[test]
+    fn a_drifting_batch_starts_a_cycle_below_the_threshold_when_quiet() {
+        let drift = Inputs {
+            drift: true,
+            ..inputs(40)
+        };
+        assert_eq!(decide(drift), Some(Why::Drift));
+        assert_eq!(
+            decide(Inputs {
+                inbox_quiet: false,
+                ..drift
+            }),
+            None
+        );
+        assert_eq!(
+            decide(Inputs {
+                blocked: true,
+                ..drift
+            }),
+            None
+        );
+        // Enough rows say so first.
+        assert_eq!(
+            decide(Inputs {
+                drift: true,
+                ..inputs(500)
+            }),
+            Some(Why::Rows)
+        );
     }
 
     #[test]
