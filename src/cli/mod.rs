@@ -9,6 +9,7 @@ mod init;
 mod log;
 mod models;
 mod predict;
+mod report;
 mod retrain;
 mod rollback;
 mod status;
@@ -90,6 +91,8 @@ pub enum Command {
     Predict(predict::Args),
     /// Check the audit chain, the store against the log, and the archive.
     Verify(verify::Args),
+    /// Write a self-contained HTML page with charts of the models, data and audit log.
+    Report(report::Args),
 }
 
 /// Runs a parsed command line.
@@ -107,6 +110,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Rollback(a) => rollback::run(cli, &state, a),
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
+        Command::Report(a) => report::run(cli, &state, a),
     }
 }
 
