@@ -4,6 +4,7 @@
 mod crash;
 mod ingest;
 mod lifecycle;
+mod report;
 mod support;
 mod tamper;
 mod training;
