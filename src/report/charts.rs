@@ -12,6 +12,9 @@ use crate::model::TrainingSummary;
 
 type DrawResult = Result<(), DrawingAreaErrorKind<std::io::Error>>;
 
+/// Legend label, marker and the test that picks the files it marks.
+type ArrivalMarker = (&'static str, Shape, RGBColor, fn(&Arrival) -> bool);
+
 pub const WIDTH: u32 = 1000;
 
 const INK: RGBColor = RGBColor(0x1d, 0x2b, 0x36);
@@ -396,7 +399,7 @@ pub fn rows(t: &Timeline) -> anyhow::Result<Option<String>> {
                 .map(|(i, f)| (i as f64 + 1.0, f.rows_stored as f64))
                 .collect();
             chart.draw_series(LineSeries::new(line, INK.stroke_width(2)))?;
-            let kinds: [(&str, Shape, RGBColor, fn(&Arrival) -> bool); 4] = [
+            let kinds: [ArrivalMarker; 4] = [
                 (
                     "accepted",
                     Shape::Disc,
