@@ -25,6 +25,7 @@ pub mod intake;
 pub mod lifecycle;
 pub mod model;
 pub mod refold;
+pub mod report;
 pub mod rng;
 pub mod schema;
 pub mod state;

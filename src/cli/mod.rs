@@ -13,6 +13,7 @@ mod log;
 mod migrate;
 mod models;
 mod predict;
+mod report;
 mod retrain;
 mod rollback;
 mod status;
@@ -115,6 +116,8 @@ pub enum Command {
     Migrate(migrate::Args),
     /// Run as the daemon: take inbox files, retrain as data arrives, answer the CLI.
     Watch(watch::Args),
+    /// Write a self-contained HTML page with charts of the models, data and audit log.
+    Report(report::Args),
 }
 
 /// Runs a parsed command line.
@@ -142,6 +145,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
         Command::Watch(a) => watch::run(cli, &state, a),
+        Command::Report(a) => report::run(cli, &state, a),
     }
 }
 

@@ -9,6 +9,7 @@ mod faults;
 mod ingest;
 mod lifecycle;
 mod migrate;
+mod report;
 mod support;
 mod tamper;
 mod training;

@@ -1,0 +1,430 @@
+//! `tidegate report`: one self-contained HTML page (inline CSS and SVG, no
+//! script, no URL) that shows a state dir's history: holdout loss per model
+//! version with the gate's decisions and the baselines, training curves,
+//! rows stored, the serving model's response over two inputs, first-layer
+//! weight per input column, fresh-data checks, drift flags and the audit log.
+//!
+//! Reads files only (`gather`), so it works while another process owns the
+//! state dir. `scan` computes what the serving model does, `charts` draws,
+//! `html` lays out and escapes.
+
+pub mod charts;
+pub mod gather;
+pub mod html;
+pub mod scan;
+
+use chrono::{DateTime, SecondsFormat, Utc};
+
+use crate::config::Config;
+use crate::ingest::Limits;
+use crate::model::checkpoint::{Checkpoint, model_dir};
+use crate::schema::Schema;
+use crate::state::StateDir;
+use gather::{Arrival, Timeline};
+use html::{escape, figure, missing, note, section, table};
+
+/// Training curves of this many of the newest model versions.
+pub const CURVES_SHOWN: usize = 4;
+
+/// What the user chose for the page.
+#[derive(Debug, Clone, Default)]
+pub struct Options {
+    /// Inputs of the response map (default: the first two number inputs).
+    pub x: Option<String>,
+    pub y: Option<String>,
+}
+
+/// The page and a few counts for the command's message.
+#[derive(Debug, Clone)]
+pub struct Report {
+    pub html: String,
+    pub charts: usize,
+    pub events: usize,
+}
+
+fn loss(v: f64) -> String {
+    format!("{v:.4}")
+}
+
+fn maybe(v: Option<f64>) -> String {
+    v.map_or_else(|| "-".into(), |p| format!("{p:.4}"))
+}
+
+/// Builds the report of `state` (read-only).
+pub fn build(
+    state: &StateDir,
+    config: &Config,
+    options: &Options,
+    now: DateTime<Utc>,
+) -> anyhow::Result<Report> {
+    let entries = state.mirror().entries()?;
+    let t = gather::timeline(&entries);
+    let serving = gather::serving(state)?;
+    let (manifests, mut notes) = gather::manifests(&state.models());
+    let schema = Schema::from_config(config);
+    let mut charts = 0;
+    let mut body = String::new();
+
+    // 1. Holdout loss per model version.
+    let mut s = note(
+        "Mean loss on the holdout rows of every candidate, by the retrain cycle that trained it; \
+         the marker says what the log records as its latest fate. Dashed lines: the cycle's ridge \
+         regression and trivial predictor, fitted on the same rows and scored on the same holdout rows.",
+    );
+    match charts::holdout(&t)? {
+        Some(svg) => {
+            charts += 1;
+            s.push_str(&figure(&svg, "holdout loss per model version (log scale)"));
+            let rows: Vec<Vec<String>> = t
+                .candidates
+                .iter()
+                .map(|c| {
+                    vec![
+                        format!(
+                            "{}{}",
+                            c.model,
+                            if serving == Some(c.model) {
+                                " (serving)"
+                            } else {
+                                ""
+                            }
+                        ),
+                        c.cycle.to_string(),
+                        c.run.clone(),
+                        loss(c.holdout_loss),
+                        c.fate.label().to_string(),
+                        c.time.clone(),
+                    ]
+                })
+                .collect();
+            s.push_str(&table(
+                "models",
+                &[
+                    "model",
+                    "cycle",
+                    "run",
+                    "holdout loss",
+                    "fate",
+                    "trained (UTC)",
+                ],
+                &rows,
+                &[],
+            ));
+        }
+        None => s.push_str(&missing(
+            "No candidate has been trained yet: ingest data and run `tidegate retrain`.",
+        )),
+    }
+    body.push_str(&section("holdout", "1. Holdout loss per model version", &s));
+
+    // 2. Training curves of the newest versions.
+    let mut s = note(
+        "Mean training loss per epoch over the mini-batches (solid) and loss on the rows held \
+         aside for early stopping (dashed) of the newest model versions; a ring marks the epoch \
+         whose weights were kept.",
+    );
+    let newest: Vec<(String, &crate::model::TrainingSummary)> = manifests
+        .iter()
+        .rev()
+        .take(CURVES_SHOWN)
+        .map(|(id, m)| {
+            (
+                format!("{id} {}", crate::cycle::run_name(m.kind)),
+                &m.summary,
+            )
+        })
+        .collect::<Vec<_>>()
+        .into_iter()
+        .rev()
+        .collect();
+    match charts::curves(&newest)? {
+        Some(svg) => {
+            charts += 1;
+            s.push_str(&figure(&svg, "training and validation loss per epoch"));
+        }
+        None => s.push_str(&missing(
+            "No model version with training curves in models/: run `tidegate retrain`.",
+        )),
+    }
+    body.push_str(&section("curves", "2. Training curves", &s));
+
+    // 3. Rows stored.
+    let mut s = note(
+        "Rows in the store after each file arrived. Refused files store nothing and are marked; \
+         so are duplicates and batches whose drift report flagged a column.",
+    );
+    match charts::rows(&t)? {
+        Some(svg) => {
+            charts += 1;
+            s.push_str(&figure(&svg, "rows stored, file by file"));
+        }
+        None => s.push_str(&missing(
+            "No file has arrived yet: run `tidegate ingest FILE`.",
+        )),
+    }
+    let refused: Vec<Vec<String>> = t
+        .files
+        .iter()
+        .filter_map(|f| match &f.what {
+            Arrival::Rejected {
+                problems,
+                first_problem,
+            } => Some(vec![
+                f.file.clone(),
+                f.time.clone(),
+                problems.to_string(),
+                first_problem.clone(),
+            ]),
+            _ => None,
+        })
+        .collect();
+    if !refused.is_empty() {
+        s.push_str("<h3>Refused files</h3>\n");
+        s.push_str(&table(
+            "refused",
+            &["file", "time (UTC)", "problems", "first problem"],
+            &refused,
+            &[],
+        ));
+    }
+    body.push_str(&section("rows", "3. Rows stored", &s));
+
+    // 4 and 5 need the serving model.
+    let loaded = match serving {
+        None => Err("No model serves yet: run `tidegate retrain` once the data is in.".to_string()),
+        Some(id) => Checkpoint::load(
+            &model_dir(&state.models(), id),
+            &config.schema_fingerprint(),
+        )
+        .map_err(|e| format!("The serving model {id} cannot be loaded: {e}")),
+    };
+    let mut s = note(
+        "The serving model's output over a grid of two number inputs, every other input held at \
+         its median (numbers) or most frequent value (categories) among the stored rows; the dots \
+         are stored rows. Pick the inputs with --x and --y.",
+    );
+    match &loaded {
+        Err(why) => s.push_str(&missing(why)),
+        Ok(cp) => match scan::pick_axes(&schema, options.x.as_deref(), options.y.as_deref()) {
+            Err(why) => s.push_str(&missing(&format!("No response map: {why}."))),
+            Ok(axes) => {
+                let limits = Limits {
+                    max_file_bytes: config.data.max_file_bytes,
+                    max_field_bytes: config.data.max_field_bytes,
+                    holdout_fraction: *config.data.holdout_fraction.get_ref(),
+                };
+                let mut vocabs = cp.manifest.vocabularies();
+                let (rows, row_notes) =
+                    gather::stored_rows(state, &t.batches(), &schema, &mut vocabs, &limits);
+                notes.extend(row_notes);
+                match scan::response_map(
+                    &cp.model,
+                    &schema,
+                    &vocabs,
+                    &rows,
+                    axes,
+                    config.training.predict_backend,
+                )? {
+                    None => s.push_str(&missing(
+                        "No stored row has values in both inputs, so there is no range to scan.",
+                    )),
+                    Some(map) => {
+                        charts += 1;
+                        s.push_str(&figure(
+                            &charts::response(&map)?,
+                            &format!(
+                                "{} of {} over {} and {} ({}×{} grid, {} stored rows drawn)",
+                                map.value_label,
+                                cp.manifest.id,
+                                map.x_name,
+                                map.y_name,
+                                scan::GRID,
+                                scan::GRID,
+                                map.points.len()
+                            ),
+                        ));
+                        if !map.held.is_empty() {
+                            let held: Vec<Vec<String>> = map
+                                .held
+                                .iter()
+                                .map(|(c, v)| vec![c.clone(), v.clone()])
+                                .collect();
+                            s.push_str("<h3>Other inputs held at</h3>\n");
+                            s.push_str(&table("held", &["column", "value"], &held, &[]));
+                        }
+                    }
+                }
+            }
+        },
+    }
+    body.push_str(&section("response", "4. Response of the serving model", &s));
+
+    let mut s = note(
+        "Sum of the absolute first-layer weights from each input column's encoded inputs (one \
+         per number column, standardised, so they compare; one per known value for a category \
+         column). A large sum means the network listens to that column, not that it matters \
+         causally.",
+    );
+    match &loaded {
+        Err(why) => s.push_str(&missing(why)),
+        Ok(cp) => {
+            let weights = cp.model.weights();
+            let items = weights
+                .first()
+                .map(|first| scan::influence(cp.model.spec(), first, &schema))
+                .unwrap_or_default();
+            match charts::influence(&items)? {
+                Some(svg) => {
+                    charts += 1;
+                    s.push_str(&figure(
+                        &svg,
+                        &format!("first-layer weight per input column of {}", cp.manifest.id),
+                    ));
+                }
+                None => s.push_str(&missing("The serving model has no first layer to show.")),
+            }
+        }
+    }
+    body.push_str(&section("influence", "5. Input influence", &s));
+
+    body.push_str(&section(
+        "checks",
+        "6. Fresh-data checks and drift",
+        &checks(&t),
+    ));
+
+    // 7. The audit log, newest first.
+    let mut s = note(&format!(
+        "Every entry of {} ({} entries), newest first. `tidegate verify` checks the hash chain.",
+        state.audit().display(),
+        entries.len()
+    ));
+    let rows: Vec<Vec<String>> = entries
+        .iter()
+        .rev()
+        .map(|e| {
+            vec![
+                e.seq.0.to_string(),
+                e.time.clone(),
+                e.user.clone(),
+                e.event.kind().to_string(),
+                e.event.summary(),
+            ]
+        })
+        .collect();
+    let attrs: Vec<String> = entries
+        .iter()
+        .rev()
+        .map(|e| format!(" data-seq=\"{}\"", e.seq.0))
+        .collect();
+    if rows.is_empty() {
+        s.push_str(&missing("The audit log is empty."));
+    } else {
+        s.push_str(&table(
+            "log",
+            &["#", "time (UTC)", "user", "kind", "what happened"],
+            &rows,
+            &attrs,
+        ));
+    }
+    body.push_str(&section("log", "7. Audit log", &s));
+
+    if !notes.is_empty() {
+        body.push_str("<section id=\"notes\">\n<h2>Left out</h2>\n<ul class=\"notes\">\n");
+        for n in &notes {
+            body.push_str(&format!("<li>{}</li>\n", escape(n)));
+        }
+        body.push_str("</ul>\n</section>\n");
+    }
+
+    let stored = t.files.last().map_or(0, |f| f.rows_stored);
+    let header = format!(
+        "<h1>tidegate report</h1>\n<p class=\"facts\">state dir <b>{}</b> · made {} · serving <b>{}</b> · \
+         <b>{stored}</b> rows in <b>{}</b> batches · <b>{}</b> model versions · target <b>{}</b> ({})</p>\n",
+        escape(&state.root().display().to_string()),
+        escape(&now.to_rfc3339_opts(SecondsFormat::Secs, true)),
+        escape(&serving.map_or_else(|| "none".to_string(), |m| m.to_string())),
+        t.batches().len(),
+        manifests.len(),
+        escape(&schema.columns[schema.target].name),
+        escape(&schema.task.to_string()),
+    );
+    let nav = [
+        ("holdout", "holdout loss"),
+        ("curves", "training curves"),
+        ("rows", "rows stored"),
+        ("response", "response map"),
+        ("influence", "input influence"),
+        ("checks", "checks and drift"),
+        ("log", "audit log"),
+    ];
+    Ok(Report {
+        html: html::page("tidegate report", &header, &nav, &body),
+        charts,
+        events: entries.len(),
+    })
+}
+
+/// Tables of the fresh-data checks and of drift-flagged batches.
+fn checks(t: &Timeline) -> String {
+    let mut s = note(
+        "Each accepted batch is scored by the serving model before anything trains on it: \
+         \"shifted\" means its loss on the batch is significantly above its usual holdout loss \
+         (p shift), \"regressed\" that the model it replaced does better on it (p regression). \
+         Drift compares each column of a batch with the stored training rows.",
+    );
+    s.push_str("<h3>Fresh-data checks</h3>\n");
+    if t.fresh.is_empty() {
+        s.push_str(&missing(
+            "No fresh-data check yet: batches are checked once a model serves.",
+        ));
+    } else {
+        let rows: Vec<Vec<String>> = t
+            .fresh
+            .iter()
+            .map(|f| {
+                vec![
+                    f.batch.to_string(),
+                    f.serving.to_string(),
+                    f.verdict.clone(),
+                    maybe(f.p_shift),
+                    maybe(f.p_regression),
+                ]
+            })
+            .collect();
+        s.push_str(&table(
+            "fresh",
+            &[
+                "batch",
+                "serving model",
+                "verdict",
+                "p shift",
+                "p regression",
+            ],
+            &rows,
+            &[],
+        ));
+    }
+    s.push_str("<h3>Drift flags</h3>\n");
+    let drifted: Vec<Vec<String>> = t
+        .files
+        .iter()
+        .filter_map(|f| match &f.what {
+            Arrival::Accepted { batch, drifted, .. } if !drifted.is_empty() => {
+                Some(vec![batch.to_string(), f.file.clone(), drifted.join(", ")])
+            }
+            _ => None,
+        })
+        .collect();
+    if drifted.is_empty() {
+        s.push_str(&missing("No accepted batch has a drift-flagged column."));
+    } else {
+        s.push_str(&table(
+            "drift",
+            &["batch", "file", "flagged columns"],
+            &drifted,
+            &[],
+        ));
+    }
+    s
+}
