@@ -201,6 +201,16 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
     }
     let serving = owner.store.serving()?;
     drop(owner);
+    // The page to look at the story rather than read it.
+    let report_path = state.root().join("report.html");
+    let built = crate::report::build(
+        &state,
+        &config,
+        &crate::report::Options::default(),
+        chrono::Utc::now(),
+    )?;
+    crate::fsutil::write_atomic(&report_path, built.html.as_bytes())
+        .with_context(|| format!("cannot write {}", report_path.display()))?;
 
     if quiet {
         let v = serde_json::json!({
@@ -212,6 +222,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
             })).collect::<Vec<_>>(),
             "rollback": rollback_line,
             "serving": serving,
+            "report": report_path,
             "seconds": started.elapsed().as_secs_f64(),
         });
         emit(&format!("{v}\n"))?;
@@ -257,9 +268,10 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
         out.push_str(&format!("- a person rolls back: {line}\n"));
     }
     out.push_str(&format!(
-        "serving now: {}\nfinished in {:.1} s\n\nexplore:\n",
+        "serving now: {}\nfinished in {:.1} s\n\nreport (open in a browser): {}\n\nexplore:\n",
         serving.map_or_else(|| "none".to_string(), |m| m.to_string()),
-        started.elapsed().as_secs_f64()
+        started.elapsed().as_secs_f64(),
+        report_path.display()
     ));
     let root = state.root().display();
     out.push_str(&format!(

@@ -33,6 +33,12 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
         automatic || !v["rollback"].is_null(),
         "a rollback of either kind: {v}"
     );
+    let report = std::path::PathBuf::from(v["report"].as_str().unwrap());
+    let page = std::fs::read_to_string(&report).unwrap();
+    assert!(
+        page.contains("<svg") && !page.contains("<script"),
+        "a self-contained page"
+    );
     // The budget is one minute on 2 cores after the build.
     assert!(v["seconds"].as_f64().unwrap() < 60.0, "{v}");
     let verify = std::process::Command::new(bin)
