@@ -10,6 +10,7 @@ mod ingest;
 mod lifecycle;
 mod migrate;
 mod report;
+mod screens;
 mod support;
 mod tamper;
 mod training;
