@@ -550,6 +550,17 @@ pub struct Entry {
 pub struct ParseError(String);
 
 impl Entry {
+    /// The entry as a table row: seq, time, user, kind, what happened.
+    pub fn cells(&self) -> Vec<String> {
+        vec![
+            self.seq.0.to_string(),
+            self.time.clone(),
+            self.user.clone(),
+            self.event.kind().to_string(),
+            self.event.summary(),
+        ]
+    }
+
     /// Builds the entry and computes its hash.
     pub fn seal(seq: AuditSeq, time: DateTime<Utc>, user: &str, event: Event, prev: &str) -> Entry {
         let mut entry = Entry {

@@ -72,18 +72,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             out.push('\n');
         }
     } else {
-        let rows: Vec<Vec<String>> = shown
-            .iter()
-            .map(|e| {
-                vec![
-                    e.seq.0.to_string(),
-                    e.time.clone(),
-                    e.user.clone(),
-                    e.event.kind().to_string(),
-                    e.event.summary(),
-                ]
-            })
-            .collect();
+        let rows: Vec<Vec<String>> = shown.iter().map(|e| e.cells()).collect();
         out = super::table_styled(
             &["seq", "time (UTC)", "user", "kind", "what"],
             &rows,

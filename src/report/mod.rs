@@ -299,19 +299,7 @@ pub fn build(
         state.audit().display(),
         entries.len()
     ));
-    let rows: Vec<Vec<String>> = entries
-        .iter()
-        .rev()
-        .map(|e| {
-            vec![
-                e.seq.0.to_string(),
-                e.time.clone(),
-                e.user.clone(),
-                e.event.kind().to_string(),
-                e.event.summary(),
-            ]
-        })
-        .collect();
+    let rows: Vec<Vec<String>> = entries.iter().rev().map(|e| e.cells()).collect();
     let attrs: Vec<String> = entries
         .iter()
         .rev()
