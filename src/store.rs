@@ -519,28 +519,8 @@ impl Store {
             holdout_rows: self.totals.holdout_rows + record.holdout_rows,
             train_stats: self.totals.train_stats.merge(&train_stats),
         };
-        let mut chunk_values: Vec<(Vec<u8>, Vec<u8>)> = Vec::new();
-        for (split, rows) in [
-            (Split::Train, &batch.train),
-            (Split::Holdout, &batch.holdout),
-        ] {
-            let per_chunk = (CHUNK_CELLS / rows.width()).max(1) * rows.width();
-            for (i, cells) in rows.cells().chunks(per_chunk).enumerate() {
-                let mut key = Vec::with_capacity(13);
-                key.extend_from_slice(&id.key());
-                key.push(split.byte());
-                key.extend_from_slice(
-                    &u32::try_from(i)
-                        .expect("fewer than 2^32 chunks")
-                        .to_be_bytes(),
-                );
-                let mut val = Vec::with_capacity(cells.len() * 4);
-                for c in cells {
-                    val.extend_from_slice(&c.to_le_bytes());
-                }
-                chunk_values.push((key, val));
-            }
-        }
+        let mut chunk_values = chunk_entries(id, Split::Train, &batch.train);
+        chunk_values.extend(chunk_entries(id, Split::Holdout, &batch.holdout));
         let mut vocab_values: Vec<([u8; 8], Vec<u8>)> = Vec::new();
         for (ci, values) in &batch.new_categories {
             let start = self.vocabs.get(ci).map_or(0, Vocab::len);
@@ -625,20 +605,7 @@ impl Store {
         for rec in self.batches()? {
             for split in [Split::Train, Split::Holdout] {
                 let moved = plan.rows(&self.rows(split, Some(rec.id), Some(rec.id))?, new_schema);
-                let width = new_schema.width();
-                let per_chunk = (CHUNK_CELLS / width).max(1) * width;
-                for (i, cells) in moved.cells().chunks(per_chunk).enumerate() {
-                    let mut key = Vec::with_capacity(13);
-                    key.extend_from_slice(&rec.id.key());
-                    key.push(split.byte());
-                    key.extend_from_slice(
-                        &u32::try_from(i)
-                            .expect("fewer than 2^32 chunks")
-                            .to_be_bytes(),
-                    );
-                    let val: Vec<u8> = cells.iter().flat_map(|c| c.to_le_bytes()).collect();
-                    chunk_values.push((key, val));
-                }
+                chunk_values.extend(chunk_entries(rec.id, split, &moved));
             }
             let mut rec = rec;
             rec.train_stats = plan.stats(&rec.train_stats);
@@ -767,6 +734,28 @@ impl Store {
         })?;
         Ok(())
     }
+}
+
+/// A batch's rows on one side of the split as `chunks` entries: keys
+/// (batch, split byte, chunk number) and values of whole rows under 64 KiB.
+fn chunk_entries(id: BatchId, split: Split, rows: &RowMatrix) -> Vec<(Vec<u8>, Vec<u8>)> {
+    let per_chunk = (CHUNK_CELLS / rows.width().max(1)).max(1) * rows.width().max(1);
+    rows.cells()
+        .chunks(per_chunk)
+        .enumerate()
+        .map(|(i, cells)| {
+            let mut key = Vec::with_capacity(13);
+            key.extend_from_slice(&id.key());
+            key.push(split.byte());
+            key.extend_from_slice(
+                &u32::try_from(i)
+                    .expect("fewer than 2^32 chunks")
+                    .to_be_bytes(),
+            );
+            let val: Vec<u8> = cells.iter().flat_map(|c| c.to_le_bytes()).collect();
+            (key, val)
+        })
+        .collect()
 }
 
 /// The one place sled's settings are chosen.
