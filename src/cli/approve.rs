@@ -10,10 +10,10 @@ use crate::state::StateDir;
 pub struct Args {
     /// The waiting candidate (see `tidegate status`).
     #[arg(value_name = "ID")]
-    model: ModelId,
+    pub(super) model: ModelId,
     /// Why, for the audit log.
     #[arg(long, value_name = "TEXT")]
-    reason: String,
+    pub(super) reason: String,
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {

@@ -2,19 +2,11 @@
 //! approval mode; recorded with the acting user.
 
 use super::{Cli, Exit};
-use crate::ids::ModelId;
 use crate::lifecycle;
 use crate::state::StateDir;
 
-#[derive(Debug, clap::Args)]
-pub struct Args {
-    /// The waiting candidate (see `tidegate status`).
-    #[arg(value_name = "ID")]
-    model: ModelId,
-    /// Why, for the audit log.
-    #[arg(long, value_name = "TEXT")]
-    reason: String,
-}
+/// The same arguments as `approve`: the waiting candidate and why.
+pub use super::approve::Args;
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let request = crate::daemon::Request::Decline {
