@@ -231,7 +231,7 @@ pub fn run(
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
     // Number columns whose stats moved far are restandardised the same way.
-    let widened = match serving.as_ref().filter(|_| want_warm) {
+    let warm_parent = match serving.as_ref().filter(|_| want_warm) {
         Some((_, _, ck)) => {
             let (wide, added) = ck.model.widened(store.vocabularies())?;
             let (parent, rescaled) = wide.rescaled(
@@ -242,7 +242,7 @@ pub fn run(
         }
         None => None,
     };
-    let rescaled_columns: Vec<String> = widened
+    let rescaled_columns: Vec<String> = warm_parent
         .as_ref()
         .map(|(_, _, cols)| {
             cols.iter()
@@ -250,7 +250,7 @@ pub fn run(
                 .collect()
         })
         .unwrap_or_default();
-    let widened_columns: std::collections::BTreeMap<String, usize> = widened
+    let widened_columns: std::collections::BTreeMap<String, usize> = warm_parent
         .as_ref()
         .map(|(_, added, _)| {
             added
@@ -260,7 +260,7 @@ pub fn run(
         })
         .unwrap_or_default();
     let (warm, cold) = std::thread::scope(|scope| {
-        let warm = widened.as_ref().map(|(parent, _, _)| {
+        let warm = warm_parent.as_ref().map(|(parent, _, _)| {
             let (new_train, older_train) = (&new_train, &older_train);
             scope.spawn(move || {
                 train::train_warm(
