@@ -4,7 +4,7 @@
 //! storing, archiving and logging belong to `intake`. A file is refused
 //! whole when any row is bad, so a batch is either all stored or not at all.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::BTreeMap;
 use std::fs;
 use std::io::Read;
 use std::path::{Path, PathBuf};
@@ -337,16 +337,63 @@ fn parse_rows(
     limits: &Limits,
     purpose: Purpose,
 ) -> Result<Parsed, Refusal> {
+    let parts = if bytes.len() < PARALLEL_MIN_BYTES {
+        1
+    } else {
+        std::thread::available_parallelism().map_or(1, |n| n.get().min(MAX_PARTS))
+    };
+    parse_rows_in_parts(bytes, schema, stored, limits, purpose, parts)
+}
+
+/// Files at least this large are parsed in parts on several threads.
+const PARALLEL_MIN_BYTES: usize = 1 << 20;
+/// At most this many parts (threads) per file.
+const MAX_PARTS: usize = 8;
+
+/// What every part of one file is parsed against.
+struct Context<'a> {
+    schema: &'a Schema,
+    stored: &'a Vocabularies,
+    limits: &'a Limits,
+    purpose: Purpose,
+    /// Schema column of each field of a row.
+    order: &'a [usize],
+    n_fields: usize,
+    odd_quotes: bool,
+    has_target: bool,
+}
+
+/// The outcome of parsing one stretch of whole lines.
+struct Part {
+    rows: RowMatrix,
+    holdout: Vec<bool>,
+    /// Per column: the stored vocabulary plus values first seen in this part
+    /// (codes from the stored length on, in order of first appearance).
+    vocabs: Vec<Option<schema::Vocab>>,
+    new_categories: BTreeMap<usize, Vec<String>>,
+    problems: Problems,
+    rows_seen: usize,
+}
+
+/// Like `parse_rows`, with the number of parts chosen by the caller. The
+/// result is the same for every number of parts: rows in file order, codes
+/// for new category values in order of first appearance, the same problems
+/// with the same line numbers.
+fn parse_rows_in_parts(
+    bytes: &[u8],
+    schema: &Schema,
+    stored: &Vocabularies,
+    limits: &Limits,
+    purpose: Purpose,
+    parts: usize,
+) -> Result<Parsed, Refusal> {
     if bytes.is_empty() {
         return Err(Refusal::whole_file(
             "the file is empty; expected a header line naming the columns, then rows",
         ));
     }
-    if bytes.contains(&0) {
-        let line = 1 + bytes[..bytes.iter().position(|&b| b == 0).unwrap_or(0)]
-            .iter()
-            .filter(|&&b| b == b'\n')
-            .count() as u64;
+    if let Some(at) = bytes.iter().position(|&b| b == 0) {
+        let line = 1 + bytes[..at].iter().filter(|&&b| b == b'\n').count() as u64;
         return Err(Refusal {
             problems: vec![Problem {
                 line,
@@ -366,46 +413,163 @@ fn parse_rows(
         .has_headers(false)
         .flexible(true)
         .from_reader(bytes);
-    let mut records = reader.byte_records();
-
-    let header = match records.next() {
-        None => return Err(Refusal::whole_file("the file has no header line")),
-        Some(Err(e)) => return Err(Refusal::header(format!("cannot read the header: {e}"))),
-        Some(Ok(h)) => h,
-    };
+    let mut header = csv::ByteRecord::new();
+    match reader.read_byte_record(&mut header) {
+        Ok(false) => return Err(Refusal::whole_file("the file has no header line")),
+        Err(e) => return Err(Refusal::header(format!("cannot read the header: {e}"))),
+        Ok(true) => {}
+    }
+    let body_start = usize::try_from(reader.position().byte()).expect("offset fits in memory");
     let optional_target = (purpose == Purpose::Score).then_some(schema.target);
     let order = match map_header(&header, schema, optional_target) {
         Ok(o) => o,
         Err(reason) => return Err(Refusal::header(reason)),
     };
-    let has_target = order.contains(&schema.target);
-    let n_fields = header.len();
-    let odd_quotes = bytes.iter().filter(|&&b| b == b'"').count() % 2 == 1;
-
-    let mut vocabs: HashMap<usize, schema::Vocab> = HashMap::new();
-    let mut new_categories: BTreeMap<usize, Vec<String>> = BTreeMap::new();
-    let mut problems = Problems {
-        listed: Vec::new(),
-        total: 0,
+    let quotes = bytes.iter().filter(|&&b| b == b'"').count();
+    let context = Context {
+        schema,
+        stored,
+        limits,
+        purpose,
+        has_target: order.contains(&schema.target),
+        order: &order,
+        n_fields: header.len(),
+        odd_quotes: quotes % 2 == 1,
     };
+    // An odd number of quotes leaves no safe place to cut.
+    let parts = if context.odd_quotes { 1 } else { parts.max(1) };
+    let cuts = cut_points(bytes, body_start, parts, quotes > 0);
+    let results: Vec<Part> = if cuts.len() == 2 {
+        vec![parse_part(
+            &bytes[cuts[0]..cuts[1]],
+            line_of(bytes, cuts[0]),
+            &context,
+        )]
+    } else {
+        std::thread::scope(|scope| {
+            let handles: Vec<_> = cuts
+                .windows(2)
+                .map(|w| {
+                    let (from, to) = (w[0], w[1]);
+                    let context = &context;
+                    scope.spawn(move || parse_part(&bytes[from..to], line_of(bytes, from), context))
+                })
+                .collect();
+            handles
+                .into_iter()
+                .map(|h| h.join().expect("a parsing thread panicked"))
+                .collect()
+        })
+    };
+    merge_parts(results, &context)
+}
+
+/// Byte offsets that cut the body into about `parts` stretches of whole
+/// records: `[body_start, …, bytes.len()]`. A cut follows a line break
+/// outside quotes (an even number of quotes before it).
+fn cut_points(bytes: &[u8], body_start: usize, parts: usize, has_quotes: bool) -> Vec<usize> {
+    let mut cuts = vec![body_start];
+    let body = bytes.len() - body_start;
+    let mut quotes_before = 0usize;
+    let mut counted_to = body_start;
+    for i in 1..parts {
+        let target = body_start + body * i / parts;
+        let mut at = target.max(*cuts.last().expect("a first cut"));
+        loop {
+            let Some(nl) = bytes[at..].iter().position(|&b| b == b'\n') else {
+                at = bytes.len();
+                break;
+            };
+            at += nl + 1;
+            if has_quotes {
+                quotes_before += bytes[counted_to..at].iter().filter(|&&b| b == b'"').count();
+                counted_to = at;
+            }
+            if quotes_before.is_multiple_of(2) {
+                break;
+            }
+        }
+        if at >= bytes.len() {
+            break;
+        }
+        if at > *cuts.last().expect("a first cut") {
+            cuts.push(at);
+        }
+    }
+    cuts.push(bytes.len());
+    cuts
+}
+
+/// The line number (from 1) of the line that starts at `offset`, counted
+/// the way the CSV reader counts: one per line feed.
+fn line_of(bytes: &[u8], offset: usize) -> u64 {
+    1 + bytes[..offset].iter().filter(|&&b| b == b'\n').count() as u64
+}
+
+fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
+    let schema = cx.schema;
+    let limits = cx.limits;
+    let purpose = cx.purpose;
+    let n_fields = cx.n_fields;
+    let odd_quotes = cx.odd_quotes;
+    let reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(bytes);
     let width = schema.width();
-    let mut rows = RowMatrix::new(width);
-    let mut holdout = Vec::new();
+    let mut part = Part {
+        rows: RowMatrix::with_capacity(width, bytes.iter().filter(|&&b| b == b'\n').count() + 1),
+        holdout: Vec::new(),
+        vocabs: vec![None; width],
+        new_categories: BTreeMap::new(),
+        problems: Problems {
+            listed: Vec::new(),
+            total: 0,
+        },
+        rows_seen: 0,
+    };
+    let vocabs = &mut part.vocabs;
+    let new_categories = &mut part.new_categories;
+    let problems = &mut part.problems;
     let mut cells = vec![0u32; width];
-    if !has_target {
+    if !cx.has_target {
         cells[schema.target] = match schema.columns[schema.target].kind {
             ColumnKind::Number => schema::number_cell(None),
             ColumnKind::Category => MISSING_CODE,
         };
     }
     let mut key: Vec<u8> = Vec::with_capacity(width * 8);
-    let mut rows_seen = 0usize;
+    // Line numbers are counted here from each record's first byte: the
+    // reader's own count lags by one after a record that ends in CR LF.
+    let mut counted_to = 0usize;
+    let mut lines_before = 0u64;
+    let mut at_line = |pos: &csv::Position| {
+        let mut start = usize::try_from(pos.byte())
+            .unwrap_or(usize::MAX)
+            .min(bytes.len());
+        while start < bytes.len() && matches!(bytes[start], b'\n' | b'\r') {
+            start += 1;
+        }
+        if start < counted_to {
+            counted_to = 0;
+            lines_before = 0;
+        }
+        lines_before += bytes[counted_to..start]
+            .iter()
+            .filter(|&&b| b == b'\n')
+            .count() as u64;
+        counted_to = start;
+        first_line + lines_before
+    };
 
-    for rec in records {
-        let rec = match rec {
-            Ok(r) => r,
+    let mut reader = reader;
+    let mut rec = csv::ByteRecord::new();
+    loop {
+        match reader.read_byte_record(&mut rec) {
+            Ok(true) => {}
+            Ok(false) => break,
             Err(e) => {
-                let line = e.position().map_or(0, |p| p.line());
+                let line = e.position().map_or(0, &mut at_line);
                 problems.push(Problem {
                     line,
                     column: None,
@@ -415,13 +579,13 @@ fn parse_rows(
                 });
                 continue;
             }
-        };
-        let line = rec.position().map_or(0, |p| p.line());
+        }
+        let line = rec.position().map_or(0, &mut at_line);
         if rec.len() == 1 && rec.get(0).is_some_and(|f| f.is_empty()) {
             // A blank line carries no row.
             continue;
         }
-        rows_seen += 1;
+        part.rows_seen += 1;
         if rec.len() != n_fields {
             problems.push(Problem {
                 line,
@@ -438,7 +602,7 @@ fn parse_rows(
         }
         let mut row_ok = true;
         for (fi, raw) in rec.iter().enumerate() {
-            let ci = order[fi];
+            let ci = cx.order[fi];
             let col = &schema.columns[ci];
             let mut bad = |value: &str, reason: String| {
                 problems.push(Problem {
@@ -475,7 +639,7 @@ fn parse_rows(
                     continue;
                 }
             };
-            if text.contains(['\n', '\r']) {
+            if raw.iter().any(|&b| b == b'\n' || b == b'\r') {
                 // Quoted line breaks are valid CSV but not valid values; an
                 // odd number of quotes in the file means one never closed.
                 let reason = if odd_quotes {
@@ -525,9 +689,8 @@ fn parse_rows(
                     } else {
                         // A refused file is dropped whole, so codes handed
                         // out here for a bad row never reach the store.
-                        let vocab = vocabs
-                            .entry(ci)
-                            .or_insert_with(|| stored.get(&ci).cloned().unwrap_or_default());
+                        let vocab = vocabs[ci]
+                            .get_or_insert_with(|| cx.stored.get(&ci).cloned().unwrap_or_default());
                         let (code, added) = vocab.code_or_insert(t);
                         if added {
                             new_categories.entry(ci).or_default().push(t.to_string());
@@ -540,7 +703,7 @@ fn parse_rows(
         if !row_ok {
             continue;
         }
-        rows.push_row(&cells);
+        part.rows.push_row(&cells);
         if purpose == Purpose::Score {
             continue;
         }
@@ -554,8 +717,8 @@ fn parse_rows(
                 ColumnKind::Category => match cells[ci] {
                     MISSING_CODE => key.push(2),
                     code => {
-                        let v = vocabs
-                            .get(&ci)
+                        let v = vocabs[ci]
+                            .as_ref()
                             .and_then(|v| v.value(code))
                             .unwrap_or_default();
                         key.push(1);
@@ -565,7 +728,66 @@ fn parse_rows(
                 },
             }
         }
-        holdout.push(schema::is_holdout(&key, limits.holdout_fraction));
+        part.holdout
+            .push(schema::is_holdout(&key, limits.holdout_fraction));
+    }
+    part
+}
+
+/// Joins the parts in file order. New category values get their codes in
+/// order of first appearance in the whole file, so a later part's codes
+/// are renumbered where an earlier part saw a value first.
+fn merge_parts(parts: Vec<Part>, cx: &Context<'_>) -> Result<Parsed, Refusal> {
+    let width = cx.schema.width();
+    let mut problems = Problems {
+        listed: Vec::new(),
+        total: 0,
+    };
+    let mut rows_seen = 0;
+    let mut vocabs: Vec<Option<schema::Vocab>> = vec![None; width];
+    let mut new_categories: BTreeMap<usize, Vec<String>> = BTreeMap::new();
+    let mut rows: Option<RowMatrix> = None;
+    let mut holdout = Vec::new();
+    for mut part in parts {
+        problems.total += part.problems.total;
+        for p in part.problems.listed {
+            if problems.listed.len() < MAX_LISTED_PROBLEMS {
+                problems.listed.push(p);
+            }
+        }
+        rows_seen += part.rows_seen;
+        for (ci, values) in std::mem::take(&mut part.new_categories) {
+            let start = cx.stored.get(&ci).map_or(0, schema::Vocab::len);
+            let global =
+                vocabs[ci].get_or_insert_with(|| cx.stored.get(&ci).cloned().unwrap_or_default());
+            let mut map = Vec::with_capacity(values.len());
+            for value in values {
+                let (code, added) = global.code_or_insert(&value);
+                if added {
+                    new_categories.entry(ci).or_default().push(value);
+                }
+                map.push(code);
+            }
+            let identity = map
+                .iter()
+                .enumerate()
+                .all(|(k, &c)| c as usize == start + k);
+            if !identity {
+                part.rows.map_column(ci, |cell| {
+                    let local = cell as usize;
+                    if cell != MISSING_CODE && local >= start {
+                        map[local - start]
+                    } else {
+                        cell
+                    }
+                });
+            }
+        }
+        match &mut rows {
+            None => rows = Some(part.rows),
+            Some(r) => r.extend(&part.rows),
+        }
+        holdout.extend(part.holdout);
     }
     if problems.total > 0 {
         return Err(Refusal {
@@ -579,10 +801,10 @@ fn parse_rows(
         ));
     }
     Ok(Parsed {
-        rows,
+        rows: rows.unwrap_or_else(|| RowMatrix::new(width)),
         holdout,
         new_categories,
-        has_target,
+        has_target: cx.has_target,
     })
 }
 
@@ -921,6 +1143,98 @@ mod tests {
                     prop_assert_eq!(all.number(r, 4).unwrap().to_bits(), y.to_bits());
                 }
             }
+        }
+    }
+
+    mod parts {
+        use super::*;
+        use proptest::prelude::*;
+
+        /// One line of a file: good rows of several shapes and the usual
+        /// mistakes, so cuts fall next to every kind of line.
+        fn line() -> impl Strategy<Value = String> {
+            let city = prop_oneof![
+                Just("Arden".to_string()),
+                Just("Bexley".to_string()),
+                "[a-e]{1,2}".prop_map(|s| format!("new-{s}")),
+                Just("\"Quay, North\"".to_string()),
+            ];
+            (0u8..12, city, -40i32..50, 0u32..1000).prop_map(|(kind, city, t, id)| match kind {
+                0 => String::new(),
+                1 => format!("{id},{city},abc,,1.5"),
+                2 => format!("{id},{city},{t}"),
+                3 => format!("{id},{city},{t},x,2.5\r"),
+                4 => format!("{id},{city},99,,1"),
+                5 => format!("{id},\"{city}\",{t},\"y\",0.25"),
+                _ => format!("{id},{city},{t},,{}.5", id % 7),
+            })
+        }
+
+        fn stored() -> Vocabularies {
+            let mut v = Vocabularies::new();
+            v.insert(
+                1,
+                schema::Vocab::from_values(vec!["Arden".into(), "Bexley".into()]),
+            );
+            v
+        }
+
+        fn run(text: &str, parts: usize) -> Result<Parsed, Refusal> {
+            let (s, l) = schema();
+            let l = Limits {
+                max_file_bytes: u64::MAX,
+                ..l
+            };
+            parse_rows_in_parts(text.as_bytes(), &s, &stored(), &l, Purpose::Store, parts)
+        }
+
+        proptest! {
+            #![proptest_config(ProptestConfig::with_cases(200))]
+            #[test]
+            fn any_number_of_parts_gives_what_one_part_gives(
+                lines in proptest::collection::vec(line(), 1..60),
+                parts in 2usize..7,
+            ) {
+                let text = format!("id,city,temp,flag,y\n{}\n", lines.join("\n"));
+                match (run(&text, 1), run(&text, parts)) {
+                    (Ok(a), Ok(b)) => {
+                        prop_assert_eq!(a.rows, b.rows);
+                        prop_assert_eq!(a.holdout, b.holdout);
+                        prop_assert_eq!(a.new_categories, b.new_categories);
+                    }
+                    (Err(a), Err(b)) => {
+                        prop_assert_eq!(a.total, b.total);
+                        prop_assert_eq!(a.problems, b.problems);
+                    }
+                    (a, b) => prop_assert!(false, "one part: {:?}; {parts} parts: {:?}",
+                        a.map(|p| p.rows.n_rows()), b.map(|p| p.rows.n_rows())),
+                }
+            }
+        }
+
+        #[test]
+        fn line_numbers_count_crlf_lines_like_an_editor() {
+            // Rows 2 and 3 end in CR LF; the bad value is on line 4.
+            let text = "id,city,temp,flag,y\r\n1,Arden,5,,1\r\n2,Arden,6,,1\r\n3,Arden,hot,,1\r\n";
+            let r = run(text, 1).err().expect("refused");
+            assert_eq!(r.problems[0].line, 4);
+            let text = "id,city,temp,flag,y\n\n1,Arden,5,,1\r\n\r\n2,Arden,cold,,1\n";
+            let r = run(text, 1).err().expect("refused");
+            assert_eq!(r.problems[0].line, 5);
+        }
+
+        #[test]
+        fn cuts_fall_after_line_breaks_outside_quotes() {
+            let text = b"h\n1,\"a\nb\"\n2,c\n3,\"d\ne\"\n4,f\n";
+            let cuts = cut_points(text, 2, 4, true);
+            assert_eq!(*cuts.first().unwrap(), 2);
+            assert_eq!(*cuts.last().unwrap(), text.len());
+            for &c in &cuts[1..cuts.len() - 1] {
+                assert_eq!(text[c - 1], b'\n');
+                let quotes = text[..c].iter().filter(|&&b| b == b'"').count();
+                assert_eq!(quotes % 2, 0, "cut at {c} is inside quotes");
+            }
+            assert!(cuts.len() > 2, "the file was cut: {cuts:?}");
         }
     }
 }

@@ -140,8 +140,10 @@ pub fn parse_number(col: &Column, text: &str) -> Result<Option<f32>, FieldProble
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct Vocab {
     values: Vec<String>,
+    /// Value to code. Values come from input files, so the hasher is seeded
+    /// per process (no crafted collisions) and fast on short strings.
     #[serde(skip)]
-    index: HashMap<String, u32>,
+    index: HashMap<String, u32, foldhash::fast::RandomState>,
 }
 
 impl Vocab {
@@ -347,6 +349,14 @@ impl RowMatrix {
 
     pub fn row(&self, r: usize) -> &[u32] {
         &self.cells[r * self.width..(r + 1) * self.width]
+    }
+
+    /// Rewrites every cell of one column.
+    pub fn map_column(&mut self, column: usize, mut f: impl FnMut(u32) -> u32) {
+        let width = self.width;
+        for cell in self.cells.iter_mut().skip(column).step_by(width.max(1)) {
+            *cell = f(*cell);
+        }
     }
 
     pub fn push_row(&mut self, row: &[u32]) {

@@ -610,3 +610,87 @@ fn a_file_over_the_size_limit_is_refused_unread_even_at_two_gigabytes() {
         "an oversized file is not copied"
     );
 }
+
+/// A config like `small.toml` without its tiny file-size limit.
+fn large_files() -> (tempfile::TempDir, Env) {
+    let dir = tempfile::tempdir().unwrap();
+    let text = fs::read_to_string(data("small.toml"))
+        .unwrap()
+        .replace("max_file_bytes = 4096", "max_file_bytes = 67108864");
+    let config = dir.path().join("large.toml");
+    fs::write(&config, text).unwrap();
+    let env = Env::new(&config);
+    (dir, env)
+}
+
+/// About 2.5 MB of rows (so the file is parsed in parts on several threads)
+/// whose city values first appear in a known order spread over the file.
+fn big_file(rows: usize, bad_at: Option<usize>) -> (String, Vec<String>) {
+    let mut text = String::from("id,city,temp,flag,y\n");
+    let mut first_seen = Vec::new();
+    for i in 0..rows {
+        // A new city every 7,919 rows, reused afterwards.
+        let n = i / 7919;
+        let city = format!("town-{}", (n * 37) % 101);
+        if !first_seen.contains(&city) {
+            first_seen.push(city.clone());
+        }
+        let temp = if bad_at == Some(i) {
+            "warm".to_string()
+        } else {
+            format!("{}.{}", (i % 50) as i64 - 10, i % 10)
+        };
+        text.push_str(&format!("{i},{city},{temp},,{}.25\n", i % 13));
+    }
+    (text, first_seen)
+}
+
+#[test]
+fn a_large_file_keeps_file_order_for_new_values_and_leaves_sled_no_blob_files() {
+    let (dir, env) = large_files();
+    let (text, first_seen) = big_file(120_000, None);
+    assert!(text.len() > 2_000_000);
+    let file = dir.path().join("big.csv");
+    fs::write(&file, &text).unwrap();
+    let out = env.ingest(std::slice::from_ref(&file));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert_eq!(stored_rows(&env), 120_000);
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    let listed: Vec<String> = accepted[0]["new_categories"]["city"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(
+        listed, first_seen,
+        "codes follow first appearance in the file"
+    );
+    // Values over sled's inline limit would be written to blob files, which
+    // sled does not fsync: rows must be chunked small enough to avoid them.
+    let blobs = env.state().join("store/blobs");
+    let count = fs::read_dir(&blobs).map(|d| d.count()).unwrap_or(0);
+    assert_eq!(
+        count,
+        0,
+        "sled wrote {count} blob files under {}",
+        blobs.display()
+    );
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+}
+
+#[test]
+fn a_bad_row_deep_in_a_large_file_is_reported_at_its_own_line() {
+    let (dir, env) = large_files();
+    let (text, _) = big_file(120_000, Some(100_000));
+    let file = dir.path().join("big-bad.csv");
+    fs::write(&file, &text).unwrap();
+    let out = env.ingest(std::slice::from_ref(&file));
+    assert_eq!(code(&out), 65, "{}", stderr(&out));
+    // Row index 100,000 is on line 100,002 (the header is line 1).
+    let message = format!("{}{}", stdout(&out), stderr(&out));
+    assert!(message.contains("line 100002"), "{message}");
+    assert!(message.contains("warm"), "{message}");
+    assert_eq!(stored_rows(&env), 0);
+}
