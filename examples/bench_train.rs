@@ -791,9 +791,9 @@ pub fn main() {
         );
     }
 
-    // Allocator: the batch-1024 run in child processes.
-    if want("allocator") {
-        let b = 1024;
+    // Allocator: runs at the default batch and at 1024 in child processes.
+    let alloc_batches: &[usize] = if quick { &[256] } else { &[256, 1024] };
+    for &b in alloc_batches.iter().filter(|_| want("allocator")) {
         let tuned = [
             ("TIDEGATE_BENCH_ALLOC", "glibc"),
             ("MALLOC_MMAP_THRESHOLD_", "33554432"),
