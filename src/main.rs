@@ -6,6 +6,13 @@ use std::process::ExitCode;
 use clap::Parser;
 use tidegate::cli::{self, Cli, Exit};
 
+// Training allocates and frees tensors of up to megabytes every mini-batch;
+// glibc malloc returns them to the kernel and page-faults them back in, and
+// mimalloc keeps them (`cargo run --release --example bench_train` compares
+// the two in the same run).
+#[global_allocator]
+static GLOBAL: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn main() -> ExitCode {
     let parsed = match Cli::try_parse() {
         Ok(c) => c,
