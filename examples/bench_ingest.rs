@@ -12,6 +12,10 @@
 
 use std::time::Instant;
 
+// The same allocator as the tidegate binary.
+#[global_allocator]
+static GLOBAL: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 use tidegate::config::Config;
 use tidegate::cycle;
 use tidegate::ingest;
@@ -142,6 +146,11 @@ fn main() -> anyhow::Result<()> {
         "csv crate parse only",
         parse_only,
     );
+    if std::env::args().nth(2).as_deref() == Some("ingest") {
+        drop(owner);
+        std::fs::remove_dir_all(&dir)?;
+        return Ok(());
+    }
 
     // A model to score with (two quick epochs: speed, not quality).
     let t = Instant::now();

@@ -274,8 +274,9 @@ pub fn parse(
 ) -> Result<Batch, Refusal> {
     let parsed = parse_rows(bytes, schema, stored, limits, Purpose::Store)?;
     let width = schema.width();
-    let mut train = RowMatrix::new(width);
-    let mut holdout = RowMatrix::new(width);
+    let n_holdout = parsed.holdout.iter().filter(|&&h| h).count();
+    let mut train = RowMatrix::with_capacity(width, parsed.holdout.len() - n_holdout);
+    let mut holdout = RowMatrix::with_capacity(width, n_holdout);
     for (r, &h) in parsed.holdout.iter().enumerate() {
         if h {
             holdout.push_row(parsed.rows.row(r));
@@ -425,7 +426,7 @@ fn parse_rows_in_parts(
         Ok(o) => o,
         Err(reason) => return Err(Refusal::header(reason)),
     };
-    let quotes = bytes.iter().filter(|&&b| b == b'"').count();
+    let quotes = count_byte(bytes, b'"');
     let context = Context {
         schema,
         stored,
@@ -482,7 +483,7 @@ fn cut_points(bytes: &[u8], body_start: usize, parts: usize, has_quotes: bool) -
             };
             at += nl + 1;
             if has_quotes {
-                quotes_before += bytes[counted_to..at].iter().filter(|&&b| b == b'"').count();
+                quotes_before += count_byte(&bytes[counted_to..at], b'"');
                 counted_to = at;
             }
             if quotes_before.is_multiple_of(2) {
@@ -503,7 +504,22 @@ fn cut_points(bytes: &[u8], body_start: usize, parts: usize, has_quotes: bool) -
 /// The line number (from 1) of the line that starts at `offset`, counted
 /// the way the CSV reader counts: one per line feed.
 fn line_of(bytes: &[u8], offset: usize) -> u64 {
-    1 + bytes[..offset].iter().filter(|&&b| b == b'\n').count() as u64
+    1 + count_byte(&bytes[..offset], b'\n') as u64
+}
+
+/// How many times `needle` occurs (counted 64 bytes at a time, which the
+/// compiler turns into vector compares).
+fn count_byte(bytes: &[u8], needle: u8) -> usize {
+    let mut chunks = bytes.chunks_exact(64);
+    let mut n = 0usize;
+    for chunk in &mut chunks {
+        let mut k = 0u8;
+        for &b in chunk {
+            k += u8::from(b == needle);
+        }
+        n += usize::from(k);
+    }
+    n + chunks.remainder().iter().filter(|&&b| b == needle).count()
 }
 
 fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
@@ -518,7 +534,7 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
         .from_reader(bytes);
     let width = schema.width();
     let mut part = Part {
-        rows: RowMatrix::with_capacity(width, bytes.iter().filter(|&&b| b == b'\n').count() + 1),
+        rows: RowMatrix::with_capacity(width, count_byte(bytes, b'\n') + 1),
         holdout: Vec::new(),
         vocabs: vec![None; width],
         new_categories: BTreeMap::new(),
@@ -554,10 +570,7 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
             counted_to = 0;
             lines_before = 0;
         }
-        lines_before += bytes[counted_to..start]
-            .iter()
-            .filter(|&&b| b == b'\n')
-            .count() as u64;
+        lines_before += count_byte(&bytes[counted_to..start], b'\n') as u64;
         counted_to = start;
         first_line + lines_before
     };
@@ -623,6 +636,16 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
                     ),
                 );
                 row_ok = false;
+                continue;
+            }
+            // Most number fields are plain decimals within range: taken
+            // without the UTF-8 check, trimming and the general parser.
+            if col.kind == ColumnKind::Number
+                && let Some(v) = schema::plain_decimal(raw)
+                && col.min.is_none_or(|m| v >= m)
+                && col.max.is_none_or(|m| v <= m)
+            {
+                cells[ci] = schema::number_cell(Some(v));
                 continue;
             }
             let text = match std::str::from_utf8(raw) {

@@ -135,6 +135,45 @@ pub fn parse_number(col: &Column, text: &str) -> Result<Option<f32>, FieldProble
     Ok(Some(v))
 }
 
+/// The value of a plain decimal field (`[+-]digits[.digits]`, at most
+/// 2^24 as an integer when the point is removed, at most ten digits after
+/// it), or `None` for anything else, which then takes the general path.
+/// Both the integer and the power of ten are exact in f32, so one IEEE
+/// division rounds correctly: the result equals `str::parse::<f32>`.
+pub fn plain_decimal(field: &[u8]) -> Option<f32> {
+    const POW10: [f32; 11] = [1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10];
+    let (negative, digits) = match field.first()? {
+        b'-' => (true, &field[1..]),
+        b'+' => (false, &field[1..]),
+        _ => (false, field),
+    };
+    if digits.is_empty() || digits.len() > 19 {
+        return None;
+    }
+    let mut mantissa: u64 = 0;
+    let mut seen_digit = false;
+    let mut after_point: Option<usize> = None;
+    for &c in digits {
+        match c {
+            b'0'..=b'9' => {
+                mantissa = mantissa * 10 + u64::from(c - b'0');
+                seen_digit = true;
+                if let Some(n) = after_point.as_mut() {
+                    *n += 1;
+                }
+            }
+            b'.' if after_point.is_none() => after_point = Some(0),
+            _ => return None,
+        }
+    }
+    let scale = after_point.unwrap_or(0);
+    if !seen_digit || mantissa > 1 << 24 || scale >= POW10.len() {
+        return None;
+    }
+    let v = mantissa as f32 / POW10[scale];
+    Some(if negative { -v } else { v })
+}
+
 /// Category values seen so far, per category column, in order of first
 /// appearance. Codes are indexes into `values`.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
@@ -859,5 +898,33 @@ mod tests {
                 .unwrap_err()
                 .contains("target changed")
         );
+    }
+
+    mod plain_decimal_tests {
+        use super::super::plain_decimal;
+        use proptest::prelude::*;
+
+        proptest! {
+            #![proptest_config(ProptestConfig::with_cases(5000))]
+            #[test]
+            fn agrees_with_the_standard_parser(text in "[+-]?[0-9]{0,9}(\\.[0-9]{0,11})?") {
+                let general = text.parse::<f32>().ok();
+                match plain_decimal(text.as_bytes()) {
+                    Some(v) => prop_assert_eq!(Some(v.to_bits()), general.map(f32::to_bits), "{}", text),
+                    None => {}
+                }
+            }
+        }
+
+        #[test]
+        fn takes_plain_decimals_and_leaves_the_rest() {
+            assert_eq!(plain_decimal(b"12.5"), Some(12.5));
+            assert_eq!(plain_decimal(b"-0.1"), Some(-0.1));
+            assert_eq!(plain_decimal(b"+7"), Some(7.0));
+            assert_eq!(plain_decimal(b"16777216"), Some(16_777_216.0));
+            for other in [&b""[..], b".", b"-", b"1e5", b" 1", b"1,5", b"1.2.3", b"16777217", b"0.12345678901", b"nan"] {
+                assert_eq!(plain_decimal(other), None, "{}", String::from_utf8_lossy(other));
+            }
+        }
     }
 }
