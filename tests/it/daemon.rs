@@ -687,13 +687,14 @@ fn killed_daemons_never_lose_or_double_a_file() {
     let hits: Vec<String> = at_points.iter().map(|(p, n)| format!("{p} {n}")).collect();
     println!(
         "daemon kill loop: {kills} restarts in {:.1} s; killed at random moments {random_kills}; \
-         killed at failpoints {} ({}); files published {published}, archived {}, rejected {}, \
+         killed at failpoints {} ({}); files published {published}, archived {}, refused {} ({} refusal entries), \
          duplicates set aside {}; rows published {}, stored {stored}, lost {lost}, doubled {doubled}; \
          cycles started {}, promoted {}; serving {serving}",
         started.elapsed().as_secs_f64(),
         at_points.values().sum::<usize>(),
         hits.join(", "),
-        accepted.len(),
+        accepted_set.len(),
+        rejected_set.len(),
         rejected.len(),
         of_kind("batch-duplicate").len(),
         want.len(),
