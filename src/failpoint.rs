@@ -9,16 +9,33 @@
 
 use std::sync::OnceLock;
 
-/// Every point, for documentation and validation.
+/// Every point, for documentation and validation, in the order a file and
+/// a cycle meet them.
 pub const POINTS: &[&str] = &[
+    // Intake of one file (`intake::take_file`).
     "intake:after-validate",
     "intake:after-pending",
+    // Inside the store transaction, after some of its writes are staged:
+    // nothing of it may become visible.
+    "store:mid-transaction",
+    // After any store transaction committed and before its flush and fsync.
+    "store:before-flush",
+    // After the flush and fsync of the store.
+    "store:after-flush",
     "intake:after-commit",
+    // After the audit line is appended, just before the archive move.
     "intake:after-audit",
+    // After the pending file is renamed into the archive, before the source
+    // leaves the inbox.
+    "intake:after-archive",
+    // A retrain cycle.
     "cycle:mid-checkpoint",
     "cycle:before-promote",
     "cycle:after-promote",
+    // Start-up recovery (`state::open`): after stale temps are removed, and
+    // after pending archive files are settled, before `audit.jsonl` is caught up.
     "state:during-recovery",
+    "state:before-catch-up",
 ];
 
 fn armed() -> &'static Vec<(String, String)> {

@@ -271,6 +271,7 @@ fn commit_and_archive(
     crate::failpoint::hit("intake:after-audit").map_err(io_at(&archived))?;
     fs::rename(pending, &archived).map_err(io_at(&archived))?;
     fsutil::sync_dir(&owner.state.archive()).map_err(io_at(&archived))?;
+    crate::failpoint::hit("intake:after-archive").map_err(io_at(&archived))?;
     remove_source(path, source)?;
     Ok(Outcome::Accepted {
         batch: record,

@@ -287,6 +287,7 @@ fn open_with(
         fs::remove_file(state.serving()).map_err(io_at(&state.serving()))?;
         rec.serving_rewritten = true;
     }
+    crate::failpoint::hit("state:before-catch-up").map_err(io_at(&state.audit()))?;
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
         rec.abandoned_cycle = close_open_cycle(&mut store, &mirror, &current_user())?;

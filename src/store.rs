@@ -463,7 +463,13 @@ impl Store {
     /// it durable.
     fn settle(&self, result: Result<(), TransactionError<StoreError>>) -> Result<(), StoreError> {
         match result {
-            Ok(()) => self.sync(),
+            Ok(()) => {
+                crate::failpoint::hit("store:before-flush").map_err(|source| StoreError::Io {
+                    path: self.path.clone(),
+                    source,
+                })?;
+                self.sync()
+            }
             Err(TransactionError::Abort(e)) => Err(e),
             Err(TransactionError::Storage(e)) => Err(self.sled_err(e)),
         }
@@ -580,6 +586,7 @@ impl Store {
         let record_json = json(&record);
         let totals_json = json(&totals);
         let line = entry.line().into_bytes();
+        let store_path = self.path.clone();
         let result: Result<(), TransactionError<StoreError>> = (
             &self.meta,
             &self.batches,
@@ -606,6 +613,12 @@ impl Store {
                     for (k, v) in &chunk_values {
                         chunks.insert(k.as_slice(), v.as_slice())?;
                     }
+                    crate::failpoint::hit("store:mid-transaction").map_err(|source| {
+                        ConflictableTransactionError::Abort(StoreError::Io {
+                            path: store_path.clone(),
+                            source,
+                        })
+                    })?;
                     for (k, v) in &vocab_values {
                         vocab.insert(&k[..], v.as_slice())?;
                     }
@@ -775,6 +788,10 @@ impl Store {
             source,
         })?;
         crate::fsutil::sync_dir(&self.path).map_err(|source| StoreError::Io {
+            path: self.path.clone(),
+            source,
+        })?;
+        crate::failpoint::hit("store:after-flush").map_err(|source| StoreError::Io {
             path: self.path.clone(),
             source,
         })?;

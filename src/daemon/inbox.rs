@@ -4,8 +4,8 @@
 //! Watcher events are only wake-ups; what the daemon acts on is always a
 //! fresh listing. A producer publishes by writing under `inbox/.tmp/` (or a
 //! `*.part` name) and renaming; those, and every dotfile, are never listed.
-//! A file written in place is taken only once its size, mtime and inode
-//! were seen unchanged for `settle_seconds` of the daemon's clock.
+//! A file written in place is taken only once its size, mtime, inode and
+//! mode were seen unchanged for `settle_seconds` of the daemon's clock.
 
 use std::collections::HashMap;
 use std::fs;
@@ -21,6 +21,9 @@ pub struct Signature {
     pub len: u64,
     pub mtime_ns: i128,
     pub ino: u64,
+    /// Permission bits: a file that could not be read is tried again once
+    /// they change (chmod changes neither size nor mtime).
+    pub mode: u32,
     /// Regular files settle; links and special files are refused unread, at once.
     pub regular: bool,
 }
@@ -31,6 +34,7 @@ impl Signature {
             len: meta.len(),
             mtime_ns: i128::from(meta.mtime()) * 1_000_000_000 + i128::from(meta.mtime_nsec()),
             ino: meta.ino(),
+            mode: meta.mode() & 0o7777,
             regular: meta.file_type().is_file(),
         }
     }
@@ -148,6 +152,7 @@ mod tests {
             len,
             mtime_ns: mtime,
             ino: 7,
+            mode: 0o644,
             regular: true,
         }
     }

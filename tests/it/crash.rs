@@ -18,7 +18,8 @@ use crate::support::{Env, data};
 
 const FILES: usize = 45;
 const ROWS_PER_FILE: usize = 40;
-const KILLS: usize = 60;
+/// Ingest kills in CI; `TIDEGATE_SOAK_KILLS` raises it (`ops/crash-soak.sh`).
+const KILLS: usize = 30;
 
 /// Files whose rows carry unique ids 0.. (the `id` column).
 fn make_files(dir: &std::path::Path) -> Vec<PathBuf> {
@@ -48,8 +49,10 @@ fn killed_ingests_never_lose_or_double_rows() {
     let env = Env::new(&data("small.toml"));
     let files = make_files(env.dir.path());
     let mut rng = Rng::new(2026);
+    let kills = crate::support::soak_kills(KILLS);
+    let started = std::time::Instant::now();
     let mut killed = 0;
-    for i in 0..KILLS {
+    for i in 0..kills {
         // Each run is handed a few files so kills land between and inside them.
         let start = rng.below(FILES);
         let chosen: Vec<&PathBuf> = (0..3).map(|k| &files[(start + k * 7) % FILES]).collect();
@@ -74,8 +77,8 @@ fn killed_ingests_never_lose_or_double_rows() {
         child.wait().unwrap();
     }
     assert!(
-        killed > KILLS / 3,
-        "only {killed} of {KILLS} runs were killed mid-way; the timing is off"
+        killed > kills / 3,
+        "only {killed} of {kills} runs were killed mid-way; the timing is off"
     );
     // A clean run over every file finishes what was interrupted.
     let out = env.ingest(&files);
@@ -124,6 +127,14 @@ fn killed_ingests_never_lose_or_double_rows() {
             ids.insert(rows.number(r, id_col).unwrap() as usize);
         }
     }
+    println!(
+        "ingest kill loop: {kills} runs in {:.1} s, {killed} killed mid-way; files {FILES}, \
+         batches stored {}; rows published {}, stored {total}, distinct ids {}",
+        started.elapsed().as_secs_f64(),
+        batches.len(),
+        FILES * ROWS_PER_FILE,
+        ids.len()
+    );
     assert_eq!(total, FILES * ROWS_PER_FILE, "no row lost or doubled");
     assert_eq!(ids, (0..FILES * ROWS_PER_FILE).collect::<BTreeSet<_>>());
     for b in &batches {

@@ -10,6 +10,7 @@ use std::process::{Child, Stdio};
 use std::time::{Duration, Instant};
 
 use tidegate::config::Config;
+use tidegate::ids::{BatchId, ModelId};
 use tidegate::rng::Rng;
 use tidegate::state::{self, StateDir};
 use tidegate::store::Split;
@@ -393,88 +394,319 @@ fn sigterm_during_training_exits_promptly_and_leaves_the_store_usable() {
     assert_eq!(code(&out), 0, "{}", stderr(&out));
 }
 
-const KILL_FILES: usize = 36;
 const KILL_ROWS: usize = 15;
-const KILLS: usize = 10;
+const KILL_FILES_PER_ROUND: usize = 3;
+/// Daemon kills in CI; `TIDEGATE_SOAK_KILLS` raises it (`ops/crash-soak.sh`).
+const KILLS: usize = 20;
+
+/// A daemon that trains small models fast enough for cycles to start, be
+/// judged and promote between kills (a cycle every eight files or so).
+fn kill_loop_env() -> Env {
+    let tmp = tempfile::tempdir().unwrap();
+    let text = format!(
+        "{}\n[model]\nhidden = [4]\n\n[training]\ncold_epochs = 20\nwarm_epochs = 5\n\
+         batch_size = 32\nlearning_rate = 0.02\npatience = 0\n\n\
+         [gate]\nmin_holdout_rows = 30\n\n\
+         [daemon]\nrescan_seconds = 1.0\nsettle_seconds = 0.0\nmin_new_rows = 120\n",
+        fs::read_to_string(data("small.toml")).unwrap()
+    );
+    let cfg = tmp.path().join("daemon.toml");
+    fs::write(&cfg, text).unwrap();
+    Env::new(&cfg)
+}
+
+/// How one restarted daemon ended.
+enum Death {
+    /// Killed with SIGKILL by the test.
+    Killed,
+    /// Aborted itself at the armed failpoint.
+    Failpoint,
+}
+
+/// Starts `watch` (with `point` armed to abort), lets a producer publish a
+/// few files, then waits a random moment and kills it, unless the armed
+/// point ends it first. Files published so far are added to `published`.
+fn kill_round(
+    env: &Env,
+    rng: &mut Rng,
+    point: Option<&str>,
+    published: &mut usize,
+    bad: &mut BTreeSet<String>,
+) -> Death {
+    let log = fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(env.dir.path().join("watch.log"))
+        .unwrap();
+    let mut cmd = env.command();
+    if let Some(p) = point {
+        cmd.env("TIDEGATE_FAILPOINTS", format!("{p}=abort"));
+    }
+    let mut child = cmd
+        .arg("watch")
+        .stdin(Stdio::null())
+        .stdout(Stdio::null())
+        .stderr(log)
+        .spawn()
+        .unwrap();
+    // Exited by itself: only an abort at the armed point is allowed.
+    let ended = |child: &mut Child| -> Option<Death> {
+        let status = child.try_wait().unwrap()?;
+        use std::os::unix::process::ExitStatusExt;
+        assert!(
+            point.is_some() && status.signal() == Some(libc::SIGABRT),
+            "watch ended with {status} (armed: {point:?}): {}",
+            watch_log(env)
+        );
+        Some(Death::Failpoint)
+    };
+    // Up (it answers ping), or dead at a start-up failpoint.
+    let deadline = Instant::now() + Duration::from_secs(20);
+    loop {
+        if let Some(d) = ended(&mut child) {
+            return d;
+        }
+        if daemon_status(env).is_some() {
+            break;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "watch did not start: {}",
+            watch_log(env)
+        );
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    // A producer publishes a few files while the daemon runs...
+    for _ in 0..KILL_FILES_PER_ROUND {
+        let name = format!("f{published:05}.csv");
+        if rng.below(9) == 0 {
+            publish(env, &name, "id,city,temp,flag,y\n1,Oslo,x,x,1\n");
+            bad.insert(name);
+        } else {
+            publish(env, &name, &rows_csv(*published * KILL_ROWS, KILL_ROWS));
+        }
+        *published += 1;
+        std::thread::sleep(Duration::from_millis(rng.below(40) as u64));
+    }
+    // ...and the daemon dies at a random moment, or at the armed point if
+    // it meets it first (a cycle's points need a cycle to start).
+    let wait = if point.is_some() {
+        Duration::from_millis(300 + rng.below(700) as u64)
+    } else {
+        Duration::from_millis(rng.below(250) as u64)
+    };
+    let until = Instant::now() + wait;
+    while Instant::now() < until {
+        if let Some(d) = ended(&mut child) {
+            return d;
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    let _ = child.kill();
+    let status = child.wait().unwrap();
+    use std::os::unix::process::ExitStatusExt;
+    if status.signal() == Some(libc::SIGABRT) {
+        assert!(point.is_some(), "watch aborted unarmed: {}", watch_log(env));
+        return Death::Failpoint;
+    }
+    Death::Killed
+}
+
+/// A batch or model number in a JSON log entry (a number, or its name).
+fn id_in(v: &serde_json::Value) -> u64 {
+    v.as_u64()
+        .or_else(|| v.as_str().and_then(|s| s[1..].parse().ok()))
+        .unwrap_or_else(|| panic!("not an id: {v}"))
+}
+
+/// Names of temp files a crash may leave, anywhere under `dir`.
+fn temp_files(dir: &Path) -> Vec<PathBuf> {
+    let mut found = Vec::new();
+    for e in fs::read_dir(dir).unwrap() {
+        let e = e.unwrap();
+        let name = e.file_name().to_string_lossy().into_owned();
+        let path = e.path();
+        if name.starts_with(tidegate::fsutil::TEMP_PREFIX)
+            || name.starts_with(".pending-")
+            || name.ends_with(".generating")
+        {
+            found.push(path.clone());
+        }
+        if e.file_type().unwrap().is_dir() {
+            found.extend(temp_files(&path));
+        }
+    }
+    found
+}
 
 #[test]
 fn killed_daemons_never_lose_or_double_a_file() {
-    let env = env_with("settle_seconds = 0.0\nmin_new_rows = 120", false);
+    let kills = crate::support::soak_kills(KILLS);
+    let env = kill_loop_env();
     let mut rng = Rng::new(515);
     let mut published = 0;
     let mut bad = BTreeSet::new();
-    for round in 0..KILLS {
-        let watch = Watch::start(&env);
-        // A producer publishes a few files while the daemon runs...
-        for _ in 0..KILL_FILES / KILLS {
-            let name = format!("f{published:03}.csv");
-            if rng.below(9) == 0 {
-                publish(&env, &name, "id,city,temp,flag,y\n1,Oslo,x,x,1\n");
-                bad.insert(name);
-            } else {
-                publish(&env, &name, &rows_csv(published * KILL_ROWS, KILL_ROWS));
-            }
-            published += 1;
-            std::thread::sleep(Duration::from_millis(rng.below(40) as u64));
+    let mut random_kills = 0;
+    let mut at_points: std::collections::BTreeMap<&str, usize> = Default::default();
+    let started = Instant::now();
+    for _ in 0..kills {
+        // One restart in three arms a failpoint, chosen among all of them.
+        let point = (rng.below(3) == 0)
+            .then(|| tidegate::failpoint::POINTS[rng.below(tidegate::failpoint::POINTS.len())]);
+        match kill_round(&env, &mut rng, point, &mut published, &mut bad) {
+            Death::Killed => random_kills += 1,
+            Death::Failpoint => *at_points.entry(point.unwrap()).or_default() += 1,
         }
-        // ...and the daemon dies at a random moment.
-        std::thread::sleep(Duration::from_millis(rng.below(250) as u64));
-        watch.signal(libc::SIGKILL);
-        drop(watch);
-        let _ = round;
     }
-    // A final clean run takes whatever is left.
+    // A final clean run takes whatever is left and finishes any cycle due.
     let watch = Watch::start(&env);
-    wait_daemon(&env, 30, "the inbox to empty", || {
+    wait_daemon(&env, 60, "the inbox to empty", || {
         inbox_files(&env).is_empty()
     });
-    wait_daemon(&env, 30, "the daemon to be idle", || {
+    wait_daemon(&env, 60, "the daemon to be idle", || {
         daemon_status(&env).is_some_and(|d| d["activity"] == "idle")
     });
     let (code_, _) = watch.stop();
     assert_eq!(code_, 0, "{}", watch_log(&env));
 
-    let names = |kind: &str| -> Vec<String> {
-        env.log_json(&["--kind", kind])
-            .iter()
-            .map(|e| e["file"].as_str().unwrap().to_string())
-            .collect()
+    // What the clean stop left, before anything opens the state dir again
+    // (an owner's start-up recovery would tidy up after a bug).
+    let inbox = env.state().join("inbox");
+    let left: Vec<_> = fs::read_dir(&inbox)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n != ".tmp")
+        .collect();
+    assert!(left.is_empty(), "left in the inbox: {left:?}");
+    assert_eq!(fs::read_dir(inbox.join(".tmp")).unwrap().count(), 0);
+    let temps = temp_files(&env.state());
+    assert!(temps.is_empty(), "temp files left: {temps:?}");
+
+    let log = env.log_json(&[]);
+    let of_kind = |kind: &str| -> Vec<&serde_json::Value> {
+        log.iter().filter(|e| e["kind"] == kind).collect()
     };
-    let accepted = names("batch-accepted");
     let good: BTreeSet<String> = (0..published)
-        .map(|f| format!("f{f:03}.csv"))
+        .map(|f| format!("f{f:05}.csv"))
         .filter(|n| !bad.contains(n))
         .collect();
-    let accepted_set: BTreeSet<String> = accepted.iter().cloned().collect();
+    // Every good file accepted once, with its exact bytes in the archive.
+    let accepted = of_kind("batch-accepted");
+    let accepted_set: BTreeSet<String> = accepted
+        .iter()
+        .map(|e| e["file"].as_str().unwrap().to_string())
+        .collect();
     assert_eq!(accepted.len(), accepted_set.len(), "a file accepted twice");
     assert_eq!(accepted_set, good, "a good file lost");
-    let rejected: BTreeSet<String> = names("batch-rejected").into_iter().collect();
-    assert_eq!(rejected, bad, "a bad file not refused");
+    for e in &accepted {
+        let archived = env
+            .state()
+            .join("archive")
+            .join(format!("{}.csv", BatchId(id_in(&e["batch"]))));
+        let bytes =
+            fs::read(&archived).unwrap_or_else(|err| panic!("{}: {err}", archived.display()));
+        assert_eq!(
+            blake3::hash(&bytes).to_hex().as_str(),
+            e["file_hash"].as_str().unwrap(),
+            "{} holds the file's bytes",
+            archived.display()
+        );
+    }
+    // Every bad file refused, kept with its reasons.
+    let rejected = of_kind("batch-rejected");
+    let rejected_set: BTreeSet<String> = rejected
+        .iter()
+        .map(|e| e["file"].as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(rejected_set, bad, "a bad file not refused");
+    for e in &rejected {
+        let kept = env.state().join(e["kept_as"].as_str().unwrap());
+        assert!(kept.exists(), "{} missing", kept.display());
+        let why = kept.with_file_name(format!(
+            "{}.why.json",
+            kept.file_name().unwrap().to_string_lossy()
+        ));
+        assert!(why.exists(), "{} missing", why.display());
+    }
     // A kill between archiving a file and removing it from the inbox makes
     // the next run see the same bytes again: logged as a duplicate, never stored.
-    for dup in names("batch-duplicate") {
-        assert!(good.contains(&dup), "{dup} logged as a duplicate");
+    for dup in of_kind("batch-duplicate") {
+        let name = dup["file"].as_str().unwrap();
+        assert!(good.contains(name), "{name} logged as a duplicate");
     }
     let out = env.run(&["verify"]);
     assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
-    // Every row id stored exactly once.
+
     let state = StateDir::new(env.state());
     let config = Config::load(&state.config()).unwrap();
     let (owner, _) = state::open(&state, &config).unwrap();
+    // The serving model came to serve by a promotion the log records, and
+    // its checkpoint verifies.
+    let serving = owner.store.serving().unwrap();
+    let serving = serving.expect("the kill loop's data is learnable: some model serves");
+    let promoted: BTreeSet<String> = of_kind("promoted")
+        .iter()
+        .chain(of_kind("approved").iter())
+        .map(|e| ModelId(id_in(&e["model"])).to_string())
+        .collect();
+    assert!(
+        promoted.contains(&serving.to_string()),
+        "{serving} serves but was never promoted: {promoted:?}"
+    );
+    tidegate::model::checkpoint::verify(&tidegate::model::checkpoint::model_dir(
+        &state.models(),
+        serving,
+    ))
+    .unwrap();
+    assert_eq!(
+        fs::read_to_string(state.serving()).unwrap(),
+        format!("{serving}\n")
+    );
+    // Every row id stored exactly once.
     let id_col = owner.store.schema().index_of("id").unwrap();
-    let mut ids = Vec::new();
+    let mut seen: std::collections::BTreeMap<usize, usize> = Default::default();
     for split in [Split::Train, Split::Holdout] {
         let m = owner.store.rows(split, None, None).unwrap();
         for r in 0..m.n_rows() {
-            ids.push(m.number(r, id_col).unwrap() as usize);
+            *seen
+                .entry(m.number(r, id_col).unwrap() as usize)
+                .or_default() += 1;
         }
     }
-    ids.sort_unstable();
     let want: Vec<usize> = (0..published)
-        .filter(|f| !bad.contains(&format!("f{f:03}.csv")))
+        .filter(|f| !bad.contains(&format!("f{f:05}.csv")))
         .flat_map(|f| f * KILL_ROWS..(f + 1) * KILL_ROWS)
         .collect();
-    assert_eq!(ids, want);
+    let stored: usize = seen.values().sum();
+    let lost = want.iter().filter(|id| !seen.contains_key(*id)).count();
+    let doubled: usize = seen.values().map(|n| n - 1).sum();
+    let strays = seen
+        .keys()
+        .filter(|id| want.binary_search(id).is_err())
+        .count();
+    let hits: Vec<String> = at_points.iter().map(|(p, n)| format!("{p} {n}")).collect();
+    println!(
+        "daemon kill loop: {kills} restarts in {:.1} s; killed at random moments {random_kills}; \
+         killed at failpoints {} ({}); files published {published}, archived {}, refused {} ({} refusal entries), \
+         duplicates set aside {}; rows published {}, stored {stored}, lost {lost}, doubled {doubled}; \
+         cycles started {}, promoted {}; serving {serving}",
+        started.elapsed().as_secs_f64(),
+        at_points.values().sum::<usize>(),
+        hits.join(", "),
+        accepted_set.len(),
+        rejected_set.len(),
+        rejected.len(),
+        of_kind("batch-duplicate").len(),
+        want.len(),
+        of_kind("cycle-started").len(),
+        of_kind("promoted").len(),
+    );
+    assert_eq!(
+        (lost, doubled, strays),
+        (0, 0, 0),
+        "rows lost, doubled, unknown"
+    );
+    assert_eq!(stored, want.len());
 }
 
 /// Latency from publishing a file to its `batch-accepted` entry and to the

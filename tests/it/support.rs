@@ -101,3 +101,15 @@ pub fn stderr(out: &Output) -> String {
 pub fn code(out: &Output) -> i32 {
     out.status.code().unwrap_or(-1)
 }
+
+/// Kills for a crash test: `TIDEGATE_SOAK_KILLS` when set (long runs, see
+/// `ops/crash-soak.sh`), else the short default CI runs.
+pub fn soak_kills(default: usize) -> usize {
+    match std::env::var("TIDEGATE_SOAK_KILLS") {
+        Ok(v) => v
+            .trim()
+            .parse()
+            .unwrap_or_else(|_| panic!("TIDEGATE_SOAK_KILLS={v:?} is not a count")),
+        Err(_) => default,
+    }
+}
