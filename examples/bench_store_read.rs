@@ -31,7 +31,8 @@ fn main() -> anyhow::Result<()> {
     let all = store.rows(Split::Train, None, None)?;
     let all_s = t.elapsed().as_secs_f64();
     let n = all.n_rows();
-    let mb = |rows: usize| (rows * all.width() * 4) as f64 / 1e6;
+    let width = all.width();
+    let mb = |rows: usize| (rows * width * 4) as f64 / 1e6;
     drop(all);
     let t = Instant::now();
     let picks = sample::choose(n, k, &mut Rng::new(1));

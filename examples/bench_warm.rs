@@ -23,7 +23,9 @@
 //! Printed per batch and in summary: holdout loss ratio warm / cold, the
 //! loss of the model serving after the cycle against cold, and the wall
 //! time of the warm cycle against the cold one. `[gate] cold_every = 0`
-//! keeps every measured cycle warm only; all training keys are defaults.
+//! keeps every measured cycle warm only; all training keys are defaults
+//! unless `BENCH_WARM_TRAINING` holds some (`\n` between keys), e.g.
+//! `BENCH_WARM_TRAINING='warm_learning_rate = 0.0001'`.
 
 #[path = "common/stream.rs"]
 mod stream;
@@ -118,7 +120,15 @@ fn scale(dir: &Path, rows: u64, batches: u64) -> anyhow::Result<Summary> {
     println!(
         "\n== {rows} rows, then {batches} batches of {batch_rows} (1%); shrink-and-perturb: shrink {SHRINK}, perturb {PERTURB}"
     );
-    let text = stream::config_text("[gate]\ncold_every = 0\n");
+    // BENCH_WARM_TRAINING: extra `[training]` keys to try other settings.
+    let extra = std::env::var("BENCH_WARM_TRAINING").unwrap_or_default();
+    let text = stream::config_text(&format!(
+        "[gate]\ncold_every = 0\n\n[training]\n{}\n",
+        extra.replace("\\n", "\n")
+    ));
+    if !extra.is_empty() {
+        println!("training keys set: {extra}");
+    }
     let config = Config::parse(&text, &dir.join("bench.toml"))?;
     let base = dir.join("base.csv");
     stream::write_csv(&base, SEED, 0, rows)?;
@@ -249,7 +259,9 @@ fn main() -> anyhow::Result<()> {
         std::fs::remove_dir_all(&dir)?;
     }
     std::fs::remove_dir_all(&root)?;
-    println!("\n== summary (mean [min, max] over batches; reference: cold retrain on all rows, same run)");
+    println!(
+        "\n== summary (mean [min, max] over batches; reference: cold retrain on all rows, same run)"
+    );
     for (rows, s) in &results {
         let line = |what: &str, v: &[f64], target: &str, ok: bool| {
             let (m, lo, hi) = stats(v);

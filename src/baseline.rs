@@ -71,10 +71,8 @@ impl Ridge {
             while start < rows.n_rows() {
                 let end = (start + CHUNK_ROWS).min(rows.n_rows());
                 let cells = rows.width();
-                let chunk = RowMatrix::from_cells(
-                    cells,
-                    rows.cells()[start * cells..end * cells].to_vec(),
-                );
+                let chunk =
+                    RowMatrix::from_cells(cells, rows.cells()[start * cells..end * cells].to_vec());
                 let x = spec.encode_inputs(&chunk);
                 let y = spec.encode_targets(&chunk);
                 for (r, &t) in y.iter().enumerate() {

@@ -21,13 +21,13 @@ use crate::gate::{self, Decision, Scores};
 use crate::ids::{BatchId, ModelId};
 use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta, RunKind};
 use crate::model::{Model, ModelError, TrainingSummary};
+use crate::rng::Rng;
+use crate::sample;
 use crate::schema::FeatureSpec;
 use crate::state::{Owner, StateError};
 use crate::store::{
     META_CYCLES, META_NEXT_MODEL, META_OPEN_CYCLE, META_SERVING, MetaChange, Split, StoreError,
 };
-use crate::rng::Rng;
-use crate::sample;
 use crate::train::{self, Control, Progress, TrainError};
 
 /// What the store remembers about each trained model version.
@@ -245,7 +245,11 @@ pub fn run(
         "cycle {cycle}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s",
         new_train.n_rows(),
         older_train.n_rows(),
-        if all_train.is_some() { " (all older rows for the cold candidate)" } else { "" },
+        if all_train.is_some() {
+            " (all older rows for the cold candidate)"
+        } else {
+            ""
+        },
         holdout.n_rows(),
         step.elapsed().as_secs_f64()
     );
@@ -723,7 +727,10 @@ mod tests {
             replay_ratio: 0.0,
             ..t
         };
-        assert_eq!(older_sample_size(20_000, 5_000_000, &none), OLDER_SAMPLE_MIN);
+        assert_eq!(
+            older_sample_size(20_000, 5_000_000, &none),
+            OLDER_SAMPLE_MIN
+        );
     }
 
     #[test]

@@ -99,7 +99,9 @@ mod tests {
             "[data]\ntarget = \"y\"\ntask = \"regression\"\nholdout_fraction = 0.3\n\n",
         );
         for i in 0..11 {
-            text.push_str(&format!("[[data.columns]]\nname = \"x{i}\"\nkind = \"number\"\n\n"));
+            text.push_str(&format!(
+                "[[data.columns]]\nname = \"x{i}\"\nkind = \"number\"\n\n"
+            ));
         }
         text.push_str("[[data.columns]]\nname = \"y\"\nkind = \"number\"\n");
         let dir = tempfile::tempdir().unwrap();
@@ -111,15 +113,24 @@ mod tests {
             let mut csv = String::from("x0,x1,x2,x3,x4,x5,x6,x7,x8,x9,x10,y\n");
             for _ in 0..n {
                 for c in 0..12 {
-                    csv.push_str(&format!("{}{}", row * 12 + c, if c < 11 { "," } else { "\n" }));
+                    csv.push_str(&format!(
+                        "{}{}",
+                        row * 12 + c,
+                        if c < 11 { "," } else { "\n" }
+                    ));
                 }
                 row += 1;
             }
             let file = dir.path().join(format!("b{b}.csv"));
             std::fs::write(&file, csv).unwrap();
-            let out =
-                intake::take_file(&mut owner, &file, Source::Keep, "tester", chrono::Utc::now())
-                    .unwrap();
+            let out = intake::take_file(
+                &mut owner,
+                &file,
+                Source::Keep,
+                "tester",
+                chrono::Utc::now(),
+            )
+            .unwrap();
             assert!(matches!(out, Outcome::Accepted { .. }), "{out:?}");
         }
         (dir, owner)

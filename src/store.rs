@@ -418,10 +418,9 @@ impl Store {
                             self.corrupt(format!("batch {} lacks row chunk {chunk}", rec.id))
                         })?;
                     if value.len() % row_bytes != 0 {
-                        return Err(self.corrupt(format!(
-                            "chunk of batch {} is not whole rows",
-                            rec.id
-                        )));
+                        return Err(
+                            self.corrupt(format!("chunk of batch {} is not whole rows", rec.id))
+                        );
                     }
                     held = Some((chunk, value));
                 }

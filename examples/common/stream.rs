@@ -42,7 +42,8 @@ fn row(seed: u64, i: u64, out: &mut String) {
     let x: Vec<f64> = (0..9).map(|_| rng.normal()).collect();
     let site_effect = (site as f64 * 0.7).sin();
     let kind_slope = [0.5, -0.3, 0.1, 0.8][kind];
-    let y = x[0].sin() + x[1] * x[2] - 0.5 * x[3] + 0.3 * x[4].abs()
+    let y = x[0].sin() + x[1] * x[2] - 0.5 * x[3]
+        + 0.3 * x[4].abs()
         + 0.6 * (x[5] * x[6]).tanh()
         + kind_slope * x[7]
         + 0.2 * x[8] * x[8]

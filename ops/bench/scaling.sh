@@ -97,7 +97,7 @@ for N in "${SIZES[@]}"; do
   echo "intake  (ingest $NEW_ROWS rows + drift + fresh check): ${in_s} s, peak RSS ${in_rss} MB | needs $in_rows rows = $(mb "$in_rows") MB f32 -> target <= ${in_target} MB: $([ "$in_rss" -le "$in_target" ] && echo met || echo NOT met)"
   echo "cycle   (tidegate retrain, warm):                  ${cy_s} s, peak RSS ${cy_rss} MB | loads $cy_rows rows = $(mb "$cy_rows") MB f32 -> target <= ${cy_target} MB: $([ "$cy_rss" -le "$cy_target" ] && echo met || echo NOT met)"
   echo "drop to decision: $(awk -v a="$in_s" -v b="$cy_s" 'BEGIN {printf "%.2f", a + b}') s"
-  echo "decision: $(grep -m1 -iE 'promot|kept|keep' "$D/retrain.out" || true)"
+  echo "$(grep -m1 -iE 'promot|kept|keep' "$D/retrain.out" || true)"
   echo "steps:"
   grep -E 'fresh-data check read|cycle [0-9]+: ' "$D/ingest.err" "$D/retrain.err" | sed 's/^[^:]*://; s/^ *DEBUG */  /'
   echo "store reads (bench_store_read): $("$READ" "$S")"
