@@ -70,8 +70,9 @@ impl Ridge {
             let mut start = 0;
             while start < rows.n_rows() {
                 let end = (start + CHUNK_ROWS).min(rows.n_rows());
-                let idx: Vec<usize> = (start..end).collect();
-                let chunk = rows.select(&idx);
+                let cells = rows.width();
+                let chunk =
+                    RowMatrix::from_cells(cells, rows.cells()[start * cells..end * cells].to_vec());
                 let x = spec.encode_inputs(&chunk);
                 let y = spec.encode_targets(&chunk);
                 for (r, &t) in y.iter().enumerate() {
@@ -131,19 +132,27 @@ impl Ridge {
         self.lambda
     }
 
-    /// Raw scores, `n_rows × outputs`.
+    /// Raw scores, `n_rows × outputs`. Rows are encoded `CHUNK_ROWS` at a
+    /// time, so a large holdout is never encoded all at once.
     pub fn scores(&self, rows: &RowMatrix) -> Vec<f64> {
         let w = self.spec.width() + 1;
         let k = self.outputs;
-        let x = self.spec.encode_inputs(rows);
+        let cells = rows.width();
         let mut out = vec![0.0; rows.n_rows() * k];
-        for (r, o) in out.chunks_exact_mut(k).enumerate() {
-            o.copy_from_slice(&self.coef[..k]);
-            for (j, &v) in x[r * (w - 1)..(r + 1) * (w - 1)].iter().enumerate() {
-                if v != 0.0 {
-                    let c = &self.coef[(j + 1) * k..(j + 2) * k];
-                    for (dst, &cv) in o.iter_mut().zip(c) {
-                        *dst += f64::from(v) * cv;
+        for (c, block) in out.chunks_mut(CHUNK_ROWS * k).enumerate() {
+            let start = c * CHUNK_ROWS;
+            let end = start + block.len() / k;
+            let chunk =
+                RowMatrix::from_cells(cells, rows.cells()[start * cells..end * cells].to_vec());
+            let x = self.spec.encode_inputs(&chunk);
+            for (r, o) in block.chunks_exact_mut(k).enumerate() {
+                o.copy_from_slice(&self.coef[..k]);
+                for (j, &v) in x[r * (w - 1)..(r + 1) * (w - 1)].iter().enumerate() {
+                    if v != 0.0 {
+                        let c = &self.coef[(j + 1) * k..(j + 2) * k];
+                        for (dst, &cv) in o.iter_mut().zip(c) {
+                            *dst += f64::from(v) * cv;
+                        }
                     }
                 }
             }
@@ -359,6 +368,24 @@ mod tests {
             ridge.row_losses(&missing),
             Err(BaselineError::Scoring(_))
         ));
+    }
+
+    #[test]
+    fn scoring_in_chunks_gives_each_row_its_own_score() {
+        // More rows than one encoding chunk: every row, the ones at the
+        // chunk borders included, scores as it does on its own.
+        let n = 2 * CHUNK_ROWS + 7;
+        let pts: Vec<(f32, f32)> = (0..n).map(|i| (i as f32 / 100.0, i as f32)).collect();
+        let data = rows(&pts);
+        let spec = test_spec(1, Task::Regression, 1);
+        let ridge = Ridge::fit(&spec, &[&data], 1.0).unwrap();
+        let all = ridge.scores(&data);
+        assert_eq!(all.len(), n);
+        for r in [0, CHUNK_ROWS - 1, CHUNK_ROWS, 2 * CHUNK_ROWS, n - 1] {
+            let one = ridge.scores(&rows(&pts[r..=r]));
+            assert_eq!(all[r], one[0], "row {r}");
+        }
+        assert!(all[n - 1] > all[0]);
     }
 
     #[test]

@@ -21,6 +21,8 @@ use crate::gate::{self, Decision, Scores};
 use crate::ids::{BatchId, ModelId};
 use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta, RunKind};
 use crate::model::{Model, ModelError, TrainingSummary};
+use crate::rng::Rng;
+use crate::sample;
 use crate::schema::FeatureSpec;
 use crate::state::{Owner, StateError};
 use crate::store::{
@@ -198,11 +200,39 @@ pub fn run(
         owner.mirror.append(&[entry.line().as_bytes()])?;
     }
 
-    // The data, read once: training rows split at the serving model's last
-    // batch, holdout rows in the same order with a new/older flag each.
+    // The data, read once. Training rows split at the serving model's last
+    // batch: the new ones all, the older ones as a uniform sample (see
+    // `older_sample_size`) read chunk by chunk, unless a cold candidate
+    // needs them all anyway. Holdout rows all, in store order, with a
+    // new/older flag each.
+    let step = std::time::Instant::now();
     let store = &owner.store;
-    let older_train = store.rows(Split::Train, None, Some(through))?;
     let new_train = store.rows(Split::Train, Some(through.next()), None)?;
+    let older_n = store.row_count(Split::Train, None, Some(through))?;
+    let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
+    let picks = sample::choose(
+        older_n,
+        want_older,
+        &mut Rng::new(sample::seed_for(
+            owner.config.training.seed,
+            &[&b"older-train/"[..], &through.key()].concat(),
+        )),
+    );
+    let (older_train, all_train) = if want_cold {
+        let mut all = store.rows(Split::Train, None, Some(through))?;
+        let older = if picks.len() == older_n {
+            all.clone()
+        } else {
+            all.select(&picks)
+        };
+        all.extend(&new_train);
+        (older, Some(all))
+    } else {
+        (
+            store.rows_at(Split::Train, None, Some(through), &picks)?,
+            None,
+        )
+    };
     let older_holdout = store.rows(Split::Holdout, None, Some(through))?;
     let new_holdout = store.rows(Split::Holdout, Some(through.next()), None)?;
     let new_flags: Vec<bool> = std::iter::repeat_n(false, older_holdout.n_rows())
@@ -211,12 +241,19 @@ pub fn run(
     let mut holdout = older_holdout;
     holdout.extend(&new_holdout);
     drop(new_holdout);
-    // Only a cold candidate uses all training rows as one matrix.
-    let all_train = want_cold.then(|| {
-        let mut all = older_train.clone();
-        all.extend(&new_train);
-        all
-    });
+    tracing::debug!(
+        "cycle {cycle}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s",
+        new_train.n_rows(),
+        older_train.n_rows(),
+        if all_train.is_some() {
+            " (all older rows for the cold candidate)"
+        } else {
+            ""
+        },
+        holdout.n_rows(),
+        step.elapsed().as_secs_f64()
+    );
+    let step = std::time::Instant::now();
     let training = &owner.config.training;
     let cold_spec = FeatureSpec::new(
         store.schema(),
@@ -294,16 +331,29 @@ pub fn run(
         trained.push((RunKind::Cold, t.model, t.summary));
     }
     let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
+    tracing::debug!(
+        "cycle {cycle}: trained {} candidate(s) in {:.3} s",
+        trained.len(),
+        step.elapsed().as_secs_f64()
+    );
+    let step = std::time::Instant::now();
     let mut scored = Vec::new();
     for (run, model, summary) in trained {
-        let losses = model.row_losses(&holdout, backend)?;
+        let losses = row_losses(&model, &holdout, backend)?;
         let loss = mean(&losses);
         scored.push((run, model, summary, losses, loss));
     }
     let judged = (0..scored.len())
         .min_by(|&a, &b| scored[a].4.total_cmp(&scored[b].4))
         .expect("at least one candidate is trained");
-    // The reference models, on the same training and holdout rows.
+    tracing::debug!(
+        "cycle {cycle}: scored the candidates on {} holdout rows in {:.3} s",
+        holdout.n_rows(),
+        step.elapsed().as_secs_f64()
+    );
+    let step = std::time::Instant::now();
+    // The reference models, on the warm candidate's training rows (the new
+    // ones and the older sample) and the same holdout rows.
     let parts = [&older_train, &new_train];
     let trivial = baseline::trivial_losses(&cold_spec, &parts, &holdout)
         .map_err(|e| CycleError::Scoring(e.to_string()))?;
@@ -312,12 +362,17 @@ pub fn run(
     let ridge = Ridge::fit(&cold_spec, &parts, lambda)
         .and_then(|r| r.row_losses(&holdout))
         .map(|l| mean(&l));
+    tracing::debug!(
+        "cycle {cycle}: fitted and scored the baselines in {:.3} s",
+        step.elapsed().as_secs_f64()
+    );
+    let step = std::time::Instant::now();
     let mut policy = gate::Policy::from(&owner.config.gate);
     policy.require_approval |= options.hold;
     let candidate_scores = Scores::new(scored[judged].3.clone(), new_flags.clone());
     let (decision, baseline_loss) = match &serving {
         Some((_, _, ck)) => {
-            let losses = ck.model.row_losses(&holdout, backend)?;
+            let losses = row_losses(&ck.model, &holdout, backend)?;
             let loss = mean(&losses);
             (
                 gate::decide(
@@ -338,6 +393,11 @@ pub fn run(
         ),
     };
 
+    tracing::debug!(
+        "cycle {cycle}: scored the serving model and decided in {:.3} s",
+        step.elapsed().as_secs_f64()
+    );
+    let step = std::time::Instant::now();
     let ridge_loss = ridge.as_ref().ok().copied();
     if let Err(e) = &ridge {
         tracing::warn!("ridge baseline not fitted: {e}");
@@ -519,6 +579,10 @@ pub fn run(
             });
         }
     }
+    tracing::debug!(
+        "cycle {cycle}: saved and recorded in {:.3} s",
+        step.elapsed().as_secs_f64()
+    );
     Ok(Outcome::Decided(Box::new(Report {
         cycle,
         serving_before: serving_id,
@@ -533,6 +597,62 @@ pub fn run(
         serving_after,
         dry_run: options.dry_run,
     })))
+}
+
+/// Rows scored at a time: a large holdout is never encoded all at once.
+const SCORE_ROWS: usize = 65_536;
+
+/// Per-row losses of `model` on `rows`, scored in slices of `SCORE_ROWS`
+/// rows so memory stays at one slice's encoded inputs.
+pub(crate) fn row_losses(
+    model: &Model,
+    rows: &crate::schema::RowMatrix,
+    backend: crate::config::Backend,
+) -> Result<Vec<f64>, ModelError> {
+    let n = rows.n_rows();
+    if n <= SCORE_ROWS {
+        return model.row_losses(rows, backend);
+    }
+    let w = rows.width();
+    let mut out = Vec::with_capacity(n);
+    for start in (0..n).step_by(SCORE_ROWS) {
+        let end = (start + SCORE_ROWS).min(n);
+        let slice =
+            crate::schema::RowMatrix::from_cells(w, rows.cells()[start * w..end * w].to_vec());
+        match model.row_losses(&slice, backend) {
+            Ok(l) => out.extend(l),
+            Err(ModelError::MissingTarget { row }) => {
+                return Err(ModelError::MissingTarget { row: start + row });
+            }
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(out)
+}
+
+/// Fewest older training rows a cycle samples (all of them when fewer are
+/// stored): enough for the baselines' fits to be as good as on every row,
+/// few enough to read and encode in well under a second.
+pub const OLDER_SAMPLE_MIN: usize = 50_000;
+
+/// How many older training rows a cycle reads: a warm run replays
+/// `replay_ratio` older rows per new row in each of at most `warm_epochs`
+/// epochs, plus its validation share, so `(warm_epochs + 1)` times one
+/// epoch's replay lets every epoch draw rows it has not seen, and the
+/// baselines get at least `OLDER_SAMPLE_MIN`. Capped at the rows stored.
+pub fn older_sample_size(
+    new_rows: usize,
+    older_rows: usize,
+    training: &crate::config::TrainingConfig,
+) -> usize {
+    let per_epoch = (new_rows as f64 * training.replay_ratio).ceil();
+    let replay = per_epoch * (training.warm_epochs as f64 + 1.0);
+    let want = if replay.is_finite() && replay < usize::MAX as f64 {
+        (replay as usize).max(OLDER_SAMPLE_MIN)
+    } else {
+        usize::MAX
+    };
+    want.min(older_rows)
 }
 
 /// `ModelId` of a candidate waiting for approval.
@@ -577,5 +697,75 @@ pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
         new_rows: e.new_rows.rows,
         old_rows: e.old_rows.rows,
         reason: decision.reason(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::{Backend, ModelConfig, Task, TrainingConfig};
+    use crate::model::{TargetScale, test_spec};
+    use crate::schema::{RowMatrix, number_cell};
+
+    #[test]
+    fn the_older_sample_covers_replay_and_the_baselines_and_no_more() {
+        let t = TrainingConfig::default();
+        // A small store: every older row.
+        assert_eq!(older_sample_size(1_000, 30_000, &t), 30_000);
+        // Few new rows: the baselines' floor.
+        assert_eq!(older_sample_size(1_000, 5_000_000, &t), OLDER_SAMPLE_MIN);
+        // Many new rows: a fresh replay sample for each epoch and validation.
+        let want = 8_000 * (t.warm_epochs + 1);
+        assert!(want > OLDER_SAMPLE_MIN);
+        assert_eq!(older_sample_size(8_000, 5_000_000, &t), want);
+        let half = TrainingConfig {
+            replay_ratio: 0.5,
+            ..t.clone()
+        };
+        assert_eq!(older_sample_size(20_000, 5_000_000, &half), want * 10 / 8);
+        let none = TrainingConfig {
+            replay_ratio: 0.0,
+            ..t
+        };
+        assert_eq!(
+            older_sample_size(20_000, 5_000_000, &none),
+            OLDER_SAMPLE_MIN
+        );
+    }
+
+    #[test]
+    fn holdout_losses_scored_in_slices_match_one_pass() {
+        let spec = test_spec(2, Task::Regression, 1);
+        let config = ModelConfig {
+            hidden: vec![8],
+            ..ModelConfig::default()
+        };
+        let model = Model::new(spec, &config, TargetScale::IDENTITY, Backend::Flex, 5).unwrap();
+        let n = SCORE_ROWS + 1_000;
+        let mut rows = RowMatrix::with_capacity(3, n);
+        for i in 0..n {
+            let a = (i % 97) as f32 / 10.0;
+            let b = (i % 31) as f32 / 7.0;
+            rows.push_row(&[
+                number_cell(Some(a)),
+                number_cell(Some(b)),
+                number_cell(Some(a - b)),
+            ]);
+        }
+        let sliced = row_losses(&model, &rows, Backend::Flex).unwrap();
+        assert_eq!(sliced.len(), n);
+        // Each slice alone, scored in one pass, gives the same numbers.
+        let w = rows.width();
+        let tail = RowMatrix::from_cells(w, rows.cells()[SCORE_ROWS * w..].to_vec());
+        let direct = model.row_losses(&tail, Backend::Flex).unwrap();
+        assert_eq!(&sliced[SCORE_ROWS..], &direct[..]);
+        let head = RowMatrix::from_cells(w, rows.cells()[..SCORE_ROWS * w].to_vec());
+        let direct = model.row_losses(&head, Backend::Flex).unwrap();
+        assert_eq!(&sliced[..SCORE_ROWS], &direct[..]);
+        // Rows repeat every 97 × 31 rows, and so do their losses across
+        // the slice border (to float rounding).
+        let period = 97 * 31;
+        let (a, b) = (sliced[SCORE_ROWS + 5], sliced[SCORE_ROWS + 5 - 21 * period]);
+        assert!((a - b).abs() <= 1e-5 * a.abs().max(1e-3), "{a} {b}");
     }
 }

@@ -8,7 +8,9 @@
 //!   not when `auto_rollback` is off: then it is only reported).
 //! - **shift**: the serving model's losses on the batch against its losses
 //!   on the stored holdout rows (Welch). A shift means the data moved; the
-//!   daemon retrains early and `status` flags it.
+//!   daemon retrains early and `status` flags it. The stored holdout rows
+//!   are sampled down to `MAX_REFERENCE_ROWS`, so the check costs the same
+//!   on a store of millions of rows as on one of thousands.
 //!
 //! Every check is logged as `fresh-checked`, also when it could not test.
 
@@ -24,6 +26,8 @@ use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
 use crate::model::ModelError;
 use crate::model::checkpoint::{self, Checkpoint};
+use crate::rng::Rng;
+use crate::sample;
 use crate::schema::{RowMatrix, Schema, Vocabularies};
 use crate::state::Owner;
 use crate::store::{Split, StoreError};
@@ -110,11 +114,15 @@ pub fn check_batch(
         let serving_model = load(serving)?.model;
         let fresh = serving_model.row_losses(&rows, backend)?;
         evidence.mean_loss_serving = Some(mean(&fresh));
-        let reference_rows =
-            owner
-                .store
-                .rows(Split::Holdout, None, Some(record.trained_through))?;
+        let step = std::time::Instant::now();
+        let reference_rows = reference_rows(owner, record.trained_through)?;
+        let read = step.elapsed().as_secs_f64();
         let reference = serving_model.row_losses(&reference_rows, backend)?;
+        tracing::debug!(
+            "batch {batch}: fresh-data check read {} reference rows in {read:.3} s, scored them in {:.3} s",
+            reference_rows.n_rows(),
+            step.elapsed().as_secs_f64() - read
+        );
         let shift = gate::shift_check(&fresh, &reference, alpha);
         evidence.mean_loss_reference = shift.test.map(|t| t.mean_b);
         evidence.p_shift = shift.test.map(|t| t.p_greater);
@@ -189,6 +197,28 @@ pub fn check_batch(
         entry,
         rollback,
     }))
+}
+
+/// Most stored holdout rows the check scores as its reference: a uniform
+/// sample of this many (all when fewer are stored) pins the reference mean
+/// loss far more tightly than a batch's rows pin theirs, and keeps the
+/// check's cost per batch flat as the store grows.
+pub const MAX_REFERENCE_ROWS: usize = 50_000;
+
+/// The holdout rows of batches up to `through`, or a uniform sample of
+/// `MAX_REFERENCE_ROWS` of them, the same for the same seed and batches.
+fn reference_rows(owner: &Owner, through: BatchId) -> Result<RowMatrix, StoreError> {
+    let store = &owner.store;
+    let n = store.row_count(Split::Holdout, None, Some(through))?;
+    if n <= MAX_REFERENCE_ROWS {
+        return store.rows(Split::Holdout, None, Some(through));
+    }
+    let seed = sample::seed_for(
+        owner.config.training.seed,
+        &[&b"fresh-reference/"[..], &through.key()].concat(),
+    );
+    let picks = sample::choose(n, MAX_REFERENCE_ROWS, &mut Rng::new(seed));
+    store.rows_at(Split::Holdout, None, Some(through), &picks)
 }
 
 /// Category values whose fresh rows cost the serving model most beyond

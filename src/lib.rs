@@ -27,6 +27,7 @@ pub mod model;
 pub mod refold;
 pub mod report;
 pub mod rng;
+pub mod sample;
 pub mod schema;
 pub mod state;
 pub mod store;

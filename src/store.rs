@@ -390,6 +390,108 @@ impl Store {
         Ok(out)
     }
 
+    /// Accepted batches with ids in `from..=to` (all when `None`), in order.
+    fn batches_in(
+        &self,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+    ) -> Result<Vec<BatchRecord>, StoreError> {
+        let lo = from.unwrap_or(BatchId(0));
+        let hi = to.unwrap_or(BatchId(u64::MAX));
+        if lo > hi {
+            return Ok(Vec::new());
+        }
+        self.batches
+            .range(lo.key()..=hi.key())
+            .map(|kv| {
+                let (_, v) = kv.map_err(|e| self.sled_err(e))?;
+                serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch record: {e}")))
+            })
+            .collect()
+    }
+
+    /// How many rows `rows(split, from, to)` would return, from the batch
+    /// records alone.
+    pub fn row_count(
+        &self,
+        split: Split,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+    ) -> Result<usize, StoreError> {
+        Ok(self
+            .batches_in(from, to)?
+            .iter()
+            .map(|r| split_rows(r, split))
+            .sum())
+    }
+
+    /// The rows at `positions` (strictly ascending indices into what
+    /// `rows(split, from, to)` returns) in that order, reading only the
+    /// chunks that hold them: memory and decoding grow with the sample, not
+    /// with the store. Panics when `positions` is not ascending or reaches
+    /// past the last row.
+    pub fn rows_at(
+        &self,
+        split: Split,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+        positions: &[usize],
+    ) -> Result<RowMatrix, StoreError> {
+        assert!(
+            positions.windows(2).all(|w| w[0] < w[1]),
+            "positions must be strictly ascending"
+        );
+        let width = self.schema.width();
+        let row_bytes = 4 * width;
+        let per_chunk = rows_per_chunk(width);
+        let mut out = RowMatrix::with_capacity(width, positions.len());
+        let mut next = positions.iter().copied().peekable();
+        let mut cells = vec![0u32; width];
+        let mut base = 0;
+        for rec in self.batches_in(from, to)? {
+            let n = split_rows(&rec, split);
+            let mut held: Option<(usize, sled::IVec)> = None;
+            while let Some(pos) = next.next_if(|&p| p < base + n) {
+                let r = pos - base;
+                let chunk = r / per_chunk;
+                if held.as_ref().is_none_or(|(c, _)| *c != chunk) {
+                    let key = chunk_key(rec.id, split, chunk);
+                    let value = self
+                        .chunks
+                        .get(key)
+                        .map_err(|e| self.sled_err(e))?
+                        .ok_or_else(|| {
+                            self.corrupt(format!("batch {} lacks row chunk {chunk}", rec.id))
+                        })?;
+                    if value.len() % row_bytes != 0 {
+                        return Err(
+                            self.corrupt(format!("chunk of batch {} is not whole rows", rec.id))
+                        );
+                    }
+                    held = Some((chunk, value));
+                }
+                let (_, value) = held.as_ref().expect("a chunk is held");
+                let at = (r % per_chunk) * row_bytes;
+                let bytes = value.get(at..at + row_bytes).ok_or_else(|| {
+                    self.corrupt(format!(
+                        "batch {} holds fewer rows than its record says",
+                        rec.id
+                    ))
+                })?;
+                for (c, b) in cells.iter_mut().zip(bytes.chunks_exact(4)) {
+                    *c = u32::from_le_bytes(b.try_into().expect("4 bytes"));
+                }
+                out.push_row(&cells);
+            }
+            base += n;
+        }
+        assert!(
+            next.next().is_none(),
+            "a position reaches past the {base} stored rows"
+        );
+        Ok(out)
+    }
+
     /// Audit entries in order, as stored.
     pub fn audit_entries(&self) -> Result<Vec<(AuditSeq, Vec<u8>)>, StoreError> {
         self.audit
@@ -819,6 +921,31 @@ fn chunk_entries(id: BatchId, split: Split, rows: &RowMatrix) -> Vec<(Vec<u8>, V
             (key, val)
         })
         .collect()
+}
+
+/// Rows per `chunks` value for rows of `width` cells, as `chunk_entries`
+/// cuts them (every chunk of a batch's split is full but the last).
+fn rows_per_chunk(width: usize) -> usize {
+    (CHUNK_CELLS / width.max(1)).max(1)
+}
+
+fn chunk_key(id: BatchId, split: Split, chunk: usize) -> Vec<u8> {
+    let mut key = Vec::with_capacity(13);
+    key.extend_from_slice(&id.key());
+    key.push(split.byte());
+    key.extend_from_slice(
+        &u32::try_from(chunk)
+            .expect("fewer than 2^32 chunks")
+            .to_be_bytes(),
+    );
+    key
+}
+
+fn split_rows(record: &BatchRecord, split: Split) -> usize {
+    (match split {
+        Split::Train => record.train_rows,
+        Split::Holdout => record.holdout_rows,
+    }) as usize
 }
 
 /// The one place sled's settings are chosen.

@@ -218,6 +218,9 @@ pub fn train_cold(
 /// Continues training `parent` (weights and Adam state) on `new_rows`,
 /// mixing in each epoch a fresh sample of `replay_ratio × new rows` from
 /// `old_rows`. The parent's feature encoding and target scale are kept.
+/// `old_rows` may itself be a uniform sample of the older rows (a cycle
+/// passes `cycle::older_sample_size` of them): every row of it is encoded,
+/// so its size, not the store's, sets this run's memory.
 pub fn train_warm(
     parent: &Model,
     cfg: &TrainingConfig,
