@@ -922,8 +922,24 @@ mod tests {
             assert_eq!(plain_decimal(b"-0.1"), Some(-0.1));
             assert_eq!(plain_decimal(b"+7"), Some(7.0));
             assert_eq!(plain_decimal(b"16777216"), Some(16_777_216.0));
-            for other in [&b""[..], b".", b"-", b"1e5", b" 1", b"1,5", b"1.2.3", b"16777217", b"0.12345678901", b"nan"] {
-                assert_eq!(plain_decimal(other), None, "{}", String::from_utf8_lossy(other));
+            for other in [
+                &b""[..],
+                b".",
+                b"-",
+                b"1e5",
+                b" 1",
+                b"1,5",
+                b"1.2.3",
+                b"16777217",
+                b"0.12345678901",
+                b"nan",
+            ] {
+                assert_eq!(
+                    plain_decimal(other),
+                    None,
+                    "{}",
+                    String::from_utf8_lossy(other)
+                );
             }
         }
     }

@@ -331,10 +331,10 @@ impl Store {
             return self.rows(split, None, None);
         }
         let width = self.schema.width();
-        let rows_per_chunk = (CHUNK_CELLS / width.max(1)).max(1);
+        let per_chunk = rows_per_chunk(width);
         // Batches end in part-filled chunks, so there are at least this many.
-        let chunks = total.div_ceil(rows_per_chunk);
-        let wanted = (2 * max).div_ceil(rows_per_chunk).max(1);
+        let chunks = total.div_ceil(per_chunk);
+        let wanted = (2 * max).div_ceil(per_chunk).max(1);
         let stride = (chunks / wanted).max(1);
         let mut out = RowMatrix::new(width);
         let mut index = 0usize;
@@ -443,7 +443,6 @@ impl Store {
         );
         let width = self.schema.width();
         let row_bytes = 4 * width;
-        let per_chunk = rows_per_chunk(width);
         let mut out = RowMatrix::with_capacity(width, positions.len());
         let mut next = positions.iter().copied().peekable();
         let mut cells = vec![0u32; width];
@@ -451,7 +450,22 @@ impl Store {
         for rec in self.batches_in(from, to)? {
             let n = split_rows(&rec, split);
             let mut held: Option<(usize, sled::IVec)> = None;
+            // Rows per chunk as this batch was written (stores from before
+            // the chunk size changed hold larger chunks): every chunk but
+            // the last is full, so the first one tells.
+            let mut per_chunk = 0;
             while let Some(pos) = next.next_if(|&p| p < base + n) {
+                if per_chunk == 0 {
+                    let first = self
+                        .chunks
+                        .get(chunk_key(rec.id, split, 0))
+                        .map_err(|e| self.sled_err(e))?
+                        .ok_or_else(|| {
+                            self.corrupt(format!("batch {} lacks row chunk 0", rec.id))
+                        })?;
+                    per_chunk = (first.len() / row_bytes).max(1);
+                    held = Some((0, first));
+                }
                 let r = pos - base;
                 let chunk = r / per_chunk;
                 if held.as_ref().is_none_or(|(c, _)| *c != chunk) {
@@ -904,7 +918,7 @@ impl Store {
 /// A batch's rows on one side of the split as `chunks` entries: keys
 /// (batch, split byte, chunk number) and values of whole rows under 64 KiB.
 fn chunk_entries(id: BatchId, split: Split, rows: &RowMatrix) -> Vec<(Vec<u8>, Vec<u8>)> {
-    let per_chunk = (CHUNK_CELLS / rows.width().max(1)).max(1) * rows.width().max(1);
+    let per_chunk = rows_per_chunk(rows.width()) * rows.width().max(1);
     rows.cells()
         .chunks(per_chunk)
         .enumerate()
