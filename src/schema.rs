@@ -909,9 +909,8 @@ mod tests {
             #[test]
             fn agrees_with_the_standard_parser(text in "[+-]?[0-9]{0,9}(\\.[0-9]{0,11})?") {
                 let general = text.parse::<f32>().ok();
-                match plain_decimal(text.as_bytes()) {
-                    Some(v) => prop_assert_eq!(Some(v.to_bits()), general.map(f32::to_bits), "{}", text),
-                    None => {}
+                if let Some(v) = plain_decimal(text.as_bytes()) {
+                    prop_assert_eq!(Some(v.to_bits()), general.map(f32::to_bits), "{}", text);
                 }
             }
         }
