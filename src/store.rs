@@ -316,7 +316,6 @@ impl Store {
         BatchId(self.totals.batches + 1)
     }
 
-    /// Rows of one split, for batches in `from..=to` (all when `None`).
     /// About `max` rows of one side of the split, spread over the whole
     /// store: whole chunks at an even stride, then thinned evenly. Only the
     /// chosen chunks are decoded, so the cost does not grow with the store.
@@ -337,28 +336,40 @@ impl Store {
         let wanted = (2 * max).div_ceil(per_chunk).max(1);
         let stride = (chunks / wanted).max(1);
         let mut out = RowMatrix::new(width);
+        // Chunk keys come from the batch records, so only the chosen chunks
+        // are read from sled (a store written with larger chunks just
+        // yields fewer, fuller ones).
         let mut index = 0usize;
-        for kv in self.chunks.iter() {
-            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
-            if k.len() < 9 || k[8] != split.byte() {
-                continue;
+        for rec in self.batches_in(None, None)? {
+            let n = split_rows(&rec, split);
+            for chunk in 0..n.div_ceil(per_chunk) {
+                index += 1;
+                if !(index - 1).is_multiple_of(stride) {
+                    continue;
+                }
+                let Some(v) = self
+                    .chunks
+                    .get(chunk_key(rec.id, split, chunk))
+                    .map_err(|e| self.sled_err(e))?
+                else {
+                    continue;
+                };
+                if v.len() % (4 * width) != 0 {
+                    return Err(
+                        self.corrupt(format!("chunk of batch {} is not whole rows", rec.id))
+                    );
+                }
+                let cells: Vec<u32> = v
+                    .chunks_exact(4)
+                    .map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+                    .collect();
+                out.extend(&RowMatrix::from_cells(width, cells));
             }
-            index += 1;
-            if !(index - 1).is_multiple_of(stride) {
-                continue;
-            }
-            if v.len() % (4 * width) != 0 {
-                return Err(self.corrupt("a chunk is not whole rows"));
-            }
-            let cells: Vec<u32> = v
-                .chunks_exact(4)
-                .map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]))
-                .collect();
-            out.extend(&RowMatrix::from_cells(width, cells));
         }
         Ok(crate::drift::thin(&out, max))
     }
 
+    /// Rows of one split, for batches in `from..=to` (all when `None`).
     pub fn rows(
         &self,
         split: Split,
@@ -962,11 +973,18 @@ fn split_rows(record: &BatchRecord, split: Split) -> usize {
     }) as usize
 }
 
+/// Bytes of sled's page cache.
+const SLED_CACHE_BYTES: u64 = 64 * 1024 * 1024;
+
 /// The one place sled's settings are chosen.
 fn open_sled(path: &Path) -> sled::Result<sled::Db> {
     sled::Config::new()
         .path(path)
         .mode(sled::Mode::HighThroughput)
+        // sled's default 1 GiB page cache keeps every chunk a cycle touches
+        // (a replay sample touches most of them); rows are read once per
+        // cycle, so a small cache costs nothing and bounds memory.
+        .cache_capacity(SLED_CACHE_BYTES)
         .open()
 }
 

@@ -145,6 +145,65 @@ pub struct LayerWeights {
     pub bias: Vec<f32>,
 }
 
+/// Runs `score(net, device, lo, hi)` over `n` rows: one stretch of whole
+/// chunks per core for large inputs, in order, results joined.
+fn by_stretches<F>(n: usize, net: &Net, dev: &Device, score: F) -> Vec<f32>
+where
+    F: Fn(&Net, &Device, usize, usize) -> Vec<f32> + Sync,
+{
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .min(n / PREDICT_CHUNK)
+        .clamp(1, 8);
+    if threads == 1 {
+        return score(net, dev, 0, n);
+    }
+    let per = n.div_ceil(threads).div_ceil(PREDICT_CHUNK) * PREDICT_CHUNK;
+    let score = &score;
+    let parts: Vec<Vec<f32>> = std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..threads)
+            .map(|t| {
+                let lo = (t * per).min(n);
+                let hi = ((t + 1) * per).min(n);
+                let net = net.clone();
+                let dev = dev.clone();
+                scope.spawn(move || score(&net, &dev, lo, hi))
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().expect("a scoring thread panicked"))
+            .collect()
+    });
+    parts.concat()
+}
+
+/// Network outputs for encoded rows, `PREDICT_CHUNK` rows at a time.
+fn forward_in_chunks(
+    net: &Net,
+    features: &[f32],
+    width: usize,
+    outputs: usize,
+    dev: &Device,
+) -> Vec<f32> {
+    let n = features.len() / width;
+    let mut out = Vec::with_capacity(n * outputs);
+    let mut start = 0;
+    while start < n {
+        let rows = PREDICT_CHUNK.min(n - start);
+        let x = Tensor::<2>::from_data(
+            TensorData::new(
+                features[start * width..(start + rows) * width].to_vec(),
+                [rows, width],
+            ),
+            dev,
+        );
+        out.extend(tensor_values(net.forward(x, None).into_data()));
+        start += rows;
+    }
+    out
+}
+
 /// The burn module: dense layers with an activation between them.
 #[derive(Module, Debug)]
 pub struct Net {
@@ -508,21 +567,54 @@ impl Model {
             )
         };
         let dev = device(backend);
-        let mut out = Vec::with_capacity(n * k);
-        let mut start = 0;
-        while start < n {
-            let rows = PREDICT_CHUNK.min(n - start);
-            let x = Tensor::<2>::from_data(
-                TensorData::new(
-                    features[start * width..(start + rows) * width].to_vec(),
-                    [rows, width],
-                ),
-                &dev,
-            );
-            out.extend(tensor_values(net.forward(x, None).into_data()));
-            start += rows;
+        Ok(by_stretches(n, &net, &dev, |net, dev, lo, hi| {
+            forward_in_chunks(net, &features[lo * width..hi * width], width, k, dev)
+        }))
+    }
+
+    /// Raw outputs for stored rows, encoded a chunk at a time on each
+    /// thread (no feature matrix for all rows at once).
+    fn raw_outputs_of_rows(
+        &self,
+        rows: &RowMatrix,
+        backend: Backend,
+    ) -> Result<Vec<f32>, ModelError> {
+        let width = self.spec.width();
+        if width == 0 {
+            return Err(ModelError::FeatureWidth { len: 0, width });
         }
-        Ok(out)
+        let k = self.spec.outputs;
+        let net = if backend == self.backend {
+            self.net.valid()
+        } else {
+            Net::from_weights(
+                &self.weights(),
+                self.config.activation,
+                0.0,
+                &device(backend),
+            )
+        };
+        let dev = device(backend);
+        let cols = rows.width();
+        let cells = rows.cells();
+        Ok(by_stretches(
+            rows.n_rows(),
+            &net,
+            &dev,
+            |net, dev, lo, hi| {
+                let mut out = Vec::with_capacity((hi - lo) * k);
+                let mut start = lo;
+                while start < hi {
+                    let end = (start + PREDICT_CHUNK).min(hi);
+                    let chunk =
+                        RowMatrix::from_cells(cols, cells[start * cols..end * cols].to_vec());
+                    let features = self.spec.encode_inputs(&chunk);
+                    out.extend(forward_in_chunks(net, &features, width, k, dev));
+                    start = end;
+                }
+                out
+            },
+        ))
     }
 
     /// Predictions for an already encoded feature matrix.
@@ -659,7 +751,7 @@ impl Model {
     }
 
     pub fn predict(&self, rows: &RowMatrix, backend: Backend) -> Result<Predictions, ModelError> {
-        self.predict_features(&self.spec.encode_inputs(rows), backend)
+        Ok(self.to_predictions(self.raw_outputs_of_rows(rows, backend)?))
     }
 
     fn to_predictions(&self, raw: Vec<f32>) -> Predictions {
@@ -697,7 +789,7 @@ impl Model {
         if let Some(row) = targets.iter().position(|t| t.is_nan()) {
             return Err(ModelError::MissingTarget { row });
         }
-        let raw = self.raw_outputs(&self.spec.encode_inputs(rows), backend)?;
+        let raw = self.raw_outputs_of_rows(rows, backend)?;
         Ok(row_losses_from_raw(
             self.spec.task,
             self.spec.outputs,

@@ -580,3 +580,24 @@ fn rescaling_folds_new_standardisation_into_the_first_layer() {
     // Threshold 0 never refreshes.
     assert!(model.rescaled(&stats, 0.0).unwrap().1.is_empty());
 }
+
+#[test]
+fn scoring_on_several_threads_matches_one_thread_exactly() {
+    let model = Model::new(
+        spec(5, Task::Regression, 1),
+        &config(vec![16], Activation::Relu, 1.0),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        3,
+    )
+    .expect("valid shape");
+    let mut rng = Rng::new(4);
+    // Several chunks: cut into one stretch per core where there are cores;
+    // stretches hold whole chunks, so every row sees the same arithmetic.
+    let n = 3 * PREDICT_CHUNK + 17;
+    let x: Vec<f32> = (0..n * 5).map(|_| rng.normal() as f32).collect();
+    let threaded = model.raw_outputs(&x, Backend::Flex).expect("width");
+    let one = forward_in_chunks(&model.net.valid(), &x, 5, 1, &device(Backend::Flex));
+    assert_eq!(threaded.len(), n);
+    assert_eq!(threaded, one);
+}
