@@ -556,7 +556,17 @@ impl Model {
         }
         let n = features.len() / width;
         let k = self.spec.outputs;
-        let net = if backend == self.backend {
+        let net = self.scoring_net(backend);
+        let dev = device(backend);
+        Ok(by_stretches(n, &net, &dev, |net, dev, lo, hi| {
+            forward_in_chunks(net, &features[lo * width..hi * width], width, k, dev)
+        }))
+    }
+
+    /// The network for inference on `backend` (a copy when it is not the
+    /// one the model was built on).
+    fn scoring_net(&self, backend: Backend) -> Net {
+        if backend == self.backend {
             self.net.valid()
         } else {
             Net::from_weights(
@@ -565,11 +575,7 @@ impl Model {
                 0.0,
                 &device(backend),
             )
-        };
-        let dev = device(backend);
-        Ok(by_stretches(n, &net, &dev, |net, dev, lo, hi| {
-            forward_in_chunks(net, &features[lo * width..hi * width], width, k, dev)
-        }))
+        }
     }
 
     /// Raw outputs for stored rows, encoded a chunk at a time on each
@@ -584,16 +590,7 @@ impl Model {
             return Err(ModelError::FeatureWidth { len: 0, width });
         }
         let k = self.spec.outputs;
-        let net = if backend == self.backend {
-            self.net.valid()
-        } else {
-            Net::from_weights(
-                &self.weights(),
-                self.config.activation,
-                0.0,
-                &device(backend),
-            )
-        };
+        let net = self.scoring_net(backend);
         let dev = device(backend);
         let cols = rows.width();
         let cells = rows.cells();
