@@ -927,23 +927,16 @@ impl Store {
 }
 
 /// A batch's rows on one side of the split as `chunks` entries: keys
-/// (batch, split byte, chunk number) and values of whole rows under 64 KiB.
+/// (batch, split byte, chunk number) and values of whole rows of at most
+/// `CHUNK_CELLS` cells.
 fn chunk_entries(id: BatchId, split: Split, rows: &RowMatrix) -> Vec<(Vec<u8>, Vec<u8>)> {
     let per_chunk = rows_per_chunk(rows.width()) * rows.width().max(1);
     rows.cells()
         .chunks(per_chunk)
         .enumerate()
         .map(|(i, cells)| {
-            let mut key = Vec::with_capacity(13);
-            key.extend_from_slice(&id.key());
-            key.push(split.byte());
-            key.extend_from_slice(
-                &u32::try_from(i)
-                    .expect("fewer than 2^32 chunks")
-                    .to_be_bytes(),
-            );
             let val: Vec<u8> = cells.iter().flat_map(|c| c.to_le_bytes()).collect();
-            (key, val)
+            (chunk_key(id, split, i), val)
         })
         .collect()
 }
