@@ -242,7 +242,7 @@ pub fn run(
     holdout.extend(&new_holdout);
     drop(new_holdout);
     tracing::debug!(
-        "cycle {cycle}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s",
+        "cycle {cycle}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s (peak RSS {} MB)",
         new_train.n_rows(),
         older_train.n_rows(),
         if all_train.is_some() {
@@ -251,7 +251,8 @@ pub fn run(
             ""
         },
         holdout.n_rows(),
-        step.elapsed().as_secs_f64()
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     let step = std::time::Instant::now();
     let training = &owner.config.training;
@@ -332,9 +333,10 @@ pub fn run(
     }
     let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
     tracing::debug!(
-        "cycle {cycle}: trained {} candidate(s) in {:.3} s",
+        "cycle {cycle}: trained {} candidate(s) in {:.3} s (peak RSS {} MB)",
         trained.len(),
-        step.elapsed().as_secs_f64()
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     let step = std::time::Instant::now();
     let mut scored = Vec::new();
@@ -347,9 +349,10 @@ pub fn run(
         .min_by(|&a, &b| scored[a].4.total_cmp(&scored[b].4))
         .expect("at least one candidate is trained");
     tracing::debug!(
-        "cycle {cycle}: scored the candidates on {} holdout rows in {:.3} s",
+        "cycle {cycle}: scored the candidates on {} holdout rows in {:.3} s (peak RSS {} MB)",
         holdout.n_rows(),
-        step.elapsed().as_secs_f64()
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     let step = std::time::Instant::now();
     // The reference models, on the warm candidate's training rows (the new
@@ -363,8 +366,9 @@ pub fn run(
         .and_then(|r| r.row_losses(&holdout))
         .map(|l| mean(&l));
     tracing::debug!(
-        "cycle {cycle}: fitted and scored the baselines in {:.3} s",
-        step.elapsed().as_secs_f64()
+        "cycle {cycle}: fitted and scored the baselines in {:.3} s (peak RSS {} MB)",
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     let step = std::time::Instant::now();
     let mut policy = gate::Policy::from(&owner.config.gate);
@@ -394,8 +398,9 @@ pub fn run(
     };
 
     tracing::debug!(
-        "cycle {cycle}: scored the serving model and decided in {:.3} s",
-        step.elapsed().as_secs_f64()
+        "cycle {cycle}: scored the serving model and decided in {:.3} s (peak RSS {} MB)",
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     let step = std::time::Instant::now();
     let ridge_loss = ridge.as_ref().ok().copied();
@@ -580,8 +585,9 @@ pub fn run(
         }
     }
     tracing::debug!(
-        "cycle {cycle}: saved and recorded in {:.3} s",
-        step.elapsed().as_secs_f64()
+        "cycle {cycle}: saved and recorded in {:.3} s (peak RSS {} MB)",
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
     );
     Ok(Outcome::Decided(Box::new(Report {
         cycle,
@@ -768,4 +774,17 @@ mod tests {
         let (a, b) = (sliced[SCORE_ROWS + 5], sliced[SCORE_ROWS + 5 - 21 * period]);
         assert!((a - b).abs() <= 1e-5 * a.abs().max(1e-3), "{a} {b}");
     }
+}
+
+/// The process's peak resident memory so far in MB (Linux), for the step
+/// lines of the debug log; 0 where it cannot be read.
+fn peak_rss_mb() -> u64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find_map(|l| l.strip_prefix("VmHWM:"))
+                .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<u64>().ok())
+        })
+        .map_or(0, |kb| kb / 1024)
 }
