@@ -706,6 +706,19 @@ pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
     }
 }
 
+/// The process's peak resident memory so far in MB (Linux), for the step
+/// lines of the debug log; 0 where it cannot be read.
+fn peak_rss_mb() -> u64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find_map(|l| l.strip_prefix("VmHWM:"))
+                .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<u64>().ok())
+        })
+        .map_or(0, |kb| kb / 1024)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -774,17 +787,4 @@ mod tests {
         let (a, b) = (sliced[SCORE_ROWS + 5], sliced[SCORE_ROWS + 5 - 21 * period]);
         assert!((a - b).abs() <= 1e-5 * a.abs().max(1e-3), "{a} {b}");
     }
-}
-
-/// The process's peak resident memory so far in MB (Linux), for the step
-/// lines of the debug log; 0 where it cannot be read.
-fn peak_rss_mb() -> u64 {
-    std::fs::read_to_string("/proc/self/status")
-        .ok()
-        .and_then(|s| {
-            s.lines()
-                .find_map(|l| l.strip_prefix("VmHWM:"))
-                .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<u64>().ok())
-        })
-        .map_or(0, |kb| kb / 1024)
 }
