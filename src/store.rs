@@ -354,19 +354,23 @@ impl Store {
                 else {
                     continue;
                 };
-                if v.len() % (4 * width) != 0 {
-                    return Err(
-                        self.corrupt(format!("chunk of batch {} is not whole rows", rec.id))
-                    );
-                }
-                let cells: Vec<u32> = v
-                    .chunks_exact(4)
-                    .map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]))
-                    .collect();
-                out.extend(&RowMatrix::from_cells(width, cells));
+                out.extend(&self.decode_chunk(rec.id, &v)?);
             }
         }
         Ok(crate::drift::thin(&out, max))
+    }
+
+    /// The rows of one stored chunk value.
+    fn decode_chunk(&self, batch: BatchId, value: &[u8]) -> Result<RowMatrix, StoreError> {
+        let width = self.schema.width();
+        if !value.len().is_multiple_of(4 * width) {
+            return Err(self.corrupt(format!("chunk of batch {batch} is not whole rows")));
+        }
+        let cells: Vec<u32> = value
+            .chunks_exact(4)
+            .map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes")))
+            .collect();
+        Ok(RowMatrix::from_cells(width, cells))
     }
 
     /// Rows of one split, for batches in `from..=to` (all when `None`).
@@ -389,14 +393,7 @@ impl Store {
             if k[8] != split.byte() {
                 continue;
             }
-            if v.len() % (4 * width) != 0 {
-                return Err(self.corrupt(format!("chunk of batch {id} is not whole rows")));
-            }
-            let cells: Vec<u32> = v
-                .chunks_exact(4)
-                .map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes")))
-                .collect();
-            out.extend(&RowMatrix::from_cells(width, cells));
+            out.extend(&self.decode_chunk(id, &v)?);
         }
         Ok(out)
     }
