@@ -257,6 +257,9 @@ pub struct GateConfig {
     pub alpha: f64,
     /// No decision to promote is made on fewer holdout rows.
     pub min_holdout_rows: usize,
+    /// Nor on holdout rows from fewer batches: rows of one file share a
+    /// day, so batches are the unit of evidence (at least 2).
+    pub min_holdout_batches: usize,
     /// Winning candidates wait for `approve` instead of serving at once.
     pub require_approval: bool,
     /// Train a cold candidate every this many cycles (0 = only on request).
@@ -268,6 +271,9 @@ pub struct GateConfig {
     /// Roll back by itself when the fresh-data check finds the serving model
     /// significantly worse than the one it replaced (never in approval mode).
     pub auto_rollback: bool,
+    /// Level of the fresh-data check's shift flags, per batch. A flag is a
+    /// reason to look, never an action by itself.
+    pub shift_alpha: f64,
 }
 
 impl Default for GateConfig {
@@ -276,11 +282,13 @@ impl Default for GateConfig {
             min_improvement: 0.01,
             alpha: 0.05,
             min_holdout_rows: 200,
+            min_holdout_batches: 3,
             require_approval: false,
             cold_every: 7,
             ridge_lambda: 1.0,
             fresh_min_rows: 100,
             auto_rollback: true,
+            shift_alpha: 0.01,
         }
     }
 }
@@ -628,7 +636,17 @@ impl Config {
             }
         }
         let g = &self.gate;
-        let checks: [(&str, bool, &str); 4] = [
+        let checks: [(&str, bool, &str); 6] = [
+            (
+                "min_holdout_batches",
+                g.min_holdout_batches >= 2,
+                "min_holdout_batches must be at least 2: one batch says nothing about how days differ; 3 is usual",
+            ),
+            (
+                "shift_alpha",
+                g.shift_alpha > 0.0 && g.shift_alpha <= 0.5,
+                "shift_alpha must be in (0, 0.5]; 0.01 is usual",
+            ),
             (
                 "ridge_lambda",
                 g.ridge_lambda > 0.0 && g.ridge_lambda.is_finite(),

@@ -2,7 +2,9 @@
 //! on schedule or on request), score them and the serving model on the same
 //! holdout rows, let the gate decide, then promote or keep. Every step is an
 //! audit entry; promotion moves the store's serving pointer in the same
-//! transaction as its entry.
+//! transaction as its entry. The cycle is a sequence of stages, each a
+//! function that takes the values the one before produced: [`plan`],
+//! [`read`], [`train`], [`score`], [`judge`] (pure) and [`record`].
 //!
 //! What a cycle trains on: the serving model remembers the last batch it
 //! was trained through (`model/<id>` in the store's meta tree). Rows of
@@ -10,6 +12,7 @@
 //! sample of the older rows; the gate's guards look at new and older
 //! holdout rows separately.
 
+use std::collections::BTreeMap;
 use std::sync::atomic::AtomicBool;
 
 use chrono::Utc;
@@ -23,7 +26,7 @@ use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta, RunKind};
 use crate::model::{Model, ModelError, TrainingSummary};
 use crate::rng::Rng;
 use crate::sample;
-use crate::schema::FeatureSpec;
+use crate::schema::{FeatureSpec, RowMatrix};
 use crate::state::{Owner, StateError};
 use crate::store::{
     META_CYCLES, META_NEXT_MODEL, META_OPEN_CYCLE, META_SERVING, MetaChange, Split, StoreError,
@@ -94,10 +97,16 @@ pub struct Report {
     /// Mean holdout loss of the ridge baseline (`None` if it could not be fitted).
     pub ridge_loss: Option<f64>,
     pub holdout_rows: usize,
+    /// Batches the holdout rows came from, and the batches a decision needs.
+    pub holdout_batches: usize,
+    pub batches_needed: usize,
     pub new_batches: Vec<BatchId>,
     pub candidates: Vec<Candidate>,
-    /// Index into `candidates` of the one the gate judged.
+    /// Index into `candidates` of the one the cycle acts on.
     pub judged: usize,
+    /// The gate's decision on each candidate, in `candidates` order.
+    pub decisions: Vec<Decision>,
+    /// The decision on the candidate the cycle acts on.
     pub decision: Decision,
     /// The model serving after the cycle.
     pub serving_after: Option<ModelId>,
@@ -125,9 +134,12 @@ pub enum CycleError {
     Scoring(String),
 }
 
-/// Runs one cycle. `progress` (if any) hears from every candidate; `cancel`
-/// stops training between mini-batches (the cycle then fails, recorded as
-/// abandoned at the next start).
+/// Runs one cycle as a sequence of stages that hand values to each other:
+/// [`plan`] → (log the start) → [`read`] → [`train`] → [`score`] →
+/// [`judge`] (choose and decide, pure) → [`record`]. `progress` (if any)
+/// hears from every candidate; `cancel` stops training between
+/// mini-batches (the cycle then fails, recorded as abandoned at the next
+/// start).
 pub fn run(
     owner: &mut Owner,
     options: Options,
@@ -135,6 +147,51 @@ pub fn run(
     progress: Option<&(dyn Fn(Progress) + Sync)>,
     cancel: Option<&AtomicBool>,
 ) -> Result<Outcome, CycleError> {
+    let plan = match plan(owner, options)? {
+        Planned::NothingNew(serving) => return Ok(Outcome::NothingNew { serving }),
+        Planned::Run(plan) => plan,
+    };
+    if !options.dry_run {
+        record_start(owner, &plan, user)?;
+    }
+    let data = read(owner, &plan)?;
+    let trained = train(owner, &plan, &data, progress, cancel)?;
+    let scored = score(owner, &plan, &data, trained)?;
+    let mut policy = gate::Policy::from(&owner.config.gate);
+    policy.require_approval |= options.hold;
+    let judgement = judge(&scored, &data, &policy);
+    let report = record(owner, &plan, &data, scored, judgement, options, user)?;
+    Ok(Outcome::Decided(Box::new(report)))
+}
+
+/// What a cycle will do, decided before any row is read.
+pub struct Plan {
+    pub cycle: u64,
+    /// The newest stored batch.
+    pub last: BatchId,
+    /// The last batch the serving model was trained on (0 with none).
+    pub through: BatchId,
+    pub serving: Option<(ModelId, ModelRecord, Checkpoint)>,
+    pub want_warm: bool,
+    pub want_cold: bool,
+    pub new_batches: Vec<BatchId>,
+    pub fingerprint: String,
+}
+
+impl Plan {
+    pub fn serving_id(&self) -> Option<ModelId> {
+        self.serving.as_ref().map(|(id, _, _)| *id)
+    }
+}
+
+/// Whether a cycle has anything to do.
+pub enum Planned {
+    NothingNew(ModelId),
+    Run(Box<Plan>),
+}
+
+/// Stage 1: which candidates to train, from the store's state.
+pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let store = &owner.store;
     let last = BatchId(store.totals().batches);
     if last.0 == 0 {
@@ -147,8 +204,7 @@ pub fn run(
         return Err(CycleError::Pending(pending));
     }
     let fingerprint = owner.config.schema_fingerprint();
-    let serving_id = store.serving()?;
-    let serving = match serving_id {
+    let serving = match store.serving()? {
         Some(id) => {
             let record = model_record(owner, id)?;
             let ck = Checkpoint::load(
@@ -166,47 +222,77 @@ pub fn run(
         && through >= last
         && !options.force_cold
     {
-        return Ok(Outcome::NothingNew { serving: *id });
+        return Ok(Planned::NothingNew(*id));
     }
     let cycle = store.cycles()? + 1;
     let cold_due =
         owner.config.gate.cold_every > 0 && cycle % owner.config.gate.cold_every as u64 == 0;
     let want_warm = serving.is_some();
     let want_cold = serving.is_none() || options.force_cold || cold_due;
-    let new_batches: Vec<BatchId> = (through.0 + 1..=last.0).map(BatchId).collect();
+    Ok(Planned::Run(Box::new(Plan {
+        cycle,
+        last,
+        through,
+        want_warm,
+        want_cold,
+        new_batches: (through.0 + 1..=last.0).map(BatchId).collect(),
+        serving,
+        fingerprint,
+    })))
+}
+
+fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleError> {
     let mut kinds = Vec::new();
-    if want_warm {
+    if plan.want_warm {
         kinds.push("warm".to_string());
     }
-    if want_cold {
+    if plan.want_cold {
         kinds.push("cold".to_string());
     }
-    if !options.dry_run {
-        let event = Event::CycleStarted {
-            cycle,
-            serving: serving_id,
-            new_batches: new_batches.clone(),
-            candidates: kinds,
-        };
-        let entry = owner.store.record_with_meta(
-            event,
-            user,
-            Utc::now(),
-            &[
-                (META_CYCLES, Some(cycle.to_be_bytes().to_vec())),
-                (META_OPEN_CYCLE, Some(cycle.to_be_bytes().to_vec())),
-            ],
-        )?;
-        owner.mirror.append(&[entry.line().as_bytes()])?;
-    }
+    let event = Event::CycleStarted {
+        cycle: plan.cycle,
+        serving: plan.serving_id(),
+        new_batches: plan.new_batches.clone(),
+        candidates: kinds,
+    };
+    let entry = owner.store.record_with_meta(
+        event,
+        user,
+        Utc::now(),
+        &[
+            (META_CYCLES, Some(plan.cycle.to_be_bytes().to_vec())),
+            (META_OPEN_CYCLE, Some(plan.cycle.to_be_bytes().to_vec())),
+        ],
+    )?;
+    owner.mirror.append(&[entry.line().as_bytes()])?;
+    Ok(())
+}
 
-    // The data, read once. Training rows split at the serving model's last
-    // batch: the new ones all, the older ones as a uniform sample (see
-    // `older_sample_size`) read chunk by chunk, unless a cold candidate
-    // needs them all anyway. Holdout rows all, in store order, with a
-    // new/older flag each.
+/// The rows a cycle works on.
+pub struct Data {
+    /// Training rows of the batches the serving model has not seen.
+    pub new_train: RowMatrix,
+    /// A uniform sample of older training rows (see `older_sample_size`).
+    pub older_train: RowMatrix,
+    pub older_n: usize,
+    /// Every training row, when a cold candidate trains.
+    pub all_train: Option<RowMatrix>,
+    /// Every holdout row, older batches first.
+    pub holdout: RowMatrix,
+    /// Per holdout row: it arrived after the serving model was trained.
+    pub new_flags: Vec<bool>,
+    /// Per holdout row: the batch it came from (the gate's clusters).
+    pub holdout_batches: Vec<u64>,
+}
+
+/// Stage 2: the data, read once. Training rows split at the serving model's
+/// last batch: the new ones all, the older ones as a uniform sample read
+/// chunk by chunk, unless a cold candidate needs them all anyway. Holdout
+/// rows all, in store order, with a new/older flag and a batch each.
+pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
     let step = std::time::Instant::now();
     let store = &owner.store;
+    let through = plan.through;
     let new_train = store.rows(Split::Train, Some(through.next()), None)?;
     let older_n = store.row_count(Split::Train, None, Some(through))?;
     let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
@@ -218,7 +304,7 @@ pub fn run(
             &[&b"older-train/"[..], &through.key()].concat(),
         )),
     );
-    let (older_train, all_train) = if want_cold {
+    let (older_train, all_train) = if plan.want_cold {
         let mut all = store.rows(Split::Train, None, Some(through))?;
         let older = if picks.len() == older_n {
             all.clone()
@@ -233,16 +319,28 @@ pub fn run(
             None,
         )
     };
-    let older_holdout = store.rows(Split::Holdout, None, Some(through))?;
-    let new_holdout = store.rows(Split::Holdout, Some(through.next()), None)?;
-    let new_flags: Vec<bool> = std::iter::repeat_n(false, older_holdout.n_rows())
-        .chain(std::iter::repeat_n(true, new_holdout.n_rows()))
+    let mut holdout = store.rows(Split::Holdout, None, Some(through))?;
+    let older_rows = holdout.n_rows();
+    holdout.extend(&store.rows(Split::Holdout, Some(through.next()), None)?);
+    let new_flags: Vec<bool> = (0..holdout.n_rows()).map(|i| i >= older_rows).collect();
+    let holdout_batches: Vec<u64> = store
+        .split_counts(Split::Holdout, None, None)?
+        .iter()
+        .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
         .collect();
-    let mut holdout = older_holdout;
-    holdout.extend(&new_holdout);
-    drop(new_holdout);
+    if holdout_batches.len() != holdout.n_rows() {
+        return Err(CycleError::Store(StoreError::Corrupt {
+            path: store.path().to_path_buf(),
+            what: format!(
+                "batch records count {} holdout rows, the store holds {}",
+                holdout_batches.len(),
+                holdout.n_rows()
+            ),
+        }));
+    }
     tracing::debug!(
-        "cycle {cycle}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s (peak RSS {} MB)",
+        "cycle {}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s (peak RSS {} MB)",
+        plan.cycle,
         new_train.n_rows(),
         older_train.n_rows(),
         if all_train.is_some() {
@@ -254,179 +352,274 @@ pub fn run(
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
-    let step = std::time::Instant::now();
-    let training = &owner.config.training;
-    let cold_spec = FeatureSpec::new(
-        store.schema(),
-        &store.totals().train_stats,
-        store.vocabularies(),
-    );
+    Ok(Data {
+        new_train,
+        older_train,
+        older_n,
+        all_train,
+        holdout,
+        new_flags,
+        holdout_batches,
+    })
+}
 
-    let control = Control {
-        cancel,
-        progress: progress.map(|p| p as &dyn Fn(Progress)),
-    };
+/// The trained candidates and what the warm parent's encoding gained.
+pub struct Trained {
+    pub models: Vec<(RunKind, Model, TrainingSummary)>,
+    pub widened_columns: BTreeMap<String, usize>,
+    pub rescaled_columns: Vec<String>,
+}
+
+/// Stage 3: train the candidates (warm and cold on two threads).
+pub fn train(
+    owner: &Owner,
+    plan: &Plan,
+    data: &Data,
+    progress: Option<&(dyn Fn(Progress) + Sync)>,
+    cancel: Option<&AtomicBool>,
+) -> Result<Trained, CycleError> {
+    let step = std::time::Instant::now();
+    let store = &owner.store;
+    let training = &owner.config.training;
+    let cold_spec = cold_spec(owner);
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
     // Number columns whose stats moved far are restandardised the same way.
-    let warm_parent = match serving.as_ref().filter(|_| want_warm) {
+    let warm_parent = match plan.serving.as_ref().filter(|_| plan.want_warm) {
         Some((_, _, ck)) => {
             let (wide, added) = ck.model.widened(store.vocabularies())?;
-            let (parent, rescaled) = wide.rescaled(
-                &store.totals().train_stats,
-                owner.config.training.rescale_threshold,
-            )?;
+            let (parent, rescaled) =
+                wide.rescaled(&store.totals().train_stats, training.rescale_threshold)?;
             Some((parent, added, rescaled))
         }
         None => None,
     };
+    let name = |c: usize| store.schema().columns[c].name.clone();
     let rescaled_columns: Vec<String> = warm_parent
         .as_ref()
-        .map(|(_, _, cols)| {
-            cols.iter()
-                .map(|c| store.schema().columns[*c].name.clone())
-                .collect()
-        })
+        .map(|(_, _, cols)| cols.iter().map(|c| name(*c)).collect())
         .unwrap_or_default();
-    let widened_columns: std::collections::BTreeMap<String, usize> = warm_parent
+    let widened_columns: BTreeMap<String, usize> = warm_parent
         .as_ref()
-        .map(|(_, added, _)| {
-            added
-                .iter()
-                .map(|(c, n)| (store.schema().columns[*c].name.clone(), *n))
-                .collect()
-        })
+        .map(|(_, added, _)| added.iter().map(|(c, n)| (name(*c), *n)).collect())
         .unwrap_or_default();
+    let control = || Control {
+        cancel,
+        progress: progress.map(|p| p as &dyn Fn(Progress)),
+    };
     let (warm, cold) = std::thread::scope(|scope| {
         let warm = warm_parent.as_ref().map(|(parent, _, _)| {
-            let (new_train, older_train) = (&new_train, &older_train);
+            let (new_train, older_train) = (&data.new_train, &data.older_train);
             scope.spawn(move || {
-                train::train_warm(
-                    parent,
-                    training,
-                    new_train,
-                    older_train,
-                    Control {
-                        cancel,
-                        progress: progress.map(|p| p as &dyn Fn(Progress)),
-                    },
-                )
+                let control = Control {
+                    cancel,
+                    progress: progress.map(|p| p as &dyn Fn(Progress)),
+                };
+                train::train_warm(parent, training, new_train, older_train, control)
             })
         });
-        let cold = all_train
-            .as_ref()
-            .map(|all| train::train_cold(&cold_spec, &owner.config.model, training, all, control));
+        let cold = data.all_train.as_ref().map(|all| {
+            train::train_cold(&cold_spec, &owner.config.model, training, all, control())
+        });
         (
             warm.map(|h| h.join().expect("training thread does not panic")),
             cold,
         )
     });
-    let backend = training.predict_backend;
-    let mut trained: Vec<(RunKind, Model, TrainingSummary)> = Vec::new();
+    let mut models = Vec::new();
     if let Some(w) = warm {
         let t = w?;
-        trained.push((RunKind::Warm, t.model, t.summary));
+        models.push((RunKind::Warm, t.model, t.summary));
     }
     if let Some(c) = cold {
         let t = c?;
-        trained.push((RunKind::Cold, t.model, t.summary));
+        models.push((RunKind::Cold, t.model, t.summary));
     }
-    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
     tracing::debug!(
-        "cycle {cycle}: trained {} candidate(s) in {:.3} s (peak RSS {} MB)",
-        trained.len(),
+        "cycle {}: trained {} candidate(s) in {:.3} s (peak RSS {} MB)",
+        plan.cycle,
+        models.len(),
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
+    Ok(Trained {
+        models,
+        widened_columns,
+        rescaled_columns,
+    })
+}
+
+fn cold_spec(owner: &Owner) -> FeatureSpec {
+    let store = &owner.store;
+    FeatureSpec::new(
+        store.schema(),
+        &store.totals().train_stats,
+        store.vocabularies(),
+    )
+}
+
+/// One candidate with its per-row holdout losses.
+pub struct ScoredCandidate {
+    pub run: RunKind,
+    pub model: Model,
+    pub summary: TrainingSummary,
+    pub losses: Vec<f64>,
+    pub loss: f64,
+}
+
+/// Every model of the cycle scored on the same holdout rows.
+pub struct Scored {
+    pub candidates: Vec<ScoredCandidate>,
+    /// The serving model's per-row losses (`None` when nothing serves).
+    pub serving: Option<Vec<f64>>,
+    /// The trivial predictor's per-row losses.
+    pub trivial: Vec<f64>,
+    pub trivial_loss: f64,
+    pub ridge: Result<f64, String>,
+    pub widened_columns: BTreeMap<String, usize>,
+    pub rescaled_columns: Vec<String>,
+}
+
+impl Scored {
+    /// Mean loss of what the candidates are judged against.
+    pub fn baseline_loss(&self) -> f64 {
+        self.serving.as_deref().map_or(self.trivial_loss, mean)
+    }
+}
+
+fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len().max(1) as f64
+}
+
+/// Stage 4: the candidates, the serving model and the reference models on
+/// the same holdout rows. The reference models fit on the warm candidate's
+/// training rows (the new ones and the older sample).
+pub fn score(
+    owner: &Owner,
+    plan: &Plan,
+    data: &Data,
+    trained: Trained,
+) -> Result<Scored, CycleError> {
     let step = std::time::Instant::now();
-    let mut scored = Vec::new();
-    for (run, model, summary) in trained {
-        let losses = row_losses(&model, &holdout, backend)?;
+    let backend = owner.config.training.predict_backend;
+    let mut candidates = Vec::new();
+    for (run, model, summary) in trained.models {
+        let losses = row_losses(&model, &data.holdout, backend)?;
         let loss = mean(&losses);
-        scored.push((run, model, summary, losses, loss));
+        candidates.push(ScoredCandidate {
+            run,
+            model,
+            summary,
+            losses,
+            loss,
+        });
     }
-    let judged = (0..scored.len())
-        .min_by(|&a, &b| scored[a].4.total_cmp(&scored[b].4))
-        .expect("at least one candidate is trained");
-    tracing::debug!(
-        "cycle {cycle}: scored the candidates on {} holdout rows in {:.3} s (peak RSS {} MB)",
-        holdout.n_rows(),
-        step.elapsed().as_secs_f64(),
-        peak_rss_mb()
-    );
-    let step = std::time::Instant::now();
-    // The reference models, on the warm candidate's training rows (the new
-    // ones and the older sample) and the same holdout rows.
-    let parts = [&older_train, &new_train];
-    let trivial = baseline::trivial_losses(&cold_spec, &parts, &holdout)
+    let serving = match &plan.serving {
+        Some((_, _, ck)) => Some(row_losses(&ck.model, &data.holdout, backend)?),
+        None => None,
+    };
+    let spec = cold_spec(owner);
+    let parts = [&data.older_train, &data.new_train];
+    let trivial = baseline::trivial_losses(&spec, &parts, &data.holdout)
         .map_err(|e| CycleError::Scoring(e.to_string()))?;
     let trivial_loss = mean(&trivial);
-    let lambda = owner.config.gate.ridge_lambda;
-    let ridge = Ridge::fit(&cold_spec, &parts, lambda)
-        .and_then(|r| r.row_losses(&holdout))
-        .map(|l| mean(&l));
-    tracing::debug!(
-        "cycle {cycle}: fitted and scored the baselines in {:.3} s (peak RSS {} MB)",
-        step.elapsed().as_secs_f64(),
-        peak_rss_mb()
-    );
-    let step = std::time::Instant::now();
-    let mut policy = gate::Policy::from(&owner.config.gate);
-    policy.require_approval |= options.hold;
-    let candidate_scores = Scores::new(scored[judged].3.clone(), new_flags.clone());
-    let (decision, baseline_loss) = match &serving {
-        Some((_, _, ck)) => {
-            let losses = row_losses(&ck.model, &holdout, backend)?;
-            let loss = mean(&losses);
-            (
-                gate::decide(
-                    &Scores::new(losses, new_flags.clone()),
-                    &candidate_scores,
-                    &policy,
-                ),
-                loss,
-            )
-        }
-        None => (
-            gate::decide_first(
-                &Scores::new(trivial.clone(), new_flags.clone()),
-                &candidate_scores,
-                &policy,
-            ),
-            trivial_loss,
-        ),
-    };
-
-    tracing::debug!(
-        "cycle {cycle}: scored the serving model and decided in {:.3} s (peak RSS {} MB)",
-        step.elapsed().as_secs_f64(),
-        peak_rss_mb()
-    );
-    let step = std::time::Instant::now();
-    let ridge_loss = ridge.as_ref().ok().copied();
+    let ridge = Ridge::fit(&spec, &parts, owner.config.gate.ridge_lambda)
+        .and_then(|r| r.row_losses(&data.holdout))
+        .map(|l| mean(&l))
+        .map_err(|e| e.to_string());
     if let Err(e) = &ridge {
         tracing::warn!("ridge baseline not fitted: {e}");
     }
+    tracing::debug!(
+        "cycle {}: scored {} candidate(s), the serving model and the baselines on {} holdout rows in {:.3} s (peak RSS {} MB)",
+        plan.cycle,
+        candidates.len(),
+        data.holdout.n_rows(),
+        step.elapsed().as_secs_f64(),
+        peak_rss_mb()
+    );
+    Ok(Scored {
+        candidates,
+        serving,
+        trivial,
+        trivial_loss,
+        ridge,
+        widened_columns: trained.widened_columns,
+        rescaled_columns: trained.rescaled_columns,
+    })
+}
 
-    let mut candidates = Vec::new();
+/// Stage 5 (pure): every candidate judged against the serving model (or
+/// the trivial predictor for a first model) on the same holdout rows,
+/// batches as clusters, Holm-corrected for the number of candidates; the
+/// cycle acts on the winner with the lowest loss, else on the best loser.
+pub fn judge(scored: &Scored, data: &Data, policy: &gate::Policy) -> gate::Judgement {
+    let scores = |losses: &[f64]| {
+        Scores::clustered(
+            losses.to_vec(),
+            data.new_flags.clone(),
+            data.holdout_batches.clone(),
+        )
+    };
+    let candidates: Vec<Scores> = scored
+        .candidates
+        .iter()
+        .map(|c| scores(&c.losses))
+        .collect();
+    match &scored.serving {
+        Some(losses) => gate::decide_among(
+            gate::Baseline::Serving,
+            &scores(losses),
+            &candidates,
+            policy,
+        ),
+        None => gate::decide_among(
+            gate::Baseline::Trivial,
+            &scores(&scored.trivial),
+            &candidates,
+            policy,
+        ),
+    }
+}
+
+/// Stage 6: save every candidate, log each one's fate and the baselines,
+/// move the serving pointer on a promotion (in the same transaction as its
+/// entry). A dry run saves and records nothing.
+pub fn record(
+    owner: &mut Owner,
+    plan: &Plan,
+    data: &Data,
+    scored: Scored,
+    judgement: gate::Judgement,
+    options: Options,
+    user: &str,
+) -> Result<Report, CycleError> {
+    let step = std::time::Instant::now();
+    let cycle = plan.cycle;
+    let serving_id = plan.serving_id();
+    let baseline_loss = scored.baseline_loss();
+    let chosen = judgement.chosen;
+    let decision = judgement.decision().clone();
+    let ridge_loss = scored.ridge.as_ref().ok().copied();
     let mut serving_after = serving_id;
+    let mut candidates = Vec::new();
     if options.dry_run {
-        for (run, _, summary, _, loss) in scored {
+        for c in scored.candidates {
             candidates.push(Candidate {
                 id: None,
-                run,
-                summary,
-                holdout_loss: loss,
+                run: c.run,
+                summary: c.summary,
+                holdout_loss: c.loss,
             });
         }
     } else {
         let vocabs = owner.store.vocabularies().clone();
         let mut next = owner.store.next_model_id()?;
         let mut ids = Vec::new();
-        for (run, model, summary, _, loss) in &scored {
+        for c in &scored.candidates {
             let id = next;
             next = next.next();
-            let parent = if *run == RunKind::Warm {
+            let parent = if c.run == RunKind::Warm {
                 serving_id
             } else {
                 None
@@ -435,10 +628,10 @@ pub fn run(
                 id,
                 parent,
                 created_at: Utc::now(),
-                schema_fingerprint: &fingerprint,
+                schema_fingerprint: &plan.fingerprint,
                 vocabularies: &vocabs,
             };
-            let dir = model.save(&owner.state.models(), summary, &meta)?;
+            let dir = c.model.save(&owner.state.models(), &c.summary, &meta)?;
             let manifest_hash = std::fs::read(dir.join(checkpoint::MANIFEST_FILE))
                 .map(|b| blake3::hash(&b).to_hex().to_string())
                 .map_err(|source| StateError::Io {
@@ -448,30 +641,31 @@ pub fn run(
             let record = ModelRecord {
                 id,
                 parent,
-                run: *run,
-                trained_through: last,
+                run: c.run,
+                trained_through: plan.last,
                 cycle,
-                holdout_loss: *loss,
+                holdout_loss: c.loss,
             };
+            let warm = c.run == RunKind::Warm;
             let event = Event::CandidateTrained {
                 cycle,
                 model: id,
-                run: run_name(*run).into(),
+                run: run_name(c.run).into(),
                 parent,
-                trained_through: last,
-                epochs: summary.epochs,
-                seconds: summary.seconds,
-                stop: format!("{:?}", summary.stop),
-                holdout_rows: holdout.n_rows(),
-                holdout_loss: *loss,
+                trained_through: plan.last,
+                epochs: c.summary.epochs,
+                seconds: c.summary.seconds,
+                stop: format!("{:?}", c.summary.stop),
+                holdout_rows: data.holdout.n_rows(),
+                holdout_loss: c.loss,
                 manifest_hash,
-                widened: if *run == RunKind::Warm {
-                    widened_columns.clone()
+                widened: if warm {
+                    scored.widened_columns.clone()
                 } else {
                     Default::default()
                 },
-                rescaled: if *run == RunKind::Warm {
-                    rescaled_columns.clone()
+                rescaled: if warm {
+                    scored.rescaled_columns.clone()
                 } else {
                     Vec::new()
                 },
@@ -493,34 +687,42 @@ pub fn run(
         }
         let event = Event::BaselinesScored {
             cycle,
-            holdout_rows: holdout.n_rows(),
-            trivial_loss,
+            holdout_rows: data.holdout.n_rows(),
+            trivial_loss: scored.trivial_loss,
             ridge_loss,
-            ridge_lambda: lambda,
-            ridge_problem: ridge.as_ref().err().map(ToString::to_string),
+            ridge_lambda: owner.config.gate.ridge_lambda,
+            ridge_problem: scored.ridge.as_ref().err().cloned(),
             serving: serving_id,
             serving_loss: serving_id.map(|_| baseline_loss),
         };
         let entry = owner.store.record_with_meta(event, user, Utc::now(), &[])?;
         owner.mirror.append(&[entry.line().as_bytes()])?;
         for (i, id) in ids.iter().enumerate() {
-            if i != judged {
-                let reason = format!(
-                    "another candidate of this cycle scored lower on the holdout rows ({:.4} against {:.4})",
-                    scored[judged].4, scored[i].4
-                );
+            let this = &judgement.decisions[i];
+            let evidence = this.evidence().map(|e| evidence_of(e, this));
+            if i != chosen {
+                let reason = if this.candidate_won() {
+                    format!(
+                        "another candidate of this cycle also passed the gate and scored lower on the \
+                         holdout rows ({:.4} against {:.4}); {}",
+                        scored.candidates[chosen].loss,
+                        scored.candidates[i].loss,
+                        this.reason()
+                    )
+                } else {
+                    this.reason()
+                };
                 let event = Event::Kept {
                     cycle,
                     model: *id,
                     serving: serving_id,
-                    evidence: None,
+                    evidence,
                     reason,
                 };
                 let entry = owner.store.record_with_meta(event, user, Utc::now(), &[])?;
                 owner.mirror.append(&[entry.line().as_bytes()])?;
                 continue;
             }
-            let evidence = decision.evidence().map(|e| evidence_of(e, &decision));
             let close = (META_OPEN_CYCLE, None);
             let (event, meta): (Event, Vec<MetaChange<'_>>) = match &decision {
                 Decision::Promote { .. } => {
@@ -532,7 +734,11 @@ pub fn run(
                             previous: serving_id,
                             evidence: evidence.expect("a promotion has evidence"),
                         },
-                        vec![(META_SERVING, Some(id.key().to_vec())), close],
+                        vec![
+                            (META_SERVING, Some(id.key().to_vec())),
+                            (crate::fresh::META_MONITOR, None),
+                            close,
+                        ],
                     )
                 }
                 Decision::AwaitApproval { .. } => (
@@ -575,12 +781,12 @@ pub fn run(
                     })?;
             }
         }
-        for ((run, _, summary, _, loss), id) in scored.into_iter().zip(ids) {
+        for (c, id) in scored.candidates.into_iter().zip(ids) {
             candidates.push(Candidate {
                 id: Some(id),
-                run,
-                summary,
-                holdout_loss: loss,
+                run: c.run,
+                summary: c.summary,
+                holdout_loss: c.loss,
             });
         }
     }
@@ -589,20 +795,27 @@ pub fn run(
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
-    Ok(Outcome::Decided(Box::new(Report {
+    Ok(Report {
         cycle,
         serving_before: serving_id,
         baseline_loss,
-        trivial_loss,
+        trivial_loss: scored.trivial_loss,
         ridge_loss,
-        holdout_rows: holdout.n_rows(),
-        new_batches,
+        holdout_rows: data.holdout.n_rows(),
+        holdout_batches: data
+            .holdout_batches
+            .iter()
+            .collect::<std::collections::BTreeSet<_>>()
+            .len(),
+        batches_needed: owner.config.gate.min_holdout_batches.max(2),
+        new_batches: plan.new_batches.clone(),
         candidates,
-        judged,
+        judged: chosen,
+        decisions: judgement.decisions,
         decision,
         serving_after,
         dry_run: options.dry_run,
-    })))
+    })
 }
 
 /// Rows scored at a time: a large holdout is never encoded all at once.
@@ -698,7 +911,11 @@ pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
         mean_loss_candidate: e.mean_loss_candidate,
         relative_improvement: e.relative_improvement,
         t: e.test.t.is_finite().then_some(e.test.t),
-        p: e.test.p_greater,
+        p: e.p,
+        batches: Some(e.batches),
+        batches_needed: Some(e.batches_needed),
+        candidates: Some(e.candidates),
+        p_unadjusted: (e.candidates > 1).then_some(e.test.p_greater),
         wilcoxon_p: e.wilcoxon_p,
         new_rows: e.new_rows.rows,
         old_rows: e.old_rows.rows,

@@ -164,7 +164,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     }
                     night.candidate_loss = format!("{:.2}", judged.holdout_loss);
                     if let Some(e) = r.decision.evidence() {
-                        night.p = format!("{:.2e}", e.test.p_greater);
+                        night.p = format!("{:.2e}", e.p);
                     }
                     night.decision = r.decision.kind().to_string();
                     if let Some(id) = judged.id {
@@ -258,8 +258,8 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
         cli.colored(),
     );
     out.push_str(
-        "\nlosses: mean squared error (loaves²) on the holdout rows; p: one-sided paired t-test \
-         that the candidate is better\n\nwhat happened:\n",
+        "\nlosses: mean squared error (loaves²) on the holdout rows; p: one-sided cluster-robust \
+         t-test, nights as clusters, that the candidate is better\n\nwhat happened:\n",
     );
     for e in &events {
         out.push_str(&format!("- {e}\n"));

@@ -155,6 +155,8 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
             "outcome": report.decision.kind(), "cycle": report.cycle, "dry_run": report.dry_run,
             "serving_before": report.serving_before, "serving_after": report.serving_after,
             "baseline": baseline, "baseline_loss": report.baseline_loss, "holdout_rows": report.holdout_rows,
+            "holdout_batches": report.holdout_batches,
+            "batches_needed": report.batches_needed,
             "new_batches": report.new_batches, "candidates": candidates, "judged": report.judged,
             "evidence": evidence, "reason": report.decision.reason(),
             "ridge_loss": report.ridge_loss, "trivial_loss": report.trivial_loss,
@@ -204,7 +206,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         ]);
     }
     let mut out = format!(
-        "cycle {}{}: {} new batch(es), {} holdout rows\n",
+        "cycle {}{}: {} new batch(es), {} holdout rows from {} batch(es) ({} needed for a decision)\n",
         report.cycle,
         if report.dry_run {
             " (dry run: nothing saved or recorded)"
@@ -212,7 +214,9 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
             ""
         },
         report.new_batches.len(),
-        report.holdout_rows
+        report.holdout_rows,
+        report.holdout_batches,
+        report.batches_needed
     );
     out.push_str(&super::table_styled(
         &["model", "kind", "epochs", "seconds", "holdout loss"],
@@ -224,6 +228,20 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         report.decision.kind(),
         report.decision.reason()
     ));
+    if report.decision.waits_for_evidence() {
+        out.push_str(
+            "not enough evidence yet: the gate decides once the holdout rows span enough batches\n",
+        );
+    }
+    for (i, d) in report.decisions.iter().enumerate() {
+        if i != report.judged
+            && let Some(c) = report.candidates.get(i)
+        {
+            let name =
+                c.id.map_or_else(|| "(dry run)".to_string(), |m| m.to_string());
+            out.push_str(&format!("also judged: {name} — {}\n", d.reason()));
+        }
+    }
     if let Some(s) = report.serving_after {
         out.push_str(&format!("serving: {s}\n"));
     }

@@ -1,29 +1,40 @@
 //! The promotion decision: given per-row holdout losses of a baseline (the
-//! serving model, or the trivial predictor for the first model) and of a
-//! candidate on the SAME rows, decide Promote, Keep or AwaitApproval, with
-//! every number that led there and the reason in words.
+//! serving model, or the trivial predictor for the first model) and of one
+//! or more candidates on the SAME rows, decide Promote, Keep or
+//! AwaitApproval, with every number that led there and the reason in words.
+//!
+//! The batch is the unit of evidence: rows of one file share that day, so
+//! the paired differences are tested with a cluster-robust t, batches as
+//! clusters ([`super::cluster::clustered_t`]); with fewer batches than
+//! `min_batches` the answer is "not enough evidence yet".
 //!
 //! Rules (all must hold to promote):
-//! 1. at least `min_holdout_rows` rows (and at least 2);
+//! 1. at least `min_holdout_rows` rows from at least `min_batches` batches;
 //! 2. the candidate's mean loss is strictly lower, and lower by at least
 //!    `min_improvement` relative to the baseline's mean loss;
-//! 3. the one-sided paired t-test of d_i = baseline_i − candidate_i
-//!    (H1: mean d > 0) gives p ≤ `alpha`;
+//! 3. the one-sided cluster-robust t-test of d_i = baseline_i − candidate_i
+//!    (H1: mean d > 0) gives p ≤ `alpha`, after Holm's correction for the
+//!    number of candidates judged in the same cycle;
 //! 4. on the rows that arrived after the serving model was trained ("new
 //!    rows") the candidate is not significantly worse (one-sided, `alpha`);
 //! 5. on the other rows ("older rows") it is not significantly worse either,
 //!    so gains on new data cannot hide forgetting of old data.
 //!
-//! A guard subset with fewer than [`GUARD_MIN_ROWS`] rows is not tested and
-//! does not block. The guards only remove promotions, so the rate of
-//! promoting a candidate that is not better stays at or below `alpha`.
-//! With `require_approval` a winner becomes `AwaitApproval`. Inputs that
+//! A guard subset from two or more batches is tested with the same
+//! cluster-robust t; a subset from one batch is tested row by row, which
+//! asks "worse on that day's rows" (conditional on the day). A subset with
+//! fewer than [`GUARD_MIN_ROWS`] rows does not block. The guards only
+//! remove promotions, so the chance of promoting a candidate that is not
+//! better stays at or below `alpha`, with one candidate or several.
+//! Among the candidates that pass every rule, the one with the lowest mean
+//! holdout loss is promoted; with `require_approval` it waits. Inputs that
 //! cannot be compared are a `Keep` carrying the reason, never a panic.
 
 use std::cmp::Ordering;
 use std::fmt;
 
-use super::paired::{PairedT, WelchT, differences, paired_t, welch_t, wilcoxon_signed_rank};
+use super::cluster::{ClusteredT, clustered_t, holm_adjust};
+use super::paired::{differences, paired_t, wilcoxon_signed_rank};
 use super::{InputError, mean, show};
 use crate::config::GateConfig;
 
@@ -39,6 +50,8 @@ pub struct Policy {
     pub alpha: f64,
     /// No promotion on fewer holdout rows than this.
     pub min_holdout_rows: usize,
+    /// No promotion on holdout rows from fewer batches than this (at least 2).
+    pub min_batches: usize,
     /// A winning candidate waits for a person instead of serving at once.
     pub require_approval: bool,
 }
@@ -49,6 +62,7 @@ impl From<&GateConfig> for Policy {
             min_improvement: config.min_improvement,
             alpha: config.alpha,
             min_holdout_rows: config.min_holdout_rows,
+            min_batches: config.min_holdout_batches,
             require_approval: config.require_approval,
         }
     }
@@ -72,22 +86,47 @@ impl Policy {
         }
         None
     }
+
+    /// Batches a decision needs (never fewer than 2: one batch says nothing
+    /// about how days differ).
+    pub fn batches_needed(&self) -> usize {
+        self.min_batches.max(2)
+    }
 }
 
 /// One model's per-row holdout losses, with a flag per row telling whether
-/// the row arrived after the serving model was trained. The baseline's and
-/// the candidate's `Scores` must describe the same rows in the same order.
+/// the row arrived after the serving model was trained, and the batch each
+/// row came from. The baseline's and the candidate's `Scores` must describe
+/// the same rows in the same order.
 #[derive(Debug, Clone, PartialEq, Default)]
 pub struct Scores {
     /// Per-row losses (squared error or log loss): finite and ≥ 0.
     pub losses: Vec<f64>,
     /// `new_rows[i]`: row i arrived after the serving model was trained.
     pub new_rows: Vec<bool>,
+    /// `batches[i]`: the batch (cluster) row i came from.
+    pub batches: Vec<u64>,
 }
 
 impl Scores {
+    /// Rows known to be independent of each other: each is its own batch.
+    /// For simulations and tests; stored rows always carry their batch.
     pub fn new(losses: Vec<f64>, new_rows: Vec<bool>) -> Scores {
-        Scores { losses, new_rows }
+        let batches = (0..losses.len() as u64).collect();
+        Scores {
+            losses,
+            new_rows,
+            batches,
+        }
+    }
+
+    /// Rows grouped by the batch they came from.
+    pub fn clustered(losses: Vec<f64>, new_rows: Vec<bool>, batches: Vec<u64>) -> Scores {
+        Scores {
+            losses,
+            new_rows,
+            batches,
+        }
     }
 }
 
@@ -127,9 +166,10 @@ pub struct Guard {
     pub rows: usize,
     pub mean_loss_baseline: Option<f64>,
     pub mean_loss_candidate: Option<f64>,
-    /// Paired t on the subset; `p_less` is the evidence that the candidate
-    /// is worse there.
-    pub test: Option<PairedT>,
+    /// Test on the subset (cluster-robust over its batches, or row by row
+    /// within its one batch: `clusters == 1`); `p_less` is the evidence
+    /// that the candidate is worse there.
+    pub test: Option<ClusteredT>,
     pub status: GuardStatus,
 }
 
@@ -138,16 +178,26 @@ pub struct Guard {
 pub struct Evidence {
     pub baseline: Baseline,
     pub rows: usize,
+    /// Batches the holdout rows came from (the test's clusters).
+    pub batches: usize,
+    /// Batches a decision needs.
+    pub batches_needed: usize,
     pub mean_loss_baseline: f64,
     pub mean_loss_candidate: f64,
     /// (baseline − candidate) / baseline mean loss; `None` when the
     /// baseline's mean loss is zero.
     pub relative_improvement: Option<f64>,
-    /// One-sided paired t on all rows; `p_greater` is the decision's p.
-    pub test: PairedT,
-    /// Wilcoxon signed-rank p that the candidate's losses tend to be lower:
-    /// a second opinion that does not rest on the mean of heavy-tailed
-    /// losses. Recorded, not part of the rule.
+    /// One-sided cluster-robust t on all rows; `test.p_greater` is the
+    /// candidate's own p.
+    pub test: ClusteredT,
+    /// Candidates judged together in this cycle (Holm's k).
+    pub candidates: usize,
+    /// The decision's p: `test.p_greater` after Holm's correction for
+    /// `candidates` (equal to it for one candidate).
+    pub p: f64,
+    /// Wilcoxon signed-rank p on the per-batch mean differences that the
+    /// candidate's losses tend to be lower: a second opinion that does not
+    /// rest on the mean. Recorded, not part of the rule.
     pub wilcoxon_p: Option<f64>,
     pub new_rows: Guard,
     pub old_rows: Guard,
@@ -159,9 +209,15 @@ pub struct Evidence {
 pub enum Shortfall {
     InvalidPolicy(String),
     InvalidInput(InputError),
-    /// The two score sets flag different rows as new.
+    /// The two score sets flag different rows as new, or put rows in
+    /// different batches.
     RowsDiffer,
     TooFewRows {
+        have: usize,
+        need: usize,
+    },
+    /// Not enough evidence yet: the holdout rows come from too few batches.
+    TooFewBatches {
         have: usize,
         need: usize,
     },
@@ -177,6 +233,7 @@ pub enum Shortfall {
     NotSignificant {
         p: f64,
         alpha: f64,
+        candidates: usize,
     },
     /// The overall p-value was not a number.
     NumericalFailure,
@@ -198,19 +255,33 @@ impl fmt::Display for Shortfall {
             Shortfall::InvalidPolicy(why) => write!(f, "the gate policy cannot be applied: {why}"),
             Shortfall::InvalidInput(e) => write!(f, "the scores cannot be compared: {e}"),
             Shortfall::RowsDiffer => f.write_str(
-                "the two score sets flag different rows as new, so they do not describe the same rows",
+                "the two score sets flag different rows as new or put them in different batches, \
+                 so they do not describe the same rows",
             ),
             Shortfall::TooFewRows { have, need } => {
                 write!(f, "only {have} holdout rows, at least {need} required")
             }
-            Shortfall::NotLower { baseline, mean_baseline, mean_candidate } => write!(
+            Shortfall::TooFewBatches { have, need } => write!(
+                f,
+                "not enough evidence yet: holdout rows from {have} batch{}, at least {need} \
+                 needed (rows of one batch share a day, so batches are the unit of evidence)",
+                if *have == 1 { "" } else { "es" }
+            ),
+            Shortfall::NotLower {
+                baseline,
+                mean_baseline,
+                mean_candidate,
+            } => write!(
                 f,
                 "the candidate's mean loss {} is not below the {}'s {}",
                 show(*mean_candidate),
                 baseline.name(),
                 show(*mean_baseline)
             ),
-            Shortfall::SmallImprovement { relative: Some(r), need } => write!(
+            Shortfall::SmallImprovement {
+                relative: Some(r),
+                need,
+            } => write!(
                 f,
                 "the relative improvement {}% is below the required {}%",
                 show(100.0 * r),
@@ -219,12 +290,23 @@ impl fmt::Display for Shortfall {
             Shortfall::SmallImprovement { relative: None, .. } => {
                 f.write_str("the baseline's mean loss is zero, so nothing can improve on it")
             }
-            Shortfall::NotSignificant { p, alpha } => write!(
-                f,
-                "the improvement is not significant: one-sided paired t-test p = {} > alpha {}",
-                show(*p),
-                show(*alpha)
-            ),
+            Shortfall::NotSignificant {
+                p,
+                alpha,
+                candidates,
+            } => {
+                write!(
+                    f,
+                    "the improvement is not significant: one-sided cluster-robust p = {}{} > alpha {}",
+                    show(*p),
+                    if *candidates > 1 {
+                        format!(" (Holm-adjusted for {candidates} candidates)")
+                    } else {
+                        String::new()
+                    },
+                    show(*alpha)
+                )
+            }
             Shortfall::NumericalFailure => f.write_str("the test's p-value could not be computed"),
             Shortfall::WorseOnNewRows { rows, p, alpha } => write!(
                 f,
@@ -281,6 +363,23 @@ impl Decision {
         }
     }
 
+    /// True when the only reasons to keep are "not enough evidence yet"
+    /// (too few rows or batches).
+    pub fn waits_for_evidence(&self) -> bool {
+        match self {
+            Decision::Keep { shortfalls, .. } => {
+                !shortfalls.is_empty()
+                    && shortfalls.iter().any(|s| {
+                        matches!(
+                            s,
+                            Shortfall::TooFewBatches { .. } | Shortfall::TooFewRows { .. }
+                        )
+                    })
+            }
+            _ => false,
+        }
+    }
+
     /// The decision and its grounds in plain words.
     pub fn reason(&self) -> String {
         match self {
@@ -311,13 +410,25 @@ fn summary(e: &Evidence) -> String {
         Some(r) => format!("{}% lower", show(100.0 * r)),
         None => "relative change undefined".to_string(),
     };
+    let holm = if e.candidates > 1 {
+        format!(
+            ", {} after Holm's correction for {} candidates",
+            show(e.p),
+            e.candidates
+        )
+    } else {
+        String::new()
+    };
     format!(
-        "mean loss {} for the {} vs {} for the candidate on {} holdout rows ({change}, at least {}% \
-         required); one-sided paired t = {} with {} df, p = {} (alpha {})",
+        "mean loss {} for the {} vs {} for the candidate on {} holdout rows from {} batches \
+         ({} needed; {change}, at least {}% required); one-sided cluster-robust t = {} with {} df, \
+         p = {}{holm} (alpha {})",
         show(e.mean_loss_baseline),
         e.baseline.name(),
         show(e.mean_loss_candidate),
         e.rows,
+        e.batches,
+        e.batches_needed,
         show(100.0 * e.policy.min_improvement),
         show(e.test.t),
         e.test.df,
@@ -327,21 +438,26 @@ fn summary(e: &Evidence) -> String {
 }
 
 fn guard_text(label: &str, g: &Guard) -> String {
+    let within = |t: &ClusteredT| {
+        if t.clusters == 1 { " of one batch" } else { "" }
+    };
     match (g.status, g.test) {
         (GuardStatus::NotTested, _) | (_, None) => {
             format!("{} {label} rows, too few to test", g.rows)
         }
         (GuardStatus::Passed, Some(t)) => {
             format!(
-                "not significantly worse on {} {label} rows (p = {})",
+                "not significantly worse on {} {label} rows{} (p = {})",
                 g.rows,
+                within(&t),
                 show(t.p_less)
             )
         }
         (GuardStatus::Failed, Some(t)) => {
             format!(
-                "significantly worse on {} {label} rows (p = {})",
+                "significantly worse on {} {label} rows{} (p = {})",
                 g.rows,
+                within(&t),
                 show(t.p_less)
             )
         }
@@ -358,13 +474,78 @@ fn guards_text(e: &Evidence) -> String {
 
 /// Compares a candidate with the serving model on the same holdout rows.
 pub fn decide(serving: &Scores, candidate: &Scores, policy: &Policy) -> Decision {
-    judge(Baseline::Serving, serving, candidate, policy)
+    judge(Baseline::Serving, serving, candidate, policy, 1, None)
 }
 
 /// The first model: the candidate must beat the trivial predictor (the
 /// training mean, or the training class frequencies) by the same rules.
 pub fn decide_first(trivial: &Scores, candidate: &Scores, policy: &Policy) -> Decision {
-    judge(Baseline::Trivial, trivial, candidate, policy)
+    judge(Baseline::Trivial, trivial, candidate, policy, 1, None)
+}
+
+/// The gate's verdict on every candidate of one cycle, and which one the
+/// cycle acts on.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Judgement {
+    /// One decision per candidate, in the input order.
+    pub decisions: Vec<Decision>,
+    /// The candidate the cycle acts on: the winner with the lowest mean
+    /// loss, or when none won, the candidate with the lowest mean loss.
+    pub chosen: usize,
+}
+
+impl Judgement {
+    pub fn decision(&self) -> &Decision {
+        &self.decisions[self.chosen]
+    }
+}
+
+/// Judges several candidates against one baseline on the same rows. Every
+/// candidate is tested, each p is Holm-adjusted for the number of
+/// candidates, and only candidates that pass every rule can be chosen, so
+/// picking the best-looking of several on the very rows that test it does
+/// not raise the chance of a false promotion above alpha.
+pub fn decide_among(
+    baseline: Baseline,
+    base: &Scores,
+    candidates: &[Scores],
+    policy: &Policy,
+) -> Judgement {
+    let k = candidates.len();
+    if k == 0 {
+        return Judgement {
+            decisions: vec![keep(Shortfall::InvalidInput(InputError::TooFew {
+                what: "candidates",
+                need: 1,
+                have: 0,
+            }))],
+            chosen: 0,
+        };
+    }
+    // Raw one-sided p of each candidate, then Holm.
+    let raw: Vec<f64> = candidates
+        .iter()
+        .map(
+            |c| match judge(baseline, base, c, policy, 1, None).evidence() {
+                Some(e) => e.test.p_greater,
+                None => f64::NAN,
+            },
+        )
+        .collect();
+    let adjusted = holm_adjust(&raw);
+    let decisions: Vec<Decision> = candidates
+        .iter()
+        .zip(&adjusted)
+        .map(|(c, p)| judge(baseline, base, c, policy, k, Some(*p)))
+        .collect();
+    let loss = |i: usize| mean(&candidates[i].losses);
+    let pick = |won: bool| {
+        (0..k)
+            .filter(|&i| decisions[i].candidate_won() == won)
+            .min_by(|&a, &b| loss(a).total_cmp(&loss(b)))
+    };
+    let chosen = pick(true).or_else(|| pick(false)).unwrap_or(0);
+    Judgement { decisions, chosen }
 }
 
 fn keep(shortfall: Shortfall) -> Decision {
@@ -376,6 +557,7 @@ fn keep(shortfall: Shortfall) -> Decision {
 
 fn check_losses(what: &'static str, scores: &Scores) -> Result<(), InputError> {
     super::check_same_len(what, scores.losses.len(), scores.new_rows.len())?;
+    super::check_same_len(what, scores.losses.len(), scores.batches.len())?;
     super::check_finite(what, &scores.losses)?;
     match scores.losses.iter().position(|x| *x < 0.0) {
         Some(index) => Err(InputError::Negative { what, index }),
@@ -383,7 +565,53 @@ fn check_losses(what: &'static str, scores: &Scores) -> Result<(), InputError> {
     }
 }
 
-fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> Decision {
+/// Per-batch mean differences, in batch order.
+fn batch_means(d: &[f64], batches: &[u64]) -> Vec<f64> {
+    let mut sums: std::collections::BTreeMap<u64, (f64, usize)> = Default::default();
+    for (x, b) in d.iter().zip(batches) {
+        let e = sums.entry(*b).or_default();
+        e.0 += x;
+        e.1 += 1;
+    }
+    sums.values().map(|(s, n)| s / *n as f64).collect()
+}
+
+/// The main test: cluster-robust over batches; `None` with one batch.
+fn main_test(d: &[f64], batches: &[u64]) -> Option<ClusteredT> {
+    clustered_t(d, batches).ok()
+}
+
+/// A guard's test on the rows where `picked` holds: over their batches
+/// when there are two or more, else row by row within the one batch.
+fn subset_test(d: &[f64], batches: &[u64]) -> Option<ClusteredT> {
+    if d.len() < GUARD_MIN_ROWS {
+        return None;
+    }
+    if let Ok(t) = clustered_t(d, batches) {
+        return Some(t);
+    }
+    let t = paired_t(d).ok()?;
+    Some(ClusteredT {
+        n: t.n,
+        clusters: 1,
+        mean: t.mean,
+        se: t.sd / (t.n as f64).sqrt(),
+        t: t.t,
+        df: t.df,
+        p_greater: t.p_greater,
+        p_less: t.p_less,
+        p_two_sided: t.p_two_sided,
+    })
+}
+
+fn judge(
+    baseline: Baseline,
+    base: &Scores,
+    cand: &Scores,
+    policy: &Policy,
+    candidates: usize,
+    adjusted_p: Option<f64>,
+) -> Decision {
     if let Some(why) = policy.problem() {
         return keep(Shortfall::InvalidPolicy(why));
     }
@@ -394,35 +622,72 @@ fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> D
         Ok(d) => d,
         Err(e) => return keep(Shortfall::InvalidInput(e)),
     };
-    if base.new_rows != cand.new_rows {
+    if base.new_rows != cand.new_rows || base.batches != cand.batches {
         return keep(Shortfall::RowsDiffer);
     }
     let rows = d.len();
-    let need = policy.min_holdout_rows.max(2);
-    let test = match paired_t(&d) {
-        Ok(test) => test,
-        Err(_) => return keep(Shortfall::TooFewRows { have: rows, need }),
+    let need_rows = policy.min_holdout_rows.max(2);
+    let need_batches = policy.batches_needed();
+    let batch_count = base
+        .batches
+        .iter()
+        .collect::<std::collections::BTreeSet<_>>()
+        .len();
+    let test = match main_test(&d, &base.batches) {
+        Some(test) => test,
+        None => {
+            let mut shortfalls = vec![Shortfall::TooFewBatches {
+                have: batch_count,
+                need: need_batches,
+            }];
+            if rows < need_rows {
+                shortfalls.push(Shortfall::TooFewRows {
+                    have: rows,
+                    need: need_rows,
+                });
+            }
+            return Decision::Keep {
+                evidence: None,
+                shortfalls,
+            };
+        }
     };
     let mean_loss_baseline = mean(&base.losses);
     let mean_loss_candidate = mean(&cand.losses);
     let relative_improvement = (mean_loss_baseline > 0.0)
         .then(|| (mean_loss_baseline - mean_loss_candidate) / mean_loss_baseline);
+    let p = adjusted_p.unwrap_or(test.p_greater);
     let evidence = Evidence {
         baseline,
         rows,
+        batches: test.clusters,
+        batches_needed: need_batches,
         mean_loss_baseline,
         mean_loss_candidate,
         relative_improvement,
         test,
-        wilcoxon_p: wilcoxon_signed_rank(&d).ok().map(|w| w.p_greater),
+        candidates,
+        p,
+        wilcoxon_p: wilcoxon_signed_rank(&batch_means(&d, &base.batches))
+            .ok()
+            .map(|w| w.p_greater),
         new_rows: guard(base, cand, true, policy.alpha),
         old_rows: guard(base, cand, false, policy.alpha),
         policy: *policy,
     };
 
     let mut shortfalls = Vec::new();
-    if rows < need {
-        shortfalls.push(Shortfall::TooFewRows { have: rows, need });
+    if rows < need_rows {
+        shortfalls.push(Shortfall::TooFewRows {
+            have: rows,
+            need: need_rows,
+        });
+    }
+    if test.clusters < need_batches {
+        shortfalls.push(Shortfall::TooFewBatches {
+            have: test.clusters,
+            need: need_batches,
+        });
     }
     if mean_loss_candidate.partial_cmp(&mean_loss_baseline) != Some(Ordering::Less) {
         shortfalls.push(Shortfall::NotLower {
@@ -436,12 +701,13 @@ fn judge(baseline: Baseline, base: &Scores, cand: &Scores, policy: &Policy) -> D
             need: policy.min_improvement,
         });
     }
-    if test.p_greater.is_nan() {
+    if p.is_nan() {
         shortfalls.push(Shortfall::NumericalFailure);
-    } else if test.p_greater > policy.alpha {
+    } else if p > policy.alpha {
         shortfalls.push(Shortfall::NotSignificant {
-            p: test.p_greater,
+            p,
             alpha: policy.alpha,
+            candidates,
         });
     }
     for (g, new) in [(&evidence.new_rows, true), (&evidence.old_rows, false)] {
@@ -477,11 +743,8 @@ fn guard(base: &Scores, cand: &Scores, new: bool, alpha: f64) -> Guard {
     let b: Vec<f64> = picked.iter().map(|&i| base.losses[i]).collect();
     let c: Vec<f64> = picked.iter().map(|&i| cand.losses[i]).collect();
     let d: Vec<f64> = b.iter().zip(&c).map(|(x, y)| x - y).collect();
-    let test = if rows >= GUARD_MIN_ROWS {
-        paired_t(&d).ok()
-    } else {
-        None
-    };
+    let labels: Vec<u64> = picked.iter().map(|&i| base.batches[i]).collect();
+    let test = subset_test(&d, &labels);
     let status = match test {
         None => GuardStatus::NotTested,
         // Only a p clearly above alpha passes, so a NaN p fails safe.
@@ -497,157 +760,6 @@ fn guard(base: &Scores, cand: &Scores, new: bool, alpha: f64) -> Guard {
     }
 }
 
-/// Outcome of the fresh-data check.
-#[derive(Debug, Clone, PartialEq)]
-pub enum FreshVerdict {
-    /// The serving model is significantly worse than its predecessor on
-    /// the fresh rows: roll back.
-    Regressed,
-    /// No significant regression.
-    NoRegression,
-    /// The inputs could not be tested; the reason says why. Not a rollback.
-    Untestable(String),
-}
-
-/// Serving model vs the model it replaced, on rows neither was trained on.
-#[derive(Debug, Clone, PartialEq)]
-pub struct FreshCheck {
-    pub rows: usize,
-    pub mean_loss_serving: Option<f64>,
-    pub mean_loss_previous: Option<f64>,
-    /// Paired t on d_i = serving_i − previous_i; `p_greater` is the evidence
-    /// that the serving model is worse.
-    pub test: Option<PairedT>,
-    pub alpha: f64,
-    pub verdict: FreshVerdict,
-}
-
-impl FreshCheck {
-    pub fn regressed(&self) -> bool {
-        self.verdict == FreshVerdict::Regressed
-    }
-
-    /// The verdict and its numbers in plain words.
-    pub fn reason(&self) -> String {
-        let numbers = match (self.mean_loss_serving, self.mean_loss_previous, self.test) {
-            (Some(s), Some(p), Some(t)) => format!(
-                "mean loss {} for the serving model vs {} for its predecessor on {} fresh rows; \
-                 one-sided paired t = {} with {} df, p = {} (alpha {})",
-                show(s),
-                show(p),
-                self.rows,
-                show(t.t),
-                t.df,
-                show(t.p_greater),
-                show(self.alpha)
-            ),
-            _ => format!("{} fresh rows", self.rows),
-        };
-        match &self.verdict {
-            FreshVerdict::Regressed => {
-                format!("regressed: the serving model is significantly worse ({numbers})")
-            }
-            FreshVerdict::NoRegression => format!("no significant regression ({numbers})"),
-            FreshVerdict::Untestable(why) => format!("not tested: {why} ({numbers})"),
-        }
-    }
-}
-
-/// Fresh-data check: is the serving model significantly worse (one-sided
-/// paired t, level `alpha`) than the model it replaced, on fresh rows that
-/// neither was trained on? Both slices hold per-row losses on the same rows.
-pub fn regression_check(serving_losses: &[f64], previous_losses: &[f64], alpha: f64) -> FreshCheck {
-    let mut check = FreshCheck {
-        rows: serving_losses.len(),
-        mean_loss_serving: None,
-        mean_loss_previous: None,
-        test: None,
-        alpha,
-        verdict: FreshVerdict::NoRegression,
-    };
-    if !(alpha > 0.0 && alpha <= 0.5) {
-        check.verdict = FreshVerdict::Untestable(format!("alpha {alpha} is not in (0, 0.5]"));
-        return check;
-    }
-    // d_i = serving_i − previous_i: positive = the serving model did worse.
-    let d = match differences(serving_losses, previous_losses) {
-        Ok(d) => d,
-        Err(e) => {
-            check.verdict = FreshVerdict::Untestable(e.to_string());
-            return check;
-        }
-    };
-    let test = match paired_t(&d) {
-        Ok(t) => t,
-        Err(e) => {
-            check.verdict = FreshVerdict::Untestable(e.to_string());
-            return check;
-        }
-    };
-    check.mean_loss_serving = Some(mean(serving_losses));
-    check.mean_loss_previous = Some(mean(previous_losses));
-    check.test = Some(test);
-    check.verdict = if test.p_greater.is_nan() {
-        FreshVerdict::Untestable("the p-value could not be computed".to_string())
-    } else if test.p_greater <= alpha {
-        FreshVerdict::Regressed
-    } else {
-        FreshVerdict::NoRegression
-    };
-    check
-}
-
-/// Has the data moved away from what the serving model knows? Its per-row
-/// losses on fresh rows against its losses on the stored holdout rows
-/// (Welch's t, one-sided, level `alpha`). A shift is not a reason to roll
-/// back (every model trained on the old rows suffers alike); it is a reason
-/// to retrain soon and to look.
-#[derive(Debug, Clone, PartialEq)]
-pub struct ShiftCheck {
-    pub test: Option<WelchT>,
-    pub alpha: f64,
-    /// `Some(true)` when the fresh loss is significantly higher; `None`
-    /// when untestable.
-    pub shifted: Option<bool>,
-}
-
-pub fn shift_check(fresh_losses: &[f64], reference_losses: &[f64], alpha: f64) -> ShiftCheck {
-    let test = welch_t(fresh_losses, reference_losses).ok();
-    let shifted = test
-        .filter(|t| !t.p_greater.is_nan() && alpha > 0.0 && alpha <= 0.5)
-        .map(|t| t.p_greater <= alpha);
-    ShiftCheck {
-        test,
-        alpha,
-        shifted,
-    }
-}
-
-impl ShiftCheck {
-    pub fn reason(&self) -> String {
-        match (self.test, self.shifted) {
-            (Some(t), Some(s)) => format!(
-                "mean loss {} on {} fresh rows vs {} on {} stored holdout rows; Welch t = {} \
-                 with {} df, p = {} (alpha {}): {}",
-                show(t.mean_a),
-                t.n_a,
-                show(t.mean_b),
-                t.n_b,
-                show(t.t),
-                show(t.df),
-                show(t.p_greater),
-                show(self.alpha),
-                if s {
-                    "the serving model does significantly worse on the new rows"
-                } else {
-                    "no significant shift"
-                }
-            ),
-            _ => "shift not tested (too few rows or non-finite losses)".to_string(),
-        }
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -658,6 +770,7 @@ mod tests {
             min_improvement: 0.01,
             alpha: 0.05,
             min_holdout_rows: 100,
+            min_batches: 2,
             require_approval: false,
         }
     }
@@ -704,7 +817,11 @@ mod tests {
         assert_eq!(evidence.mean_loss_baseline, mean(&b));
         assert_eq!(evidence.mean_loss_candidate, mean(&c));
         let d: Vec<f64> = b.iter().zip(&c).map(|(x, y)| x - y).collect();
-        assert_eq!(evidence.test, paired_t(&d).expect("valid"));
+        // Every row its own batch: with the CR1 factor the cluster-robust t
+        // is exactly the paired t.
+        let plain = paired_t(&d).expect("valid");
+        assert!((evidence.test.t - plain.t).abs() < 1e-9 * plain.t.abs());
+        assert_eq!(evidence.batches, 600);
         let reason = decision.reason();
         assert!(reason.starts_with("promote: "), "{reason}");
         assert!(reason.contains("600 holdout rows"), "{reason}");
@@ -764,7 +881,10 @@ mod tests {
             one,
             Decision::Keep {
                 evidence: None,
-                shortfalls: vec![Shortfall::TooFewRows { have: 1, need: 100 }]
+                shortfalls: vec![
+                    Shortfall::TooFewBatches { have: 1, need: 2 },
+                    Shortfall::TooFewRows { have: 1, need: 100 }
+                ]
             }
         );
     }
@@ -1020,65 +1140,10 @@ mod tests {
                 min_improvement: 0.02,
                 alpha: 0.01,
                 min_holdout_rows: 500,
+                min_batches: 3,
                 require_approval: true
             }
         );
         assert_eq!(Policy::from(&GateConfig::default()).problem(), None);
-    }
-
-    #[test]
-    fn fresh_data_check() {
-        let mut rng = Rng::new(10);
-        // The serving model (error sd 0.9) is worse than its predecessor (0.3).
-        let (serving, previous) = losses(&mut rng, 300, 0.9, 0.3);
-        let check = regression_check(&serving, &previous, 0.05);
-        assert!(check.regressed(), "{}", check.reason());
-        assert!(check.reason().starts_with("regressed"));
-        // The other way round there is no regression.
-        let check = regression_check(&previous, &serving, 0.05);
-        assert_eq!(check.verdict, FreshVerdict::NoRegression);
-        let t = check.test.expect("tested");
-        assert!(t.t < 0.0 && t.p_greater > 0.5);
-        // Untestable inputs never trigger a rollback.
-        for check in [
-            regression_check(&[1.0], &[0.5], 0.05),
-            regression_check(&[1.0, 2.0], &[0.5], 0.05),
-            regression_check(&[1.0, f64::NAN], &[0.5, 0.5], 0.05),
-            regression_check(&serving, &previous, 0.9),
-        ] {
-            assert!(
-                matches!(check.verdict, FreshVerdict::Untestable(_)),
-                "{}",
-                check.reason()
-            );
-            assert!(!check.regressed());
-        }
-    }
-
-    #[test]
-    fn shift_check_flags_higher_fresh_losses_only() {
-        let mut rng = Rng::new(11);
-        let (reference, _) = losses(&mut rng, 400, 0.3, 0.3);
-        let (fresh_same, _) = losses(&mut rng, 200, 0.3, 0.3);
-        let (fresh_worse, _) = losses(&mut rng, 200, 1.2, 0.3);
-        assert_eq!(
-            shift_check(&fresh_worse, &reference, 0.05).shifted,
-            Some(true)
-        );
-        assert_eq!(
-            shift_check(&fresh_same, &reference, 0.01).shifted,
-            Some(false)
-        );
-        // Lower fresh losses are not a shift in this one-sided sense.
-        assert_eq!(
-            shift_check(&reference, &fresh_worse, 0.05).shifted,
-            Some(false)
-        );
-        assert_eq!(shift_check(&[1.0], &reference, 0.05).shifted, None);
-        assert!(
-            shift_check(&fresh_worse, &reference, 0.05)
-                .reason()
-                .contains("significantly worse")
-        );
     }
 }
