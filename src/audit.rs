@@ -197,18 +197,55 @@ pub struct FreshEvidence {
     /// trained on either yet).
     pub rows: usize,
     pub serving: ModelId,
-    /// "regressed", "shifted", "steady" or "untested".
+    /// "regressed", "shifted", "new-conditions", "steady" or "untested".
     pub verdict: String,
+    /// Rows the tests used: the batch's rows less those with a category
+    /// value the serving model (or its predecessor) has never seen.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tested_rows: Option<usize>,
+    /// Category values neither model has seen, per column, and the rows
+    /// carrying them: new conditions, reported, never tested.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub new_conditions: BTreeMap<String, Vec<String>>,
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub new_condition_rows: usize,
+    /// ln(mean batch loss / mean holdout loss) of the serving model, and the
+    /// prediction-interval p against earlier batches' levels.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub level: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub p_level: Option<f64>,
+    /// Earlier batches the level was compared with.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub level_history: usize,
+    /// Category values whose loss rose far beyond the rest of their column
+    /// on this batch ("column = value").
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub shifted_values: Vec<String>,
+    /// Evidence that the serving model is worse than its predecessor,
+    /// gathered over this and earlier batches of its service, the evidence
+    /// a rollback needs (1 / alpha), and the batches it rests on.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub evidence: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub evidence_needed: Option<f64>,
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub monitored_batches: usize,
     pub mean_loss_serving: Option<f64>,
     /// The serving model's mean loss on the stored holdout rows.
     pub mean_loss_reference: Option<f64>,
-    /// One-sided Welch p that the fresh rows cost the serving model more.
+    /// One-sided Welch p that the fresh rows cost the serving model more
+    /// (written by versions that tested rows as independent; now absent).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub p_shift: Option<f64>,
     /// The model the serving one replaced by promotion or approval.
     pub previous: Option<ModelId>,
     pub mean_loss_previous: Option<f64>,
-    /// Paired t of serving − previous losses, and its one-sided p.
+    /// Paired t of serving − previous losses, and its one-sided p (written
+    /// by versions that tested rows as independent; now absent).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub t: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub p_regression: Option<f64>,
     /// Category values whose rows carry the most loss above the reference.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
@@ -240,6 +277,10 @@ impl std::fmt::Display for Hotspot {
     }
 }
 
+fn is_zero(n: &usize) -> bool {
+    *n == 0
+}
+
 /// The gate's numbers as written in the log.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct GateEvidence {
@@ -251,8 +292,20 @@ pub struct GateEvidence {
     pub relative_improvement: Option<f64>,
     /// Paired t statistic; absent when it is infinite (all differences equal).
     pub t: Option<f64>,
-    /// One-sided p-value that the candidate is better.
+    /// One-sided p-value that the candidate is better (after Holm's
+    /// correction when several candidates were judged).
     pub p: f64,
+    /// Batches the holdout rows came from (the test's clusters), and the
+    /// batches a decision needs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub batches: Option<usize>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub batches_needed: Option<usize>,
+    /// Candidates judged together, and the candidate's own p before Holm.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub candidates: Option<usize>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub p_unadjusted: Option<f64>,
     /// Wilcoxon signed-rank one-sided p, recorded beside the t-test's.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub wilcoxon_p: Option<f64>,

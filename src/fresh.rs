@@ -1,18 +1,29 @@
 //! The fresh-data check, run on every accepted batch before anything trains
-//! on it. The batch's rows are new to every model, so they are a fair test:
+//! on it. The batch's rows are new to every model, so they are a fair test.
+//! Rows of one file share a day, so every judgement here takes the batch,
+//! not the row, as the unit:
 //!
-//! - **regression**: the serving model against the model it replaced (when
-//!   it came to serve by promotion or approval), paired row by row. A
-//!   significant regression lets the replaced model serve again, logged as
-//!   an automatic rollback with the evidence (never in approval mode, and
-//!   not when `auto_rollback` is off: then it is only reported).
-//! - **shift**: the serving model's losses on the batch against its losses
-//!   on the stored holdout rows (Welch). A shift means the data moved; the
-//!   daemon retrains early and `status` flags it. The stored holdout rows
-//!   are sampled down to `MAX_REFERENCE_ROWS`, so the check costs the same
-//!   on a store of millions of rows as on one of thousands.
+//! - **new conditions**: rows carrying a category value the serving model
+//!   (or its predecessor) has never seen (the first Sunday, a new shop) are
+//!   set apart and reported; they say nothing about whether a model got
+//!   worse or the data moved, only that it meets something new.
+//! - **regression**: when the serving model came to serve by promotion or
+//!   approval, it and the model it replaced score the other rows; the
+//!   batch's mean difference joins the evidence of earlier batches of the
+//!   serving model's service ([`gate::monitor`], an anytime-valid
+//!   e-process). Once the evidence reaches 1 / alpha the replaced model
+//!   serves again (an automatic rollback, never in approval mode or with
+//!   `auto_rollback = false`): the chance of a false rollback over the
+//!   model's whole service life stays at or below alpha.
+//! - **shift**: the serving model's loss level on the batch against the
+//!   levels earlier batches showed, and each category value's loss against
+//!   the other values of its column on the same batch ([`gate::shift`]).
+//!   A shift is a reason to look and to retrain, never a rollback.
 //!
-//! Every check is logged as `fresh-checked`, also when it could not test.
+//! What the checks remember between batches lives in the store's meta tree,
+//! written in the same transaction as the `fresh-checked` entry: the
+//! serving model's monitor ([`META_MONITOR`], removed whenever the serving
+//! model changes) and the recent loss levels ([`META_LEVELS`]).
 
 use chrono::Utc;
 
@@ -21,16 +32,17 @@ use std::collections::BTreeMap;
 use crate::audit::{Entry, Event, FreshEvidence, Hotspot};
 use crate::config::ColumnKind;
 use crate::cycle::{CycleError, model_record};
-use crate::gate::{self, FreshVerdict};
+use crate::gate::monitor::{self, Observation, Prior};
+use crate::gate::shift::{self, Group, LEVEL_HISTORY};
 use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
-use crate::model::ModelError;
 use crate::model::checkpoint::{self, Checkpoint};
+use crate::model::{Model, ModelError};
 use crate::rng::Rng;
 use crate::sample;
-use crate::schema::{RowMatrix, Schema, Vocabularies};
+use crate::schema::{InputEncoding, RowMatrix, Schema, Vocabularies};
 use crate::state::Owner;
-use crate::store::{Split, StoreError};
+use crate::store::{MetaChange, Split, StoreError};
 
 #[derive(Debug, thiserror::Error)]
 pub enum FreshError {
@@ -46,6 +58,14 @@ pub enum FreshError {
     Audit(#[from] crate::audit::MirrorError),
 }
 
+/// Meta key of the serving model's monitor (see [`MonitorState`]).
+pub const META_MONITOR: &[u8] = b"fresh/monitor";
+/// Meta key of the recent loss levels of batches that were not flagged.
+pub const META_LEVELS: &[u8] = b"fresh/levels";
+/// Observations one monitor keeps (about seven years of nightly files):
+/// with 24 bytes each the value stays under sled's 64 KiB.
+pub const MONITOR_MAX_BATCHES: usize = 2_500;
+
 /// What the check found and did.
 #[derive(Debug, Clone)]
 pub struct Outcome {
@@ -59,6 +79,135 @@ impl Outcome {
     pub fn verdict(&self) -> &str {
         &self.evidence.verdict
     }
+}
+
+/// The serving model's monitor: which pair it compares, the plug-ins fixed
+/// when it started, and one observation per checked batch.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MonitorState {
+    pub serving: ModelId,
+    /// `None`: the serving model has no predecessor to be compared with
+    /// (first model, or back by a rollback).
+    pub previous: Option<ModelId>,
+    pub prior: Prior,
+    pub observations: Vec<Observation>,
+}
+
+impl MonitorState {
+    /// Binary layout: serving id (8), previous id (8, 0 = none), θ, floor,
+    /// τ² (f64 each), then x, w, ln numerator per observation.
+    pub fn encode(&self) -> Vec<u8> {
+        let mut out = Vec::with_capacity(40 + 24 * self.observations.len());
+        out.extend_from_slice(&self.serving.key());
+        out.extend_from_slice(&self.previous.map_or([0; 8], |p| p.key()));
+        for v in [self.prior.theta, self.prior.floor, self.prior.tau2] {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        let skip = self.observations.len().saturating_sub(MONITOR_MAX_BATCHES);
+        for o in &self.observations[skip..] {
+            for v in [o.x, o.w, o.log_numerator] {
+                out.extend_from_slice(&v.to_le_bytes());
+            }
+        }
+        out
+    }
+
+    pub fn decode(bytes: &[u8]) -> Option<MonitorState> {
+        if bytes.len() < 40 || !(bytes.len() - 40).is_multiple_of(24) {
+            return None;
+        }
+        let f = |at: usize| -> f64 {
+            f64::from_le_bytes(bytes[at..at + 8].try_into().expect("8 bytes"))
+        };
+        let serving = ModelId::from_key(&bytes[0..8])?;
+        let previous = ModelId::from_key(&bytes[8..16]).filter(|p| p.0 != 0);
+        let prior = Prior {
+            theta: f(16),
+            floor: f(24),
+            tau2: f(32),
+        };
+        let observations = (40..bytes.len())
+            .step_by(24)
+            .map(|at| Observation {
+                x: f(at),
+                w: f(at + 8),
+                log_numerator: f(at + 16),
+            })
+            .collect();
+        Some(MonitorState {
+            serving,
+            previous,
+            prior,
+            observations,
+        })
+    }
+}
+
+fn encode_levels(levels: &[f64]) -> Vec<u8> {
+    let skip = levels.len().saturating_sub(LEVEL_HISTORY);
+    levels[skip..]
+        .iter()
+        .flat_map(|v| v.to_le_bytes())
+        .collect()
+}
+
+fn decode_levels(bytes: &[u8]) -> Vec<f64> {
+    bytes
+        .chunks_exact(8)
+        .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")))
+        .filter(|v| v.is_finite())
+        .collect()
+}
+
+/// Rows of `rows` whose category values `model` was built with: each
+/// one-hot input knows codes below its width. Returns the mask and, per
+/// column, the values it did not know.
+fn known_rows(
+    rows: &RowMatrix,
+    models: &[&Model],
+    schema: &Schema,
+    vocabs: &Vocabularies,
+) -> (Vec<bool>, BTreeMap<String, Vec<String>>) {
+    let mut known = vec![true; rows.n_rows()];
+    let mut unseen: BTreeMap<String, std::collections::BTreeSet<u32>> = BTreeMap::new();
+    for model in models {
+        for input in &model.spec().inputs {
+            if let InputEncoding::OneHot { column, width } = input {
+                for (r, k) in known.iter_mut().enumerate() {
+                    if let Some(code) = rows.code(r, *column)
+                        && code as usize >= *width
+                    {
+                        *k = false;
+                        unseen
+                            .entry(schema.columns[*column].name.clone())
+                            .or_default()
+                            .insert(code);
+                    }
+                }
+            }
+        }
+    }
+    let named = unseen
+        .into_iter()
+        .map(|(name, codes)| {
+            let col = schema
+                .columns
+                .iter()
+                .position(|c| c.name == name)
+                .unwrap_or(0);
+            let values = codes
+                .into_iter()
+                .map(|code| {
+                    vocabs
+                        .get(&col)
+                        .and_then(|v| v.value(code))
+                        .map_or_else(|| format!("#{code}"), str::to_string)
+                })
+                .collect();
+            (name, values)
+        })
+        .collect();
+    (known, named)
 }
 
 /// Runs the check on `batch` (just accepted). `None` when no model serves
@@ -86,96 +235,258 @@ pub fn check_batch(
         )
     };
 
-    let mut rows = owner.store.rows(Split::Train, Some(batch), Some(batch))?;
-    rows.extend(&owner.store.rows(Split::Holdout, Some(batch), Some(batch))?);
-    let mut evidence = FreshEvidence {
-        batch,
-        rows: rows.n_rows(),
-        serving,
-        verdict: "untested".into(),
-        mean_loss_serving: None,
-        mean_loss_reference: None,
-        p_shift: None,
-        previous: None,
-        mean_loss_previous: None,
-        t: None,
-        p_regression: None,
-        hotspots: Vec::new(),
-        reason: String::new(),
+    // Which pair the monitor compares: kept in the store while the serving
+    // model serves, looked up in the log only when it starts.
+    let stored = owner
+        .store
+        .meta_value(META_MONITOR)?
+        .and_then(|v| MonitorState::decode(&v))
+        .filter(|m| m.serving == serving);
+    let previous = match &stored {
+        Some(m) => m.previous,
+        None => lifecycle::replaced_by_promotion(owner, serving)?,
     };
-    let mut regressed = false;
-    if rows.n_rows() < gate_config.fresh_min_rows {
-        evidence.reason = format!(
-            "{} rows, fewer than fresh_min_rows = {}",
-            rows.n_rows(),
-            gate_config.fresh_min_rows
-        );
-    } else {
-        let serving_model = load(serving)?.model;
-        let fresh = serving_model.row_losses(&rows, backend)?;
-        evidence.mean_loss_serving = Some(mean(&fresh));
-        let step = std::time::Instant::now();
-        let reference_rows = reference_rows(owner, record.trained_through)?;
-        let read = step.elapsed().as_secs_f64();
-        let reference = serving_model.row_losses(&reference_rows, backend)?;
-        tracing::debug!(
-            "batch {batch}: fresh-data check read {} reference rows in {read:.3} s, scored them in {:.3} s",
-            reference_rows.n_rows(),
-            step.elapsed().as_secs_f64() - read
-        );
-        let shift = gate::shift_check(&fresh, &reference, alpha);
-        evidence.mean_loss_reference = shift.test.map(|t| t.mean_b);
-        evidence.p_shift = shift.test.map(|t| t.p_greater);
-        let mut reasons = vec![format!("shift: {}", shift.reason())];
-        evidence.hotspots = hotspots(
-            owner.store.schema(),
-            owner.store.vocabularies(),
-            (&rows, &fresh),
-            (&reference_rows, &reference),
-        );
-
-        let previous = lifecycle::replaced_by_promotion(owner, serving)?;
-        if let Some(p) = previous {
-            // A predecessor whose checkpoint is gone or damaged cannot be
-            // compared (nor rolled back to); say so rather than fail intake.
-            match load(p) {
-                Ok(ck) => {
-                    let old = ck.model.row_losses(&rows, backend)?;
-                    let check = gate::regression_check(&fresh, &old, alpha);
-                    evidence.previous = Some(p);
-                    evidence.mean_loss_previous = check.mean_loss_previous;
-                    evidence.t = check.test.map(|t| t.t).filter(|t| t.is_finite());
-                    evidence.p_regression = check.test.map(|t| t.p_greater);
-                    regressed = check.verdict == FreshVerdict::Regressed;
-                    reasons.push(format!("against {p}: {}", check.reason()));
-                }
-                Err(e) => reasons.push(format!("{p} not compared: {e}")),
+    let serving_model = load(serving)?.model;
+    // A predecessor whose checkpoint is gone or damaged cannot be compared
+    // (nor rolled back to); say so rather than fail intake.
+    let mut reasons = Vec::new();
+    let previous_model = match previous {
+        Some(p) => match load(p) {
+            Ok(ck) => Some((p, ck.model)),
+            Err(e) => {
+                reasons.push(format!("{p} not compared: {e}"));
+                None
             }
-        } else {
+        },
+        None => {
             reasons.push(format!(
                 "no predecessor to compare: {serving} did not replace a model by promotion or approval"
             ));
+            None
         }
-        evidence.verdict = if regressed {
-            "regressed"
-        } else if shift.shifted == Some(true) {
-            "shifted"
-        } else if shift.shifted.is_some() {
-            "steady"
+    };
+
+    let mut all = owner.store.rows(Split::Train, Some(batch), Some(batch))?;
+    all.extend(&owner.store.rows(Split::Holdout, Some(batch), Some(batch))?);
+    let schema = owner.store.schema().clone();
+    let vocabs = owner.store.vocabularies().clone();
+    let mut models: Vec<&Model> = vec![&serving_model];
+    if let Some((_, m)) = &previous_model {
+        models.push(m);
+    }
+    let (known, new_conditions) = known_rows(&all, &models, &schema, &vocabs);
+    let picked: Vec<usize> = (0..all.n_rows()).filter(|&r| known[r]).collect();
+    let rows = if picked.len() == all.n_rows() {
+        all.clone()
+    } else {
+        all.select(&picked)
+    };
+    let new_condition_rows = all.n_rows() - rows.n_rows();
+
+    let mut evidence = FreshEvidence {
+        batch,
+        rows: all.n_rows(),
+        serving,
+        verdict: "untested".into(),
+        tested_rows: Some(rows.n_rows()),
+        new_conditions: new_conditions.clone(),
+        new_condition_rows,
+        mean_loss_serving: None,
+        mean_loss_reference: None,
+        p_shift: None,
+        level: None,
+        p_level: None,
+        level_history: 0,
+        shifted_values: Vec::new(),
+        previous: previous_model.as_ref().map(|(p, _)| *p),
+        mean_loss_previous: None,
+        t: None,
+        p_regression: None,
+        evidence: None,
+        evidence_needed: None,
+        monitored_batches: 0,
+        hotspots: Vec::new(),
+        reason: String::new(),
+    };
+    if new_condition_rows > 0 {
+        let named: Vec<String> = new_conditions
+            .iter()
+            .map(|(c, v)| format!("{c} = {}", v.join(", ")))
+            .collect();
+        reasons.insert(
+            0,
+            format!(
+                "new conditions: {new_condition_rows} of {} rows carry values the models have \
+                 never seen ({}); reported, not tested",
+                all.n_rows(),
+                named.join("; ")
+            ),
+        );
+    }
+    let mut meta: Vec<(Vec<u8>, Option<Vec<u8>>)> = Vec::new();
+    let mut regressed = false;
+    let mut shifted = false;
+    if rows.n_rows() < gate_config.fresh_min_rows.max(2) {
+        reasons.push(format!(
+            "{} rows to test, fewer than fresh_min_rows = {}",
+            rows.n_rows(),
+            gate_config.fresh_min_rows
+        ));
+        evidence.verdict = if new_condition_rows > 0 {
+            "new-conditions"
         } else {
             "untested"
         }
         .into();
-        evidence.reason = reasons.join("; ");
-    }
+    } else {
+        let fresh = serving_model.row_losses(&rows, backend)?;
+        let fresh_mean = mean(&fresh);
+        evidence.mean_loss_serving = Some(fresh_mean);
+        let step = std::time::Instant::now();
+        let (reference_rows, reference_batches) = reference_rows(owner, record.trained_through)?;
+        let reference = serving_model.row_losses(&reference_rows, backend)?;
+        tracing::debug!(
+            "batch {batch}: fresh-data check scored {} reference rows in {:.3} s",
+            reference_rows.n_rows(),
+            step.elapsed().as_secs_f64()
+        );
+        let reference_mean = mean(&reference);
+        evidence.mean_loss_reference = (!reference.is_empty()).then_some(reference_mean);
 
+        // Shift, overall: this batch's level against earlier batches'.
+        let mut levels = owner
+            .store
+            .meta_value(META_LEVELS)?
+            .map(|v| decode_levels(&v))
+            .unwrap_or_default();
+        let level =
+            (fresh_mean > 0.0 && reference_mean > 0.0).then(|| (fresh_mean / reference_mean).ln());
+        evidence.level = level;
+        evidence.level_history = levels.len().min(LEVEL_HISTORY);
+        let level_check =
+            level.and_then(|l| shift::level_check(&levels, l, gate_config.shift_alpha));
+        match &level_check {
+            Some(c) => {
+                evidence.p_level = Some(c.p);
+                shifted |= c.flagged;
+                reasons.push(format!(
+                    "shift: {}{}",
+                    c.reason(),
+                    if c.flagged { ": flagged" } else { "" }
+                ));
+            }
+            None => reasons.push(format!(
+                "shift: {} earlier batches, {} needed before the loss level is judged",
+                levels.len(),
+                shift::LEVEL_MIN_HISTORY
+            )),
+        }
+        // Shift, in part: values out of line with the rest of their column.
+        let groups = groups(
+            &schema,
+            &vocabs,
+            (&rows, &fresh),
+            (&reference_rows, &reference),
+        );
+        let group_check = shift::group_check(&groups, gate_config.shift_alpha);
+        if !group_check.flagged.is_empty() {
+            shifted = true;
+            evidence.shifted_values = group_check
+                .flagged
+                .iter()
+                .map(|f| format!("{} = {}", f.column, f.value))
+                .collect();
+            reasons.push(format!(
+                "shift in part: {} of {} values tested cost far more than usual beside the rest \
+                 of their column (z ≥ {}): {}",
+                group_check.flagged.len(),
+                group_check.tested,
+                crate::gate::show(group_check.z_needed),
+                evidence.shifted_values.join(", ")
+            ));
+        }
+        if let Some(l) = level
+            && !shifted
+        {
+            levels.push(l);
+            meta.push((META_LEVELS.to_vec(), Some(encode_levels(&levels))));
+        }
+        evidence.hotspots = hotspots(
+            &schema,
+            &vocabs,
+            (&rows, &fresh),
+            (&reference_rows, &reference),
+        );
+
+        // Regression: the monitor of the serving model against its
+        // predecessor.
+        if let Some((p, old_model)) = &previous_model {
+            let mut state = match stored {
+                Some(s) if s.previous == Some(*p) => s,
+                _ => {
+                    let old_reference = old_model.row_losses(&reference_rows, backend)?;
+                    let per_batch =
+                        batch_differences(&reference, &old_reference, &reference_batches);
+                    let tau2 = monitor::between_batch_variance(&per_batch).unwrap_or(0.0);
+                    MonitorState {
+                        serving,
+                        previous: Some(*p),
+                        prior: Prior::for_loss(mean(&old_reference), tau2),
+                        observations: Vec::new(),
+                    }
+                }
+            };
+            let old = old_model.row_losses(&rows, backend)?;
+            let d: Vec<f64> = fresh.iter().zip(&old).map(|(s, o)| s - o).collect();
+            let (x, w) = mean_and_variance_of_mean(&d);
+            if x.is_finite() && w.is_finite() {
+                let o = monitor::observe(&state.prior, &state.observations, x, w);
+                state.observations.push(o);
+                let reading = monitor::read(&state.observations, alpha);
+                evidence.mean_loss_previous = Some(mean(&old));
+                evidence.evidence = Some(reading.evidence).filter(|e| e.is_finite());
+                evidence.evidence_needed = Some(reading.needed);
+                evidence.monitored_batches = reading.batches;
+                regressed = reading.regressed;
+                reasons.push(format!("against {p}: {}", reading.reason()));
+            } else {
+                reasons.push(format!("against {p}: losses not finite, not compared"));
+            }
+            meta.push((META_MONITOR.to_vec(), Some(state.encode())));
+        } else if stored.is_none() {
+            // Remember that this model has nothing to be compared with, so
+            // later batches need not look it up again.
+            let state = MonitorState {
+                serving,
+                previous: None,
+                prior: Prior::for_loss(1.0, 0.0),
+                observations: Vec::new(),
+            };
+            meta.push((META_MONITOR.to_vec(), Some(state.encode())));
+        }
+        evidence.verdict = if regressed {
+            "regressed"
+        } else if shifted {
+            "shifted"
+        } else if level_check.is_some() || previous_model.is_some() {
+            "steady"
+        } else if new_condition_rows > 0 {
+            "new-conditions"
+        } else {
+            "untested"
+        }
+        .into();
+    }
+    evidence.reason = reasons.join("; ");
+
+    let changes: Vec<MetaChange<'_>> = meta.iter().map(|(k, v)| (&k[..], v.clone())).collect();
     let entry = owner.store.record_with_meta(
         Event::FreshChecked {
             check: evidence.clone(),
         },
         user,
         Utc::now(),
-        &[],
+        &changes,
     )?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let mut rollback = None;
@@ -199,6 +510,34 @@ pub fn check_batch(
     }))
 }
 
+/// Mean of `d` and the variance of that mean (s² / n; 0 for one value).
+fn mean_and_variance_of_mean(d: &[f64]) -> (f64, f64) {
+    let n = d.len();
+    if n == 0 {
+        return (f64::NAN, f64::NAN);
+    }
+    let m = mean(d);
+    if n < 2 {
+        return (m, 0.0);
+    }
+    let s2 = d.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1) as f64;
+    (m, s2 / n as f64)
+}
+
+/// (mean, variance of the mean) of serving − previous losses per batch.
+fn batch_differences(serving: &[f64], previous: &[f64], batches: &[u64]) -> Vec<(f64, f64)> {
+    let mut by_batch: BTreeMap<u64, Vec<f64>> = BTreeMap::new();
+    for ((s, p), b) in serving.iter().zip(previous).zip(batches) {
+        by_batch.entry(*b).or_default().push(s - p);
+    }
+    by_batch
+        .values()
+        .filter(|d| d.len() >= 2)
+        .map(|d| mean_and_variance_of_mean(d))
+        .filter(|(m, w)| m.is_finite() && w.is_finite())
+        .collect()
+}
+
 /// Most stored holdout rows the check scores as its reference: a uniform
 /// sample of this many (all when fewer are stored) pins the reference mean
 /// loss far more tightly than a batch's rows pin theirs, and keeps the
@@ -206,28 +545,100 @@ pub fn check_batch(
 pub const MAX_REFERENCE_ROWS: usize = 50_000;
 
 /// The holdout rows of batches up to `through`, or a uniform sample of
-/// `MAX_REFERENCE_ROWS` of them, the same for the same seed and batches.
-fn reference_rows(owner: &Owner, through: BatchId) -> Result<RowMatrix, StoreError> {
+/// `MAX_REFERENCE_ROWS` of them (the same for the same seed and batches),
+/// with the batch of each row.
+fn reference_rows(owner: &Owner, through: BatchId) -> Result<(RowMatrix, Vec<u64>), StoreError> {
     let store = &owner.store;
-    let n = store.row_count(Split::Holdout, None, Some(through))?;
+    let counts = store.split_counts(Split::Holdout, None, Some(through))?;
+    let labels: Vec<u64> = counts
+        .iter()
+        .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
+        .collect();
+    let n = labels.len();
     if n <= MAX_REFERENCE_ROWS {
-        return store.rows(Split::Holdout, None, Some(through));
+        return Ok((store.rows(Split::Holdout, None, Some(through))?, labels));
     }
     let seed = sample::seed_for(
         owner.config.training.seed,
         &[&b"fresh-reference/"[..], &through.key()].concat(),
     );
     let picks = sample::choose(n, MAX_REFERENCE_ROWS, &mut Rng::new(seed));
-    store.rows_at(Split::Holdout, None, Some(through), &picks)
+    let rows = store.rows_at(Split::Holdout, None, Some(through), &picks)?;
+    Ok((rows, picks.iter().map(|&i| labels[i]).collect()))
+}
+
+/// Per category value: its rows' losses on the batch and on the reference.
+fn groups(
+    schema: &Schema,
+    vocabs: &Vocabularies,
+    fresh: (&RowMatrix, &[f64]),
+    reference: (&RowMatrix, &[f64]),
+) -> Vec<Group> {
+    #[derive(Default)]
+    struct Acc {
+        n: usize,
+        sum: f64,
+        sq: f64,
+    }
+    let collect = |(rows, losses): (&RowMatrix, &[f64]), col: usize| {
+        let mut by_code: BTreeMap<u32, Acc> = BTreeMap::new();
+        for (r, &loss) in losses.iter().enumerate().take(rows.n_rows()) {
+            if let Some(code) = rows.code(r, col) {
+                let a = by_code.entry(code).or_default();
+                a.n += 1;
+                a.sum += loss;
+                a.sq += loss * loss;
+            }
+        }
+        by_code
+    };
+    let stats = |a: &Acc| {
+        let m = a.sum / a.n as f64;
+        let var = if a.n > 1 {
+            ((a.sq - a.n as f64 * m * m) / (a.n - 1) as f64).max(0.0)
+        } else {
+            0.0
+        };
+        (m, var.sqrt())
+    };
+    let mut out = Vec::new();
+    for col in schema.inputs() {
+        if schema.columns[col].kind != ColumnKind::Category {
+            continue;
+        }
+        let usual = collect(reference, col);
+        for (code, acc) in collect(fresh, col) {
+            let Some(r) = usual.get(&code) else {
+                continue;
+            };
+            let (m, sd) = stats(&acc);
+            let (rm, rsd) = stats(r);
+            out.push(Group {
+                column: schema.columns[col].name.clone(),
+                value: vocabs
+                    .get(&col)
+                    .and_then(|v| v.value(code))
+                    .unwrap_or("?")
+                    .to_string(),
+                rows: acc.n,
+                mean_loss: m,
+                sd_loss: sd,
+                reference_rows: r.n,
+                reference_mean: rm,
+                reference_sd: rsd,
+            });
+        }
+    }
+    out
 }
 
 /// Category values whose fresh rows cost the serving model most beyond
 /// what rows with the same value cost it on the stored holdout: for each
 /// category input and value, Σ fresh loss − count × the value's reference
 /// mean loss (the overall reference mean for a value with fewer than
-/// `MIN_ROWS` reference rows, e.g. a new shop). Values on fewer than
-/// `MIN_ROWS` fresh rows or on more than half the batch (which would only
-/// restate the total) are skipped.
+/// `MIN_ROWS` reference rows). Values on fewer than `MIN_ROWS` fresh rows
+/// or on more than half the batch (which would only restate the total) are
+/// skipped. Descriptive: where to look, not a test.
 pub fn hotspots(
     schema: &Schema,
     vocabs: &Vocabularies,
@@ -292,4 +703,61 @@ pub fn hotspots(
 
 fn mean(v: &[f64]) -> f64 {
     v.iter().sum::<f64>() / v.len().max(1) as f64
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn monitor_state_round_trips_and_stays_under_the_value_limit() {
+        let mut state = MonitorState {
+            serving: ModelId(7),
+            previous: Some(ModelId(3)),
+            prior: Prior {
+                theta: 0.2,
+                floor: 0.02,
+                tau2: 0.001,
+            },
+            observations: (0..10)
+                .map(|i| Observation {
+                    x: i as f64 * 0.1,
+                    w: 0.01,
+                    log_numerator: -1.5,
+                })
+                .collect(),
+        };
+        assert_eq!(MonitorState::decode(&state.encode()), Some(state.clone()));
+        state.previous = None;
+        assert_eq!(MonitorState::decode(&state.encode()), Some(state.clone()));
+        state.observations = vec![state.observations[0]; MONITOR_MAX_BATCHES + 100];
+        let bytes = state.encode();
+        assert!(bytes.len() < 64 * 1024, "{}", bytes.len());
+        assert_eq!(
+            MonitorState::decode(&bytes).unwrap().observations.len(),
+            MONITOR_MAX_BATCHES
+        );
+        assert_eq!(MonitorState::decode(&bytes[..30]), None);
+    }
+
+    #[test]
+    fn levels_keep_the_most_recent_only() {
+        let levels: Vec<f64> = (0..100).map(f64::from).collect();
+        let kept = decode_levels(&encode_levels(&levels));
+        assert_eq!(kept.len(), LEVEL_HISTORY);
+        assert_eq!(kept.last(), Some(&99.0));
+    }
+
+    #[test]
+    fn per_batch_differences_group_rows_by_batch() {
+        let d = batch_differences(
+            &[3.0, 5.0, 1.0, 1.0, 9.0],
+            &[1.0, 1.0, 1.0, 0.0, 0.0],
+            &[1, 1, 2, 2, 3],
+        );
+        // Batch 3 has one row: no within variance, left out.
+        assert_eq!(d.len(), 2);
+        assert_eq!(d[0], (3.0, 1.0));
+        assert_eq!(d[1], (0.5, 0.25));
+    }
 }

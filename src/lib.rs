@@ -29,6 +29,7 @@ pub mod report;
 pub mod rng;
 pub mod sample;
 pub mod schema;
+pub mod sim;
 pub mod state;
 pub mod store;
 pub mod train;

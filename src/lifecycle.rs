@@ -89,6 +89,8 @@ fn commit(
     let mut meta = Vec::new();
     if let Some(id) = serving {
         meta.push((META_SERVING, Some(id.key().to_vec())));
+        // The fresh-data monitor belongs to one serving tenure.
+        meta.push((crate::fresh::META_MONITOR, None));
     }
     if clear_pending {
         meta.push((META_PENDING, None));

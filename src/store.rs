@@ -433,6 +433,21 @@ impl Store {
             .sum())
     }
 
+    /// Rows per batch of one split, for batches in `from..=to`, in store
+    /// order: the batch of each row that `rows(split, from, to)` returns.
+    pub fn split_counts(
+        &self,
+        split: Split,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+    ) -> Result<Vec<(BatchId, usize)>, StoreError> {
+        Ok(self
+            .batches_in(from, to)?
+            .iter()
+            .map(|r| (r.id, split_rows(r, split)))
+            .collect())
+    }
+
     /// The rows at `positions` (strictly ascending indices into what
     /// `rows(split, from, to)` returns) in that order, reading only the
     /// chunks that hold them: memory and decoding grow with the sample, not

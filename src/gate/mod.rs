@@ -13,24 +13,33 @@
 //!   error, and the per-row losses the gate compares.
 //! - [`paired`]: paired t, Diebold–Mariano, Wilcoxon signed-rank, McNemar and
 //!   sign-flip permutation tests.
+//! - [`cluster`]: the cluster-robust t with batches as clusters, Holm's
+//!   correction, and quantile functions.
 //! - [`decide`]: [`Policy`], [`Scores`], [`decide()`], [`decide_first`] and
-//!   the fresh-data [`regression_check`].
+//!   [`decide_among`] for several candidates at once.
+//! - [`monitor`]: the anytime-valid evidence that the serving model is worse
+//!   than the model it replaced, batch after batch.
+//! - [`shift`]: whether a batch's losses moved beyond how batches usually
+//!   differ, overall and for single category values.
 
+pub mod cluster;
 pub mod decide;
 pub mod dist;
 pub mod metrics;
+pub mod monitor;
 pub mod paired;
+pub mod shift;
 
 #[cfg(test)]
 mod props;
 #[cfg(test)]
-mod simulate;
+pub(crate) mod simulate;
 
 use std::fmt;
 
 pub use decide::{
-    Baseline, Decision, Evidence, FreshCheck, FreshVerdict, Guard, GuardStatus, Policy, Scores,
-    ShiftCheck, Shortfall, decide, decide_first, regression_check, shift_check,
+    Baseline, Decision, Evidence, Guard, GuardStatus, Judgement, Policy, Scores, Shortfall, decide,
+    decide_among, decide_first,
 };
 
 /// Why a metric or test could not be computed from its inputs.

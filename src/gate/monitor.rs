@@ -1,0 +1,357 @@
+//! Monitoring the serving model against the model it replaced, batch after
+//! batch, so that the chance of a false automatic rollback over the serving
+//! model's whole time in service stays at or below alpha.
+//!
+//! Each fresh batch b gives one observation: x_b, the mean over its rows of
+//! loss(serving) − loss(previous) (positive: the serving model did worse),
+//! and w_b, the within-batch variance of that mean (s²/n from its rows).
+//! Rows of one batch share a day, so the batch, not the row, is the unit:
+//! x_b ~ N(θ, w_b + τ²), where τ² is the day-to-day variance that no count of
+//! rows within a batch reveals. The question is θ ≤ 0 (no worse) against
+//! θ > 0, with τ² unknown.
+//!
+//! The evidence is an e-process built by sequential universal inference
+//! (Wasserman, Ramdas & Balakrishnan 2020, PNAS 117:16880):
+//!
+//!   E_n = Π_{b ≤ n} N(x_b; θ̂_{b−1}, w_b + τ̂²) / sup_{θ ≤ 0, τ² ≥ 0} Π_{b ≤ n} N(x_b; θ, w_b + τ²)
+//!
+//! where θ̂_{b−1} and τ̂² are fixed before x_b is seen (a running estimate
+//! from earlier batches, started from a prior guess; τ̂² from how the two
+//! models' differences varied across the stored holdout batches). Whatever
+//! those plug-ins are, for every null (θ₀ ≤ 0, τ₀²) the numerator over the
+//! true null likelihood is a non-negative martingale with mean 1, and the
+//! denominator is at least that likelihood; so by Ville's inequality (Ville
+//! 1939) P(sup_n E_n ≥ 1/alpha) ≤ alpha at every stopping time: looking
+//! after every batch, forever, is allowed. The plug-ins only decide how
+//! fast a true regression is caught.
+//!
+//! Assumptions (stated in the README): batch means are close to normal
+//! (each is a mean of many rows), w_b is known (estimated from the batch's
+//! own rows), and the day effects are independent across batches with one
+//! variance.
+
+use super::show;
+
+/// One fresh batch as the monitor keeps it.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Observation {
+    /// Mean of loss(serving) − loss(previous) over the batch's tested rows.
+    pub x: f64,
+    /// Variance of that mean from the rows of the batch (s² / n).
+    pub w: f64,
+    /// ln N(x; θ̂, w + τ̂²) with the plug-ins fixed before x was seen.
+    pub log_numerator: f64,
+}
+
+/// The plug-ins chosen when a model's monitoring starts.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Prior {
+    /// Size of regression the first batch is compared against (> 0).
+    pub theta: f64,
+    /// Smallest θ̂ ever used (> 0): the alternative stays "worse".
+    pub floor: f64,
+    /// Day-to-day variance of batch mean differences (≥ 0).
+    pub tau2: f64,
+}
+
+impl Prior {
+    /// The prior for a pair of models whose predecessor has mean loss
+    /// `reference_loss` on stored holdout rows, and whose per-batch mean
+    /// differences there varied with day-to-day variance `tau2`.
+    /// Regressions of about a fifth of the loss are the ones to catch
+    /// quickly (common practice, no source: a size worth acting on).
+    pub fn for_loss(reference_loss: f64, tau2: f64) -> Prior {
+        let scale = if reference_loss.is_finite() && reference_loss > 0.0 {
+            reference_loss
+        } else {
+            1.0
+        };
+        Prior {
+            theta: 0.2 * scale,
+            floor: 0.02 * scale,
+            tau2: if tau2.is_finite() { tau2.max(0.0) } else { 0.0 },
+        }
+    }
+}
+
+fn ln_normal(x: f64, mean: f64, var: f64) -> f64 {
+    let var = var.max(f64::MIN_POSITIVE);
+    -0.5 * ((2.0 * std::f64::consts::PI * var).ln() + (x - mean) * (x - mean) / var)
+}
+
+/// θ̂ before the next batch: the precision-weighted mean of the earlier
+/// batches and one pseudo-batch at the prior's θ (variance θ²), never
+/// below the floor.
+pub fn theta_hat(prior: &Prior, past: &[Observation]) -> f64 {
+    let v0 = (prior.theta * prior.theta).max(f64::MIN_POSITIVE);
+    let mut num = prior.theta / v0;
+    let mut den = 1.0 / v0;
+    for o in past {
+        let v = (o.w + prior.tau2).max(f64::MIN_POSITIVE);
+        num += o.x / v;
+        den += 1.0 / v;
+    }
+    (num / den).max(prior.floor)
+}
+
+/// The observation for a new batch, its numerator fixed from the past only.
+pub fn observe(prior: &Prior, past: &[Observation], x: f64, w: f64) -> Observation {
+    let theta = theta_hat(prior, past);
+    Observation {
+        x,
+        w,
+        log_numerator: ln_normal(x, theta, w + prior.tau2),
+    }
+}
+
+/// sup over θ ≤ 0 and τ² ≥ 0 of Σ ln N(x_b; θ, w_b + τ²).
+fn ln_null_max(obs: &[Observation]) -> f64 {
+    let profile = |tau2: f64| -> f64 {
+        let (mut a, mut b) = (0.0, 0.0);
+        for o in obs {
+            let v = (o.w + tau2).max(f64::MIN_POSITIVE);
+            a += o.x / v;
+            b += 1.0 / v;
+        }
+        let theta = (a / b).min(0.0);
+        obs.iter().map(|o| ln_normal(o.x, theta, o.w + tau2)).sum()
+    };
+    let spread = obs.iter().map(|o| o.x * o.x + o.w).sum::<f64>() / obs.len().max(1) as f64;
+    let scale = if spread.is_finite() && spread > 0.0 {
+        spread
+    } else {
+        1.0
+    };
+    // A log grid over τ² (and τ² = 0), then golden-section refinement
+    // around the best grid point.
+    let mut best = (0.0, profile(0.0));
+    let grid: Vec<f64> = (0..=240)
+        .map(|i| scale * 10f64.powf(-8.0 + 12.0 * i as f64 / 240.0))
+        .collect();
+    let mut at = None;
+    for (i, &t) in grid.iter().enumerate() {
+        let v = profile(t);
+        if v > best.1 {
+            best = (t, v);
+            at = Some(i);
+        }
+    }
+    if let Some(i) = at {
+        let (mut lo, mut hi) = (
+            if i == 0 { 0.0 } else { grid[i - 1] },
+            grid[(i + 1).min(grid.len() - 1)],
+        );
+        let r = 0.5 * (5f64.sqrt() - 1.0);
+        for _ in 0..80 {
+            let a = hi - r * (hi - lo);
+            let b = lo + r * (hi - lo);
+            if profile(a) >= profile(b) {
+                hi = b;
+            } else {
+                lo = a;
+            }
+        }
+        let v = profile(0.5 * (lo + hi));
+        if v > best.1 {
+            best = (0.5 * (lo + hi), v);
+        }
+    }
+    best.1
+}
+
+/// ln E_n over the observations so far (0 with none).
+pub fn ln_evidence(obs: &[Observation]) -> f64 {
+    if obs.is_empty() {
+        return 0.0;
+    }
+    let num: f64 = obs.iter().map(|o| o.log_numerator).sum();
+    num - ln_null_max(obs)
+}
+
+/// The monitor's state after the newest batch, and what it means.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Reading {
+    pub batches: usize,
+    /// E_n: how many times more likely the batches are if the serving model
+    /// is worse than under the best case for "no worse".
+    pub evidence: f64,
+    /// 1 / alpha: evidence at or above this rolls back.
+    pub needed: f64,
+    /// Mean of x over the batches (positive: the serving model did worse).
+    pub mean_difference: f64,
+    pub regressed: bool,
+}
+
+impl Reading {
+    pub fn reason(&self) -> String {
+        format!(
+            "evidence that the serving model is worse: {} after {} batch{}, {} needed \
+             (mean loss difference per batch {})",
+            show(self.evidence),
+            self.batches,
+            if self.batches == 1 { "" } else { "es" },
+            show(self.needed),
+            show(self.mean_difference)
+        )
+    }
+}
+
+/// Reads the monitor at level `alpha` (0 < alpha ≤ 0.5).
+pub fn read(obs: &[Observation], alpha: f64) -> Reading {
+    let ln_e = ln_evidence(obs);
+    let evidence = ln_e.exp();
+    let needed = 1.0 / alpha;
+    let mean_difference = obs.iter().map(|o| o.x).sum::<f64>() / obs.len().max(1) as f64;
+    Reading {
+        batches: obs.len(),
+        evidence,
+        needed,
+        mean_difference,
+        regressed: alpha > 0.0 && alpha <= 0.5 && ln_e >= needed.ln() && mean_difference > 0.0,
+    }
+}
+
+/// τ̂²: how much per-batch mean differences varied across batches beyond
+/// what their own rows explain (method of moments, never below 0). Each
+/// item is (mean, within variance of the mean) of one batch; `None` with
+/// fewer than 3 batches.
+pub fn between_batch_variance(batches: &[(f64, f64)]) -> Option<f64> {
+    let g = batches.len();
+    if g < 3 {
+        return None;
+    }
+    let m = batches.iter().map(|b| b.0).sum::<f64>() / g as f64;
+    let s2 = batches.iter().map(|b| (b.0 - m).powi(2)).sum::<f64>() / (g - 1) as f64;
+    let within = batches.iter().map(|b| b.1).sum::<f64>() / g as f64;
+    let v = s2 - within;
+    v.is_finite().then_some(v.max(0.0))
+}
+
+/// The two-sided normal-mixture sequential probability ratio for a normal
+/// mean with known σ² and an N(0, τ²) mixing distribution (Robbins 1970;
+/// Johari, Pekelis & Walsh 2017):
+/// Λ_n = sqrt(σ²/(σ²+nτ²)) · exp(n²τ²x̄² / (2σ²(σ²+nτ²))).
+/// Kept beside the e-process as the textbook special case it reduces to
+/// when τ² across batches is known: the tests check both against it.
+pub fn msprt(n: usize, mean: f64, sigma2: f64, tau2: f64) -> f64 {
+    let nf = n as f64;
+    (sigma2 / (sigma2 + nf * tau2)).sqrt()
+        * (nf * nf * tau2 * mean * mean / (2.0 * sigma2 * (sigma2 + nf * tau2))).exp()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::gate::near;
+    use crate::rng::Rng;
+
+    #[test]
+    fn msprt_matches_the_published_formula_values() {
+        // CHECKS.md, computed from the formula of Robbins (1970) / Johari,
+        // Pekelis & Walsh (2017) with σ² = τ² = 1.
+        near(msprt(10, 0.5, 1.0, 1.0), 0.9393342, 1e-6);
+        near(msprt(100, 0.3, 1.0, 1.0), 8.566723, 1e-5);
+        near(msprt(100, 0.1, 1.0, 1.0), 0.1632438, 1e-6);
+    }
+
+    /// Simulated batch means: x_b = θ + day effect + within noise.
+    fn stream(rng: &mut Rng, n: usize, theta: f64, tau: f64, within_sd: f64) -> Vec<(f64, f64)> {
+        (0..n)
+            .map(|_| {
+                let x = theta + tau * rng.normal() + within_sd * rng.normal();
+                // w estimated from ~150 rows: a little noise around the truth.
+                let w = within_sd * within_sd * (1.0 + 0.1 * rng.normal()).max(0.5);
+                (x, w)
+            })
+            .collect()
+    }
+
+    fn run(prior: &Prior, batches: &[(f64, f64)], alpha: f64) -> Option<usize> {
+        let mut obs = Vec::new();
+        for (i, &(x, w)) in batches.iter().enumerate() {
+            let o = observe(prior, &obs, x, w);
+            obs.push(o);
+            if read(&obs, alpha).regressed {
+                return Some(i + 1);
+            }
+        }
+        None
+    }
+
+    #[test]
+    fn no_worse_model_is_rolled_back_at_most_alpha_over_a_long_service_life() {
+        // Ville's inequality: the chance of ever crossing 1/alpha under the
+        // null is at most alpha, however long the monitor looks. Day
+        // effects as large as the within-batch noise, 60 batches a life,
+        // and the plug-in τ̂² wrong by a factor of 4 (it only costs power).
+        let alpha = 0.05;
+        let mut rng = Rng::new(11);
+        let lives = 1_000;
+        let mut false_rollbacks = 0;
+        for life in 0..lives {
+            let theta = if life % 2 == 0 { 0.0 } else { -0.05 };
+            let batches = stream(&mut rng, 60, theta, 0.1, 0.1);
+            let prior = Prior::for_loss(1.0, 0.0025);
+            if run(&prior, &batches, alpha).is_some() {
+                false_rollbacks += 1;
+            }
+        }
+        let rate = false_rollbacks as f64 / lives as f64;
+        // Binomial sd at 5% over 1,000 lives is 0.7%; allow 3 sd.
+        assert!(rate <= alpha + 0.021, "false rollbacks {rate}");
+    }
+
+    #[test]
+    fn a_clearly_worse_model_is_caught_within_a_few_batches() {
+        // 25% higher loss: x ≈ 0.25 L per batch with within sd 0.09 L
+        // (150 rows) and small day effects, as in the simulation suite.
+        let mut rng = Rng::new(12);
+        let (mut in3, mut in6) = (0, 0);
+        for _ in 0..500 {
+            let batches = stream(&mut rng, 6, 0.25, 0.03, 0.09);
+            let prior = Prior::for_loss(1.0, 0.03f64.powi(2));
+            match run(&prior, &batches, 0.05) {
+                Some(n) if n <= 3 => {
+                    in3 += 1;
+                    in6 += 1;
+                }
+                Some(_) => in6 += 1,
+                None => {}
+            }
+        }
+        println!("caught within 3 batches: {in3}/500, within 6: {in6}/500");
+        assert!(
+            in3 >= 200 && in6 >= 420,
+            "within 3: {in3}, within 6: {in6} of 500"
+        );
+    }
+
+    #[test]
+    fn evidence_is_bounded_by_its_null_fit_and_needs_a_positive_mean() {
+        let prior = Prior::for_loss(1.0, 0.0);
+        let mut obs = Vec::new();
+        for x in [-0.3, -0.2, -0.4] {
+            let o = observe(&prior, &obs, x, 0.01);
+            obs.push(o);
+        }
+        let r = read(&obs, 0.05);
+        assert!(!r.regressed);
+        assert!(r.evidence < 1.0, "{}", r.evidence);
+        assert_eq!(read(&[], 0.05).evidence, 1.0);
+    }
+
+    #[test]
+    fn between_batch_variance_removes_the_within_part() {
+        assert_eq!(between_batch_variance(&[(1.0, 0.1), (2.0, 0.1)]), None);
+        // Means 0, 1, 2: sample variance 1; within 0.25 each.
+        near(
+            between_batch_variance(&[(0.0, 0.25), (1.0, 0.25), (2.0, 0.25)]).unwrap(),
+            0.75,
+            1e-12,
+        );
+        assert_eq!(
+            between_batch_variance(&[(0.0, 5.0), (1.0, 5.0), (2.0, 5.0)]),
+            Some(0.0)
+        );
+    }
+}
