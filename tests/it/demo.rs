@@ -27,12 +27,20 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
     assert!(has("intake", "refused"), "{v}");
     assert!(has("intake", "duplicate of"), "{v}");
     assert!(has("intake", "new shop"), "{v}");
-    assert!(has("fresh_check", "shifted"), "{v}");
-    let automatic = has("fresh_check", "rolled back");
-    assert!(
-        automatic || !v["rollback"].is_null(),
-        "a rollback of either kind: {v}"
-    );
+    // Nothing in the generator makes any model worse, and the nights
+    // before Corrin's demand shift (night 10) change nothing: no flag and
+    // no rollback may appear on them. New weekdays and the new shop are
+    // new conditions, reported, never a flag.
+    for n in &nights[..9] {
+        let check = n["fresh_check"].as_str().unwrap_or("");
+        assert!(
+            !check.contains("shifted")
+                && !check.contains("regressed")
+                && !check.contains("rolled back"),
+            "a flag on an uneventful night: {n}"
+        );
+    }
+    assert!(has("fresh_check", "new-conditions"), "{v}");
     let report = std::path::PathBuf::from(v["report"].as_str().unwrap());
     let page = std::fs::read_to_string(&report).unwrap();
     assert!(
@@ -48,13 +56,6 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
         .output()
         .unwrap();
     assert_eq!(code(&verify), 0, "{}", stdout(&verify));
-    let rb = std::process::Command::new(bin)
-        .arg("--state")
-        .arg(&state)
-        .args(["--json", "log", "--kind", "rolled-back"])
-        .output()
-        .unwrap();
-    assert!(!stdout(&rb).trim().is_empty(), "the rollback is in the log");
 }
 
 #[test]
