@@ -7,7 +7,8 @@ use plotters::coord::Shift;
 use plotters::prelude::*;
 
 use super::gather::{Arrival, Fate, Timeline};
-use super::scan::{Influence, ResponseMap};
+use super::importance::Importance;
+use super::scan::ResponseMap;
 use crate::model::TrainingSummary;
 
 type DrawResult = Result<(), DrawingAreaErrorKind<std::io::Error>>;
@@ -544,35 +545,39 @@ pub fn response(map: &ResponseMap) -> anyhow::Result<String> {
     })
 }
 
-/// First-layer weight magnitude per input column as horizontal bars,
-/// largest at the top.
-pub fn influence(items: &[Influence]) -> anyhow::Result<Option<String>> {
+/// Width of the permutation-importance chart, which sits beside its text.
+pub const IMPORTANCE_WIDTH: u32 = 720;
+
+/// Permutation importance per input column as horizontal bars (mean rise
+/// in holdout loss), largest at the top, with the interval as a whisker and
+/// a line at 0.
+pub fn importance(items: &[Importance]) -> anyhow::Result<Option<String>> {
     if items.is_empty() {
         return Ok(None);
     }
     let n = items.len();
-    let top = items.iter().map(|i| i.total).fold(0.0, f64::max).max(1e-12) * 1.08;
-    let names: Vec<String> = items
-        .iter()
-        .map(|i| {
-            if i.inputs == 1 {
-                i.column.clone()
-            } else {
-                format!("{} ({} inputs)", i.column, i.inputs)
-            }
-        })
-        .collect();
+    let ends = items.iter().flat_map(|i| {
+        let (lo, hi) = i.interval.unwrap_or((i.rise, i.rise));
+        [i.rise, lo, hi]
+    });
+    let (lo, hi) = ends
+        .filter(|v| v.is_finite())
+        .fold((0.0f64, 0.0f64), |(a, b), v| (a.min(v), b.max(v)));
+    let pad = (hi - lo).max(1e-12) * 0.06;
+    let (lo, hi) = (if lo < 0.0 { lo - pad } else { 0.0 }, hi + pad);
+    let names: Vec<String> = items.iter().map(|i| i.column.clone()).collect();
     let height = (80 + 34 * n as u32).max(220);
-    let svg = render((WIDTH, height), "input influence", |root| {
+    let svg = render((IMPORTANCE_WIDTH, height), "input influence", |root| {
         let mut chart = ChartBuilder::on(root)
             .margin(16)
             .x_label_area_size(44)
-            .y_label_area_size(190)
-            .build_cartesian_2d(0f64..top, (0..n).into_segmented())?;
+            .y_label_area_size(150)
+            .build_cartesian_2d(lo..hi, (0..n).into_segmented())?;
         chart
             .configure_mesh()
             .disable_y_mesh()
-            .x_desc("sum of |weight| in the first layer")
+            .x_desc("rise in mean holdout loss when shuffled")
+            .x_label_formatter(&number)
             .y_labels(n)
             .y_label_formatter(&|v| match v {
                 SegmentValue::CenterOf(i) if *i < n => names[n - 1 - *i].clone(),
@@ -585,16 +590,43 @@ pub fn influence(items: &[Influence]) -> anyhow::Result<Option<String>> {
             .draw()?;
         chart.draw_series(items.iter().enumerate().map(|(k, item)| {
             let slot = n - 1 - k;
+            let (a, b) = if item.rise >= 0.0 {
+                (0.0, item.rise)
+            } else {
+                (item.rise, 0.0)
+            };
             let mut r = Rectangle::new(
                 [
-                    (0.0, SegmentValue::Exact(slot)),
-                    (item.total, SegmentValue::Exact(slot + 1)),
+                    (a, SegmentValue::Exact(slot)),
+                    (b, SegmentValue::Exact(slot + 1)),
                 ],
-                SERIES[0].filled(),
+                SERIES[0].mix(0.75).filled(),
             );
-            r.set_margin(5, 5, 0, 0);
+            r.set_margin(7, 7, 0, 0);
             r
         }))?;
+        // Whiskers: the interval, with short caps at both ends.
+        for (k, item) in items.iter().enumerate() {
+            let Some((a, b)) = item.interval else {
+                continue;
+            };
+            let slot = n - 1 - k;
+            let at = SegmentValue::CenterOf(slot);
+            chart.draw_series(std::iter::once(PathElement::new(
+                vec![(a, at.clone()), (b, at.clone())],
+                INK.stroke_width(2),
+            )))?;
+            for end in [a, b] {
+                chart.draw_series(std::iter::once(
+                    EmptyElement::at((end, at.clone()))
+                        + PathElement::new(vec![(0, -7), (0, 7)], INK.stroke_width(2)),
+                ))?;
+            }
+        }
+        chart.draw_series(std::iter::once(PathElement::new(
+            vec![(0.0, SegmentValue::Exact(0)), (0.0, SegmentValue::Exact(n))],
+            INK.stroke_width(1),
+        )))?;
         Ok(())
     })?;
     Ok(Some(svg))
@@ -624,18 +656,29 @@ mod tests {
 
     #[test]
     fn charts_are_plain_svg_without_urls() {
-        let items = vec![Influence {
-            column: "a<b>".into(),
-            total: 2.0,
-            inputs: 1,
-        }];
-        let svg = influence(&items).unwrap().unwrap();
+        let items = vec![
+            Importance {
+                column: "a<b>".into(),
+                rise: 2.0,
+                repeat_sd: 0.1,
+                interval: Some((1.5, 2.5)),
+                ratio: Some(3.0),
+            },
+            Importance {
+                column: "unused".into(),
+                rise: -0.01,
+                repeat_sd: 0.01,
+                interval: None,
+                ratio: Some(0.99),
+            },
+        ];
+        let svg = importance(&items).unwrap().unwrap();
         assert!(svg.starts_with("<svg"), "{}", &svg[..40.min(svg.len())]);
         assert!(!svg.contains("http"));
         // plotters escapes text it writes.
         assert!(svg.contains("a&lt;b&gt;"));
         assert!(!svg.contains("a<b>"));
-        assert!(influence(&[]).unwrap().is_none());
+        assert!(importance(&[]).unwrap().is_none());
         assert!(rows(&Timeline::default()).unwrap().is_none());
         assert!(holdout(&Timeline::default()).unwrap().is_none());
     }

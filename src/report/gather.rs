@@ -268,19 +268,36 @@ pub fn manifests(models: &Path) -> (BTreeMap<ModelId, Manifest>, Vec<String>) {
     (out, notes)
 }
 
+/// Stored rows read back from the archive, and the holdout rows among
+/// them with the batch each came from.
+#[derive(Debug, Clone)]
+pub struct StoredRows {
+    /// Every stored row (training and holdout).
+    pub rows: RowMatrix,
+    pub holdout: RowMatrix,
+    /// Batch of each holdout row.
+    pub holdout_batches: Vec<u64>,
+}
+
 /// The stored rows, read back from `archive/<batch>.csv` (the exact bytes
-/// that were accepted) and encoded with `vocabs`, which grows by the values
-/// each file brings in the order the store gave them codes (so codes match
-/// the store's when `vocabs` starts as a model's vocabularies). Batches
-/// whose file is missing or unreadable are named in the notes and left out.
+/// that were accepted, so the holdout split is the store's: it is a
+/// function of each row's content) and encoded with `vocabs`, which grows
+/// by the values each file brings in the order the store gave them codes
+/// (so codes match the store's when `vocabs` starts as a model's
+/// vocabularies). Batches whose file is missing or unreadable are named in
+/// the notes and left out.
 pub fn stored_rows(
     state: &StateDir,
     batches: &[BatchId],
     schema: &Schema,
     vocabs: &mut Vocabularies,
     limits: &Limits,
-) -> (RowMatrix, Vec<String>) {
-    let mut rows = RowMatrix::new(schema.width());
+) -> (StoredRows, Vec<String>) {
+    let mut out = StoredRows {
+        rows: RowMatrix::new(schema.width()),
+        holdout: RowMatrix::new(schema.width()),
+        holdout_batches: Vec::new(),
+    };
     let mut notes = Vec::new();
     for &b in batches {
         let path = crate::intake::archive_path(state, b);
@@ -294,10 +311,14 @@ pub fn stored_rows(
                 continue;
             }
         };
-        match ingest::parse_for_scoring(&raw.bytes, schema, vocabs, limits) {
-            Ok(s) => {
-                rows.extend(&s.rows);
-                for (col, values) in s.unseen {
+        match ingest::parse(&raw.bytes, schema, vocabs, limits) {
+            Ok(batch) => {
+                out.rows.extend(&batch.train);
+                out.rows.extend(&batch.holdout);
+                out.holdout.extend(&batch.holdout);
+                out.holdout_batches
+                    .extend(std::iter::repeat_n(b.0, batch.holdout.n_rows()));
+                for (col, values) in batch.new_categories {
                     let vocab = vocabs.entry(col).or_default();
                     for v in values {
                         vocab.code_or_insert(&v);
@@ -311,7 +332,7 @@ pub fn stored_rows(
             )),
         }
     }
-    (rows, notes)
+    (out, notes)
 }
 
 #[cfg(test)]

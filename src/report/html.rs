@@ -108,6 +108,10 @@ p.missing { margin: 8px 0; padding: 10px 14px; background: #fbf3e2; border-left:
 figure { margin: 8px 0 0; overflow-x: auto; }
 figure svg { max-width: 100%; height: auto; display: block; }
 figcaption { color: var(--muted); font-size: 13px; margin-top: 4px; }
+div.beside { display: flex; flex-wrap: wrap; gap: 18px; align-items: flex-start; }
+div.beside figure { flex: 1 1 560px; min-width: 0; }
+div.beside aside { flex: 1 1 260px; color: var(--muted); font-size: 13px; }
+div.beside aside p { margin: 6px 0 10px; }
 table { border-collapse: collapse; width: 100%; font-size: 13px; margin-top: 6px; }
 th, td { text-align: left; padding: 4px 8px; border-bottom: 1px solid #ebe8df; vertical-align: top; }
 th { background: #efece3; font-weight: 600; position: sticky; top: 0; }

@@ -1,8 +1,9 @@
 //! `tidegate report`: one self-contained HTML page (inline CSS and SVG, no
 //! script, no URL) that shows a state dir's history: holdout loss per model
 //! version with the gate's decisions and the baselines, training curves,
-//! rows stored, the serving model's response over two inputs, first-layer
-//! weight per input column, fresh-data checks, drift flags and the audit log.
+//! rows stored, the serving model's response over two inputs, the
+//! permutation importance of each input column on the holdout rows,
+//! fresh-data checks, drift flags and the audit log.
 //!
 //! Reads files only (`gather`), so it works while another process owns the
 //! state dir. `scan` computes what the serving model does, `charts` draws,
@@ -11,11 +12,13 @@
 pub mod charts;
 pub mod gather;
 pub mod html;
+pub mod importance;
 pub mod scan;
 
 use chrono::{DateTime, SecondsFormat, Utc};
 
 use crate::config::Config;
+use crate::ids::ModelId;
 use crate::ingest::Limits;
 use crate::model::checkpoint::{Checkpoint, model_dir};
 use crate::schema::Schema;
@@ -198,30 +201,39 @@ pub fn build(
         )
         .map_err(|e| format!("The serving model {id} cannot be loaded: {e}")),
     };
+    // The stored rows, read back once for the response map and the
+    // permutation importance.
+    let served = match loaded {
+        Err(why) => Err(why),
+        Ok(cp) => {
+            let limits = Limits {
+                max_file_bytes: config.data.max_file_bytes,
+                max_field_bytes: config.data.max_field_bytes,
+                holdout_fraction: *config.data.holdout_fraction.get_ref(),
+            };
+            let mut vocabs = cp.manifest.vocabularies();
+            let (rows, row_notes) =
+                gather::stored_rows(state, &t.batches(), &schema, &mut vocabs, &limits);
+            notes.extend(row_notes);
+            Ok((cp, rows, vocabs))
+        }
+    };
     let mut s = note(
         "The serving model's output over a grid of two number inputs, every other input held at \
          its median (numbers) or most frequent value (categories) among the stored rows; the dots \
          are stored rows. Pick the inputs with --x and --y.",
     );
-    match &loaded {
+    match &served {
         Err(why) => s.push_str(&missing(why)),
-        Ok(cp) => match scan::pick_axes(&schema, options.x.as_deref(), options.y.as_deref()) {
-            Err(why) => s.push_str(&missing(&format!("No response map: {why}."))),
-            Ok(axes) => {
-                let limits = Limits {
-                    max_file_bytes: config.data.max_file_bytes,
-                    max_field_bytes: config.data.max_field_bytes,
-                    holdout_fraction: *config.data.holdout_fraction.get_ref(),
-                };
-                let mut vocabs = cp.manifest.vocabularies();
-                let (rows, row_notes) =
-                    gather::stored_rows(state, &t.batches(), &schema, &mut vocabs, &limits);
-                notes.extend(row_notes);
-                match scan::response_map(
+        Ok((cp, rows, vocabs)) => {
+            match scan::pick_axes(&schema, options.x.as_deref(), options.y.as_deref()) {
+                Err(why) => s.push_str(&missing(&format!("No response map: {why}."))),
+                Ok(axes) => {
+                    match scan::response_map(
                     &cp.model,
                     &schema,
-                    &vocabs,
-                    &rows,
+                    vocabs,
+                    &rows.rows,
                     axes,
                     config.training.predict_backend,
                 )? {
@@ -254,34 +266,37 @@ pub fn build(
                         }
                     }
                 }
+                }
             }
-        },
+        }
     }
     body.push_str(&section("response", "4. Response of the serving model", &s));
 
-    let mut s = note(
-        "Sum of the absolute first-layer weights from each input column's encoded inputs (one \
-         per number column, standardised, so they compare; one per known value for a category \
-         column). A large sum means the network listens to that column, not that it matters \
-         causally.",
-    );
-    match &loaded {
+    let mut s = String::new();
+    match &served {
         Err(why) => s.push_str(&missing(why)),
-        Ok(cp) => {
-            let weights = cp.model.weights();
-            let items = weights
-                .first()
-                .map(|first| scan::influence(cp.model.spec(), first, &schema))
-                .unwrap_or_default();
-            match charts::influence(&items)? {
-                Some(svg) => {
-                    charts += 1;
-                    s.push_str(&figure(
-                        &svg,
-                        &format!("first-layer weight per input column of {}", cp.manifest.id),
-                    ));
-                }
-                None => s.push_str(&missing("The serving model has no first layer to show.")),
+        Ok((cp, rows, _)) => {
+            match scan::importance(
+                &cp.model,
+                &schema,
+                &rows.holdout,
+                &rows.holdout_batches,
+                config.training.predict_backend,
+            ) {
+                Err(e) => s.push_str(&missing(&format!(
+                    "The serving model {} cannot score the stored holdout rows: {e}",
+                    cp.manifest.id
+                ))),
+                Ok(None) => s.push_str(&missing(
+                    "Fewer than two stored holdout rows: there is nothing to shuffle yet.",
+                )),
+                Ok(Some(out)) => match charts::importance(&out.columns)? {
+                    None => s.push_str(&missing("The serving model has no input columns.")),
+                    Some(svg) => {
+                        charts += 1;
+                        s.push_str(&importance_section(&svg, &out, cp.manifest.id));
+                    }
+                },
             }
         }
     }
@@ -351,6 +366,83 @@ pub fn build(
         charts,
         events: entries.len(),
     })
+}
+
+/// The permutation-importance chart with what it means beside it, and
+/// its numbers in a table.
+fn importance_section(svg: &str, out: &importance::Outcome, model: ModelId) -> String {
+    let mut s = note(&format!(
+        "How much the serving model relies on each input column on the holdout rows: \
+         permutation importance (Breiman 2001; Fisher, Rudin & Dominici 2019, \
+         \"model reliance\"). {} stored holdout rows from {} batches (a seeded sample of at most \
+         {}) are scored as they are, then once more for each column with that column's values \
+         shuffled among the rows, {} times with different shuffles; a bar is the mean rise in \
+         the model's mean loss (unshuffled: {}).",
+        out.rows,
+        out.batches,
+        importance::MAX_ROWS,
+        out.repeats,
+        loss(out.base_loss),
+    ));
+    let caption = format!(
+        "permutation importance of the input columns of {model} (bars: mean rise over {} \
+         shuffles; whiskers: {:.0}% interval, each batch one cluster)",
+        out.repeats,
+        importance::LEVEL * 100.0
+    );
+    let aside = [
+        "What it means: how much worse this model does, on these rows, when a column's values \
+         no longer match the rest of the row. A category column is shuffled as one column: its \
+         value moves, so its whole group of one-hot inputs moves together, however many values \
+         it has.",
+        "What it does not mean: it is not the causal effect of the column on the target. \
+         Correlated columns share credit: shuffling one leaves the other's information in place, \
+         so both can look small. It says nothing about columns the model was not given, and a \
+         rise near 0 means this model does not use the column here, not that the column holds \
+         no information.",
+        "Rows of one batch share a day, so a day-level column (weekday, the day's weather) is \
+         paired with other days' values when shuffled: that measures reliance on it, not what \
+         another day would bring. For the same reason the interval counts each batch as one \
+         cluster (Liang & Zeger 1986; Cameron & Miller 2015), so few batches give wide \
+         intervals. An interval that covers 0 gives no evidence that this model uses the column.",
+    ];
+    s.push_str("<div class=\"beside\">\n");
+    s.push_str(&figure(svg, &caption));
+    s.push_str("<aside>\n");
+    for p in aside {
+        s.push_str(&format!("<p>{}</p>\n", escape(p)));
+    }
+    s.push_str("</aside>\n</div>\n");
+    let rows: Vec<Vec<String>> = out
+        .columns
+        .iter()
+        .map(|c| {
+            vec![
+                c.column.clone(),
+                format!("{:.4}", c.rise),
+                format!("{:.4}", c.repeat_sd),
+                c.interval.map_or_else(
+                    || "- (one batch)".to_string(),
+                    |(lo, hi)| format!("{lo:.4} to {hi:.4}"),
+                ),
+                c.ratio
+                    .map_or_else(|| "-".to_string(), |r| format!("{r:.3}")),
+            ]
+        })
+        .collect();
+    s.push_str(&table(
+        "importance",
+        &[
+            "column",
+            "mean rise in loss",
+            "sd over shuffles",
+            &format!("{:.0}% interval", importance::LEVEL * 100.0),
+            "shuffled / unshuffled loss",
+        ],
+        &rows,
+        &[],
+    ));
+    s
 }
 
 /// Tables of the fresh-data checks and of drift-flagged batches.

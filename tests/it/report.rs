@@ -1,6 +1,7 @@
 //! `tidegate report` through the real binary: the page of a demo state dir
 //! is self-contained (no script, no URL), has one chart per section that
-//! has data, names the model versions and lists every audit entry; an
+//! has data, names the model versions and lists every audit entry, shows
+//! the permutation importance of every input column with its caveats; an
 //! empty state dir still gets a page that says what is missing; the page
 //! renders in headless Chromium without console errors.
 
@@ -82,14 +83,59 @@ fn logged_seqs(html: &str) -> Vec<u64> {
         .collect()
 }
 
+/// The input-influence section: permutation importance of every input
+/// column the demo model was given, with an interval and the text that
+/// says what the number does not mean; the old weight sum is gone.
+fn assert_importance(html: &str) {
+    let start = html
+        .find("<section id=\"influence\">")
+        .expect("influence section");
+    let section = &html[start..start + html[start..].find("</section>").unwrap()];
+    assert!(section.contains("permutation importance"), "{section}");
+    assert!(section.contains("Breiman 2001"));
+    assert!(section.contains("not the causal effect"));
+    assert!(section.contains("Correlated columns share credit"));
+    assert!(section.contains("columns the model was not given"));
+    assert!(!html.contains("first-layer weight"));
+    assert_eq!(section.matches("<svg").count(), 1);
+    let table = &section[section.find("<table class=\"importance\">").expect("table")..];
+    let columns: Vec<&str> = table
+        .match_indices("<tr><td>")
+        .map(|(i, m)| {
+            let rest = &table[i + m.len()..];
+            &rest[..rest.find("</td>").unwrap()]
+        })
+        .collect();
+    let mut sorted = columns.clone();
+    sorted.sort_unstable();
+    assert_eq!(
+        sorted,
+        [
+            "bread",
+            "prev_day_sold",
+            "promo",
+            "rain_mm",
+            "shop",
+            "temp_c",
+            "weekday"
+        ],
+        "every input column once, the target never"
+    );
+    // Six batches are stored (night 5 was refused), so every row has an
+    // interval ("a to b"), none says "one batch".
+    assert_eq!(table.matches(" to ").count(), 7, "{table}");
+    assert!(!table.contains("one batch"));
+}
+
 #[test]
 fn report_of_the_demo_is_self_contained_and_shows_every_part() {
     let env = demo_state();
     let (_, html) = write_report(&env, &[]);
     assert_self_contained(&html);
-    // Holdout, curves, rows, response map, influence.
+    // Holdout, curves, rows, response map, permutation importance.
     assert_eq!(html.matches("<svg").count(), 5, "one chart per section");
     assert_eq!(html.matches("</svg>").count(), 5);
+    assert_importance(&html);
     for id in ["m000001", "m000002"] {
         assert!(html.contains(id), "{id} missing");
     }
