@@ -37,9 +37,9 @@ pub struct DriftConfig {
     pub min_batches: usize,
     /// Past batches' distances kept per column.
     pub window: usize,
-    /// Flag when the robust z of the log distance exceeds this.
+    /// Flag when the robust z of the distance exceeds this.
     pub threshold: f64,
-    /// Smallest spread of log distances the z divides by.
+    /// Smallest spread the z divides by, as a share of the median distance.
     pub spread_floor: f64,
     /// The stored training rows compared against are thinned evenly to at
     /// most this many.

@@ -899,7 +899,7 @@ pub fn judge(past: &[f64], distance: Option<f64>, measure: Measure, rule: &Rule)
     if past.len() < rule.min_batches {
         return j;
     }
-    let (m, spread) = median_and_spread(&past);
+    let (m, spread) = median_and_spread(past);
     let z = (d - m) / spread.max(rule.spread_floor * m).max(SPREAD_MIN);
     j.usual = Some(m);
     j.z = Some(z);
@@ -1019,15 +1019,44 @@ impl BatchReport {
             .collect()
     }
 
-    /// (past distances, needed) while any column's reference is still
-    /// being built: the fewest past distances of a judged column.
-    pub fn building(&self) -> Option<(usize, usize)> {
+    /// Columns whose reference is still being built: (column, past
+    /// distances, needed).
+    pub fn building(&self) -> Vec<(&str, usize, usize)> {
         self.columns
             .iter()
+            .filter_map(|c| c.judged.as_ref().map(|j| (c.column.as_str(), j)))
+            .filter(|(_, j)| j.verdict == Verdict::Building)
+            .map(|(c, j)| (c, j.past, j.needed))
+            .collect()
+    }
+
+    /// "building the drift reference: 5 of 7 batches; weekday 0 of 7": the
+    /// count most building columns have reached, and the columns behind it
+    /// (a weekday column has no distance while each night brings a new
+    /// weekday). `None` once every judged column is past building.
+    pub fn building_text(&self) -> Option<String> {
+        let b = self.building();
+        let (_, most, needed) = *b.iter().max_by_key(|(_, k, _)| *k)?;
+        let judged_fully = self
+            .columns
+            .iter()
             .filter_map(|c| c.judged.as_ref())
-            .filter(|j| j.verdict == Verdict::Building)
-            .map(|j| (j.past, j.needed))
-            .min()
+            .any(|j| matches!(j.verdict, Verdict::Usual | Verdict::Drift));
+        let behind: Vec<String> = b
+            .iter()
+            .filter(|(_, k, _)| judged_fully || *k < most)
+            .map(|(c, k, n)| format!("{c} {k} of {n}"))
+            .collect();
+        Some(if judged_fully {
+            format!("building the drift reference for {}", behind.join(", "))
+        } else if behind.is_empty() {
+            format!("building the drift reference: {most} of {needed} batches")
+        } else {
+            format!(
+                "building the drift reference: {most} of {needed} batches; {}",
+                behind.join(", ")
+            )
+        })
     }
 
     /// New category values: (column, values, share of rows).
@@ -1059,8 +1088,7 @@ impl BatchReport {
                 old.join(", ")
             ));
         }
-        self.building()
-            .map(|(k, n)| format!("building the drift reference: {k} of {n} batches"))
+        self.building_text()
     }
 }
 
@@ -1978,6 +2006,9 @@ mod tests {
         column: &'static str,
         verdict: Verdict,
         new_values: bool,
+        /// What the fixed-level tests of older versions said (KS or
+        /// chi-square p below 0.01, PSI from 0.25, more than 5% new rows).
+        old_rule: bool,
     }
 
     /// Runs the real measuring and judging code over a stream: each night
@@ -2010,6 +2041,8 @@ mod tests {
             if night > 0 {
                 for (ci, name) in stream::NUMBERS.iter().enumerate() {
                     let m = measure_numbers(&hist_numbers[ci], &n.numbers[ci]).unwrap();
+                    let ks = ks_two_sample(&hist_numbers[ci], &n.numbers[ci]).unwrap();
+                    let old_rule = ks.p_value < 0.01 || m.psi.unwrap() >= PSI_ALERT;
                     let j = judge(&past[ci], m.distance, m.measure, rule);
                     if let Some(d) = m.distance {
                         past[ci].push(d);
@@ -2019,12 +2052,15 @@ mod tests {
                         column: name,
                         verdict: j.verdict,
                         new_values: false,
+                        old_rule,
                     });
                 }
                 for (ci, name) in stream::CATEGORIES.iter().enumerate() {
                     let m =
                         measure_categories(&hist_counts[ci], &batch_counts[ci], known[ci]).unwrap();
                     let k = 3 + ci;
+                    let old = category_drift(&hist_counts[ci], &batch_counts[ci]).unwrap();
+                    let old_rule = old.chi.p_value < 0.01 || old.unseen_share > 0.05;
                     let j = judge(&past[k], m.distance, m.measure, rule);
                     if let Some(d) = m.distance {
                         past[k].push(d);
@@ -2034,6 +2070,7 @@ mod tests {
                         column: name,
                         verdict: j.verdict,
                         new_values: m.new_share > 0.0,
+                        old_rule,
                     });
                 }
             }
@@ -2177,6 +2214,19 @@ mod tests {
                     format!("{c} {f}/{j}")
                 })
                 .collect();
+            if threshold == THRESHOLD {
+                // The old rule on the same column-nights (those judged).
+                let mut per: Vec<String> = Vec::new();
+                for c in stream::NUMBERS.iter().chain(stream::CATEGORIES.iter()) {
+                    let on: Vec<&Seen> = all
+                        .iter()
+                        .filter(|s| s.column == *c && s.night > rule.min_batches)
+                        .collect();
+                    let f = on.iter().filter(|s| s.old_rule).count();
+                    per.push(format!("{c} {f}/{}", on.len()));
+                }
+                println!("old fixed-level tests, nights 8-39: {}", per.join(", "));
+            }
             println!(
                 "threshold {threshold}: false flags {flags}/{judged} = {:.2}% of column-nights ({})",
                 100.0 * flags as f64 / judged as f64,

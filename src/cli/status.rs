@@ -50,8 +50,8 @@ pub struct LastDrift {
     /// Columns flagged by the rule against past batches.
     pub flagged: Vec<String>,
     pub reasons: Vec<String>,
-    /// (past batches, needed) while the reference is still being built.
-    pub building: Option<(usize, usize)>,
+    /// How far the reference is built, while it is.
+    pub building: Option<String>,
     /// "column: values (share of rows)" for category values never seen
     /// before.
     pub new_values: Vec<String>,
@@ -102,7 +102,7 @@ impl Summary {
                             .filter(|c| c.drifted())
                             .map(|c| format!("{}: {}", c.column, c.reason))
                             .collect(),
-                        building: d.building(),
+                        building: d.building_text(),
                         new_values: d
                             .new_values()
                             .into_iter()
@@ -273,9 +273,9 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             for r in &d.reasons {
                 out.push_str(&format!("            {r}\n"));
             }
-        } else if let Some((k, n)) = d.building {
+        } else if let Some(b) = &d.building {
             out.push_str(&format!(
-                "drift       {}: building the reference: {k} of {n} batches; nothing is flagged until then\n",
+                "drift       {}: {b}; a column is not flagged before that\n",
                 d.batch
             ));
         } else if !d.old_rule_flagged.is_empty() {

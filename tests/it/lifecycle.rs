@@ -733,8 +733,19 @@ fn every_accepted_batch_carries_a_drift_report_judged_against_past_batches() {
     let status = stdout(&env.run(&["status"]));
     assert!(status.contains("drift"), "{status}");
     let log = stdout(&env.run(&["log", "--kind", "batch-accepted"]));
+    // Night 3: one past distance for most columns; prev_day_sold has none
+    // (night 1 has no previous day). Each night so far brought a new
+    // weekday, which has no distance and is reported as new.
     assert!(
-        log.contains("building the drift reference: 0 of 7 batches"),
+        log.contains(
+            "new weekday: Wed; building the drift reference: 1 of 7 batches; prev_day_sold 0 of 7"
+        ),
+        "{log}"
+    );
+    // Night 10 (batch 9): judged, except the weekday (first distance on
+    // night 8) and prev_day_sold.
+    assert!(
+        log.contains("building the drift reference for weekday 2 of 7, prev_day_sold 6 of 7"),
         "{log}"
     );
 }
