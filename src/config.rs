@@ -859,6 +859,21 @@ kind = "number"
     }
 
     #[test]
+    fn old_drift_keys_still_load_and_change_nothing() {
+        let old = format!(
+            "{MINIMAL}\n[drift]\nks_alpha = 0.01\npsi_warn = 0.1\nmax_reference_rows = 5000\n"
+        );
+        let c = parse(&old).unwrap();
+        assert_eq!(c.drift.ignored_keys(), vec!["ks_alpha", "psi_warn"]);
+        assert_eq!(c.drift.rule(), crate::drift::Rule::default());
+        assert_eq!(c.drift.max_reference_rows, 5000);
+        // A bad new key is refused with its line.
+        let bad = format!("{MINIMAL}\n[drift]\nwindow = 3\n");
+        let e = parse(&bad).unwrap_err().to_string();
+        assert!(e.contains("window"), "{e}");
+    }
+
+    #[test]
     fn minimal_config_gets_defaults() {
         let c = parse(MINIMAL).unwrap();
         assert_eq!(c.model.hidden, vec![64, 64]);
