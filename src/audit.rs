@@ -416,11 +416,8 @@ impl Event {
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
                 }
-                if let Some(d) = drift {
-                    let flagged = d.flagged();
-                    if !flagged.is_empty() {
-                        s.push_str(&format!("; drift in {}", flagged.join(", ")));
-                    }
+                if let Some(line) = drift.as_ref().and_then(|d| d.summary()) {
+                    s.push_str(&format!("; {line}"));
                 }
                 s
             }

@@ -29,49 +29,75 @@ pub struct Config {
     pub drift: DriftConfig,
 }
 
-/// Levels of the drift report computed for every accepted batch.
+/// How each accepted batch's drift is judged (see `drift::Rule`).
 #[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct DriftConfig {
-    /// Flag a number column when the two-sample KS p-value is below this.
-    pub ks_alpha: f64,
-    /// PSI from here up is reported as a moderate shift.
-    pub psi_warn: f64,
-    /// Flag a number column when PSI reaches this.
-    pub psi_alert: f64,
-    /// Flag a category column when the chi-square p-value is below this.
-    pub chi_alpha: f64,
-    /// Flag a category column when more than this share of the batch's rows
-    /// hold values never seen before.
-    pub unseen_share: f64,
+    /// Past batches a column needs before it can be flagged.
+    pub min_batches: usize,
+    /// Past batches' distances kept per column.
+    pub window: usize,
+    /// Flag when the robust z of the distance exceeds this.
+    pub threshold: f64,
+    /// Smallest spread the z divides by, as a share of the median distance.
+    pub spread_floor: f64,
     /// The stored training rows compared against are thinned evenly to at
     /// most this many.
     pub max_reference_rows: usize,
+    /// Keys of the fixed-level tests of older versions. Still accepted so
+    /// an existing config loads; they no longer change anything.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ks_alpha: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub psi_warn: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub psi_alert: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub chi_alpha: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub unseen_share: Option<f64>,
 }
 
 impl Default for DriftConfig {
     fn default() -> Self {
-        let t = crate::drift::Thresholds::default();
+        let r = crate::drift::Rule::default();
         DriftConfig {
-            ks_alpha: t.ks_alpha,
-            psi_warn: t.psi_warn,
-            psi_alert: t.psi_alert,
-            chi_alpha: t.chi_alpha,
-            unseen_share: t.unseen_share,
+            min_batches: r.min_batches,
+            window: r.window,
+            threshold: r.threshold,
+            spread_floor: r.spread_floor,
             max_reference_rows: 20_000,
+            ks_alpha: None,
+            psi_warn: None,
+            psi_alert: None,
+            chi_alpha: None,
+            unseen_share: None,
         }
     }
 }
 
 impl DriftConfig {
-    pub fn thresholds(&self) -> crate::drift::Thresholds {
-        crate::drift::Thresholds {
-            ks_alpha: self.ks_alpha,
-            psi_warn: self.psi_warn,
-            psi_alert: self.psi_alert,
-            chi_alpha: self.chi_alpha,
-            unseen_share: self.unseen_share,
+    pub fn rule(&self) -> crate::drift::Rule {
+        crate::drift::Rule {
+            min_batches: self.min_batches,
+            window: self.window,
+            threshold: self.threshold,
+            spread_floor: self.spread_floor,
         }
+    }
+
+    /// Old keys present in the file, which no longer do anything.
+    pub fn ignored_keys(&self) -> Vec<&'static str> {
+        [
+            ("ks_alpha", self.ks_alpha.is_some()),
+            ("psi_warn", self.psi_warn.is_some()),
+            ("psi_alert", self.psi_alert.is_some()),
+            ("chi_alpha", self.chi_alpha.is_some()),
+            ("unseen_share", self.unseen_share.is_some()),
+        ]
+        .into_iter()
+        .filter_map(|(k, present)| present.then_some(k))
+        .collect()
     }
 }
 
@@ -410,6 +436,14 @@ impl Config {
             }
         })?;
         config.validate(text, path)?;
+        for key in config.drift.ignored_keys() {
+            tracing::warn!(
+                "{}: [drift] {key} belongs to the old fixed-level drift tests and is ignored; \
+                 drift is now judged against past batches (min_batches, window, threshold, \
+                 spread_floor)",
+                path.display()
+            );
+        }
         Ok(config)
     }
 
@@ -674,13 +708,14 @@ impl Config {
             }
         }
         if let Err(crate::drift::DriftError::BadThreshold { name, value }) =
-            self.drift.thresholds().validate()
+            self.drift.rule().validate()
         {
             return fail(
                 whole(name),
                 format!(
-                    "{name} = {value} is out of range: alphas are in (0, 1), \
-                     0 <= psi_warn <= psi_alert, unseen_share is in [0, 1]"
+                    "{name} = {value} is out of range: min_batches is at least 3, \
+                     window is from min_batches to {}, threshold and spread_floor are above 0",
+                    crate::drift::MAX_WINDOW
                 ),
             );
         }
@@ -839,6 +874,21 @@ kind = "number"
             }) => (line, column, message),
             other => panic!("expected an invalid-config error, got {other:?}"),
         }
+    }
+
+    #[test]
+    fn old_drift_keys_still_load_and_change_nothing() {
+        let old = format!(
+            "{MINIMAL}\n[drift]\nks_alpha = 0.01\npsi_warn = 0.1\nmax_reference_rows = 5000\n"
+        );
+        let c = parse(&old).unwrap();
+        assert_eq!(c.drift.ignored_keys(), vec!["ks_alpha", "psi_warn"]);
+        assert_eq!(c.drift.rule(), crate::drift::Rule::default());
+        assert_eq!(c.drift.max_reference_rows, 5000);
+        // A bad new key is refused with its line.
+        let bad = format!("{MINIMAL}\n[drift]\nwindow = 3\n");
+        let e = parse(&bad).unwrap_err().to_string();
+        assert!(e.contains("window"), "{e}");
     }
 
     #[test]

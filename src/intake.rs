@@ -210,7 +210,7 @@ fn parse_and_measure(
     raw: &ingest::RawFile,
     limits: &Limits,
     path: &Path,
-) -> Result<Result<(ingest::Batch, Option<crate::drift::BatchReport>), Refusal>, StateError> {
+) -> Result<Result<(ingest::Batch, Option<crate::drift::Measurement>), Refusal>, StateError> {
     let batch = match ingest::parse(
         &raw.bytes,
         owner.store.schema(),
@@ -221,7 +221,9 @@ fn parse_and_measure(
         Err(refusal) => return Ok(Err(refusal)),
     };
     crate::failpoint::hit("intake:after-validate").map_err(io_at(path))?;
-    // Drift against the stored training rows, kept in the batch's entry.
+    // Drift against the stored training rows, kept in the batch's entry,
+    // judged against the columns' past distances (kept in the store and
+    // updated in the batch's own transaction).
     let drift = {
         // Both sides are thinned evenly: the tests' power is ample at the
         // default 20,000 rows, and the cost stays flat as the store grows.
@@ -230,18 +232,23 @@ fn parse_and_measure(
         let mut rows = crate::drift::thin(&batch.train, max);
         rows.extend(&crate::drift::thin(&batch.holdout, max / 4));
         let mut vocabs = owner.store.vocabularies().clone();
+        let known: std::collections::BTreeMap<usize, usize> =
+            vocabs.iter().map(|(c, v)| (*c, v.len())).collect();
         for (col, values) in &batch.new_categories {
             let v = vocabs.entry(*col).or_default();
             for value in values {
                 v.code_or_insert(value);
             }
         }
+        let past = owner.store.drift_history()?;
         crate::drift::batch_report(
             owner.store.schema(),
             &vocabs,
+            &known,
             &reference,
             &rows,
-            &owner.config.drift.thresholds(),
+            &past,
+            &owner.config.drift.rule(),
         )
     };
     Ok(Ok((batch, drift)))
@@ -257,7 +264,7 @@ fn commit_and_archive(
     name: &str,
     raw: &ingest::RawFile,
     batch: &ingest::Batch,
-    drift: Option<crate::drift::BatchReport>,
+    drift: Option<crate::drift::Measurement>,
     pending: &Path,
     user: &str,
     now: DateTime<Utc>,

@@ -6,6 +6,7 @@
 //! | tree      | key                                   | value                          |
 //! |-----------|---------------------------------------|--------------------------------|
 //! | `meta`    | name                                  | JSON or u64                    |
+//! | `meta`    | `drift_history/` + column name        | JSON `drift::PastDistances`    |
 //! | `batches` | `BatchId`                             | JSON `BatchRecord`             |
 //! | `hashes`  | blake3 of the file (32 bytes)         | `BatchId`                      |
 //! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s    |
@@ -144,6 +145,10 @@ pub const META_NEXT_MODEL: &[u8] = b"next_model";
 pub const META_CYCLES: &[u8] = b"cycles";
 /// The cycle that started and has not ended (u64, big-endian).
 pub const META_OPEN_CYCLE: &[u8] = b"open_cycle";
+/// Prefix of the per-column keys holding past batches' drift distances
+/// (at most `drift::MAX_WINDOW` numbers each, so far below 64 KiB). A store
+/// without them (written by an older version) starts with empty histories.
+pub const META_DRIFT_HISTORY: &[u8] = b"drift_history/";
 
 impl Store {
     /// Creates a new store at `path` (which must not exist yet).
@@ -647,6 +652,22 @@ impl Store {
             .unwrap_or(0))
     }
 
+    /// Every column's past drift distances, by column name. Keys that do
+    /// not parse are skipped (the column starts a new history).
+    pub fn drift_history(
+        &self,
+    ) -> Result<BTreeMap<String, crate::drift::PastDistances>, StoreError> {
+        let mut out = BTreeMap::new();
+        for kv in self.meta.scan_prefix(META_DRIFT_HISTORY) {
+            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+            let name = String::from_utf8_lossy(&k[META_DRIFT_HISTORY.len()..]).into_owned();
+            if let Ok(p) = serde_json::from_slice(&v) {
+                out.insert(name, p);
+            }
+        }
+        Ok(out)
+    }
+
     /// Records an event that touches no data (rejections, duplicates, …).
     pub fn record(
         &mut self,
@@ -664,18 +685,31 @@ impl Store {
     }
 
     /// Commits an accepted batch: rows, batch record, hash index, new
-    /// vocabulary, totals and the audit entry in one transaction, then makes
-    /// it durable. Returns the batch record and the sealed audit entry.
+    /// vocabulary, totals, the columns' drift histories and the audit entry
+    /// in one transaction, then makes it durable. Returns the batch record
+    /// and the sealed audit entry.
     pub fn commit_batch(
         &mut self,
         batch: &Batch,
         file: &str,
         hash: &blake3::Hash,
-        drift: Option<crate::drift::BatchReport>,
+        drift: Option<crate::drift::Measurement>,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<(BatchRecord, Entry), StoreError> {
         let id = self.next_batch_id();
+        let (drift, history) = match drift {
+            Some(m) => (Some(m.report), m.history),
+            None => (None, Vec::new()),
+        };
+        let history_values: Vec<(Vec<u8>, Vec<u8>)> = history
+            .iter()
+            .map(|(name, past)| {
+                let mut key = META_DRIFT_HISTORY.to_vec();
+                key.extend_from_slice(name.as_bytes());
+                (key, json(past))
+            })
+            .collect();
         let train_stats = ColumnStats::of_rows(&self.schema, &batch.train);
         let names = |ci: &usize| self.schema.columns[*ci].name.clone();
         let new_categories: BTreeMap<String, Vec<String>> = batch
@@ -764,6 +798,9 @@ impl Store {
                     batches.insert(&id.key()[..], record_json.as_slice())?;
                     hashes.insert(&hash.as_bytes()[..], &id.key()[..])?;
                     meta.insert(META_TOTALS, totals_json.as_slice())?;
+                    for (k, v) in &history_values {
+                        meta.insert(k.as_slice(), v.as_slice())?;
+                    }
                     audit.insert(&entry.seq.key()[..], line.as_slice())?;
                     Ok(())
                 },

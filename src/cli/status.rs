@@ -47,8 +47,18 @@ pub struct Summary {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct LastDrift {
     pub batch: crate::ids::BatchId,
+    /// Columns flagged by the rule against past batches.
     pub flagged: Vec<String>,
     pub reasons: Vec<String>,
+    /// How far the reference is built, while it is.
+    pub building: Option<String>,
+    /// "column: values (share of rows)" for category values never seen
+    /// before.
+    pub new_values: Vec<String>,
+    /// Columns flagged by an older version's fixed-level tests (entries
+    /// written before the rule against past batches; not drift flags).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub old_rule_flagged: Vec<String>,
 }
 
 /// A network's holdout loss beside the ridge baseline's on the same rows.
@@ -89,8 +99,25 @@ impl Summary {
                         reasons: d
                             .columns
                             .iter()
-                            .filter(|c| c.flagged)
+                            .filter(|c| c.drifted())
                             .map(|c| format!("{}: {}", c.column, c.reason))
+                            .collect(),
+                        building: d.building_text(),
+                        new_values: d
+                            .new_values()
+                            .into_iter()
+                            .map(|(col, values, share)| {
+                                format!(
+                                    "{col}: {} ({:.1}% of rows)",
+                                    values.join(", "),
+                                    100.0 * share
+                                )
+                            })
+                            .collect(),
+                        old_rule_flagged: d
+                            .old_rule_flagged()
+                            .iter()
+                            .map(|c| c.to_string())
                             .collect(),
                     });
                     s.batches += 1;
@@ -237,17 +264,34 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         }
     }
     if let Some(d) = &summary.last_drift {
-        if d.flagged.is_empty() {
-            out.push_str(&format!("drift       {}: no column flagged\n", d.batch));
-        } else {
+        if !d.flagged.is_empty() {
             out.push_str(&format!(
-                "drift       {}: {} flagged against the stored rows\n",
+                "drift       {}: {} far outside past batches\n",
                 d.batch,
                 d.flagged.join(", ")
             ));
             for r in &d.reasons {
                 out.push_str(&format!("            {r}\n"));
             }
+        } else if let Some(b) = &d.building {
+            out.push_str(&format!(
+                "drift       {}: {b}; a column is not flagged before that\n",
+                d.batch
+            ));
+        } else if !d.old_rule_flagged.is_empty() {
+            out.push_str(&format!(
+                "drift       {}: no flag by the rule against past batches (the old fixed-level tests named {})\n",
+                d.batch,
+                d.old_rule_flagged.join(", ")
+            ));
+        } else {
+            out.push_str(&format!(
+                "drift       {}: no column far outside past batches\n",
+                d.batch
+            ));
+        }
+        for v in &d.new_values {
+            out.push_str(&format!("new values  {v}\n"));
         }
     }
     if let Some(f) = &summary.fresh_check {

@@ -83,6 +83,11 @@ fn rig(daemon: &str) -> Rig {
 impl Rig {
     /// Publishes a file of `rows` rows with fresh ids (so never a duplicate).
     fn publish(&mut self, name: &str, rows: usize) -> PathBuf {
+        self.publish_warmer(name, rows, 0)
+    }
+
+    /// As `publish`, with every `temp` raised by `warmer`.
+    fn publish_warmer(&mut self, name: &str, rows: usize, warmer: usize) -> PathBuf {
         let mut text = String::from("id,city,temp,flag,y\n");
         for _ in 0..rows {
             let id = self.next_id;
@@ -90,7 +95,7 @@ impl Rig {
             text.push_str(&format!(
                 "{id},{},{}.5,x,{}\n",
                 ["Oslo", "Lima"][id % 2],
-                id % 30,
+                id % 30 + warmer,
                 id % 7
             ));
         }
@@ -227,18 +232,24 @@ fn a_burst_of_files_becomes_one_cycle_once_enough_rows_arrived() {
 
 #[test]
 fn a_drifting_batch_starts_a_cycle_below_min_new_rows() {
-    // Ids rise from file to file, so the second file's `id` column lies
-    // wholly above the stored one: its drift report flags it.
-    let mut r = rig("settle_seconds = 1.0\nmin_new_rows = 1000\non_drift = \"hold\"");
-    r.publish("a.csv", 40);
-    r.step(Event::InboxChanged);
-    r.tick_after(1000);
-    r.tick_after(1000);
+    // Four ordinary files build the drift reference (3 past batches with
+    // `min_batches = 3`); then a file whose `temp` lies wholly above the
+    // stored rows is far outside what past batches showed, and is flagged.
+    // The `id` column lies wholly above the stored one in every file: that
+    // is usual for this stream and never flagged.
+    let daemon = "settle_seconds = 1.0\nmin_new_rows = 1000\non_drift = \"hold\"\n\n[drift]\nmin_batches = 3";
+    let mut r = rig(daemon);
+    for name in ["a.csv", "b.csv", "c.csv", "d.csv"] {
+        r.publish(name, 40);
+        r.step(Event::InboxChanged);
+        r.tick_after(1000);
+        r.tick_after(1000);
+    }
     assert_eq!(
         r.daemon.cycles_started, 0,
-        "the first file has nothing to drift from"
+        "nothing is flagged while the reference is built, and ordinary files after"
     );
-    r.publish("b.csv", 40);
+    r.publish_warmer("e.csv", 40, 30);
     r.step(Event::InboxChanged);
     r.tick_after(1000);
     r.tick_after(1000);
@@ -249,14 +260,20 @@ fn a_drifting_batch_starts_a_cycle_below_min_new_rows() {
     r.finish_training();
     assert_eq!(r.count("cycle-started"), 1, "{:?}", r.kinds());
     // With the default "none" the same files start nothing.
-    let mut quiet = rig("settle_seconds = 1.0\nmin_new_rows = 1000");
-    for name in ["a.csv", "b.csv"] {
-        quiet.publish(name, 40);
+    let mut quiet = rig("settle_seconds = 1.0\nmin_new_rows = 1000\n\n[drift]\nmin_batches = 3");
+    for (name, warmer) in [
+        ("a.csv", 0),
+        ("b.csv", 0),
+        ("c.csv", 0),
+        ("d.csv", 0),
+        ("e.csv", 30),
+    ] {
+        quiet.publish_warmer(name, 40, warmer);
         quiet.step(Event::InboxChanged);
         quiet.tick_after(1000);
         quiet.tick_after(1000);
     }
-    assert_eq!(quiet.count("batch-accepted"), 2);
+    assert_eq!(quiet.count("batch-accepted"), 5);
     assert_eq!(quiet.daemon.cycles_started, 0);
 }
 

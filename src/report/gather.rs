@@ -67,6 +67,9 @@ pub enum Arrival {
         rows: u64,
         /// Drift-flagged columns of the batch.
         drifted: Vec<String>,
+        /// Category values never seen before, one "column: values (share)"
+        /// per column.
+        new_values: Vec<String>,
     },
     Rejected {
         problems: u64,
@@ -184,6 +187,18 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                         rows: *rows,
                         drifted: drift.as_ref().map_or_else(Vec::new, |d| {
                             d.flagged().into_iter().map(str::to_string).collect()
+                        }),
+                        new_values: drift.as_ref().map_or_else(Vec::new, |d| {
+                            d.new_values()
+                                .into_iter()
+                                .map(|(col, values, share)| {
+                                    format!(
+                                        "{col}: {} ({:.1}% of rows)",
+                                        values.join(", "),
+                                        100.0 * share
+                                    )
+                                })
+                                .collect()
                         }),
                     },
                     rows_stored: stored,

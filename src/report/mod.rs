@@ -451,7 +451,10 @@ fn checks(t: &Timeline) -> String {
         "Each accepted batch is scored by the serving model before anything trains on it: \
          \"shifted\" means its loss on the batch is significantly above its usual holdout loss \
          (p shift), \"regressed\" that the model it replaced does better on it (p regression). \
-         Drift compares each column of a batch with the stored training rows.",
+         Drift compares each column of a batch with the stored training rows and flags it only \
+         when that distance is far above the column's distances in its past batches (a robust z \
+         of the log distance over the last batches); the first batches only build that \
+         reference. Category values never seen before are listed as new values, not flagged.",
     );
     s.push_str("<h3>Fresh-data checks</h3>\n");
     if t.fresh.is_empty() {
@@ -503,6 +506,33 @@ fn checks(t: &Timeline) -> String {
             "drift",
             &["batch", "file", "flagged columns"],
             &drifted,
+            &[],
+        ));
+    }
+    s.push_str("<h3>New values</h3>\n");
+    let fresh_values: Vec<Vec<String>> = t
+        .files
+        .iter()
+        .filter_map(|f| match &f.what {
+            Arrival::Accepted {
+                batch, new_values, ..
+            } if !new_values.is_empty() => Some(vec![
+                batch.to_string(),
+                f.file.clone(),
+                new_values.join("; "),
+            ]),
+            _ => None,
+        })
+        .collect();
+    if fresh_values.is_empty() {
+        s.push_str(&missing(
+            "No batch after the first brought a category value never seen before.",
+        ));
+    } else {
+        s.push_str(&table(
+            "new-values",
+            &["batch", "file", "new values"],
+            &fresh_values,
             &[],
         ));
     }

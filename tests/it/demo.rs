@@ -56,6 +56,31 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
         .output()
         .unwrap();
     assert_eq!(code(&verify), 0, "{}", stdout(&verify));
+    // The day-level columns are never drift-flagged: every night has its
+    // own weekday and weather, and the rule judges a batch against past
+    // batches, not against independent rows.
+    let accepted = std::process::Command::new(bin)
+        .arg("--state")
+        .arg(&state)
+        .args(["--json", "log", "--kind", "batch-accepted"])
+        .output()
+        .unwrap();
+    let mut judged = 0;
+    for line in stdout(&accepted).lines() {
+        let e: serde_json::Value = serde_json::from_str(line).unwrap();
+        let Some(columns) = e["drift"]["columns"].as_array() else {
+            continue;
+        };
+        for c in columns {
+            if c["judged"]["verdict"] == "usual" || c["judged"]["verdict"] == "drift" {
+                judged += 1;
+            }
+            if c["column"] == "weekday" || c["column"] == "temp_c" {
+                assert_eq!(c["flagged"], false, "{}: {c}", e["file"]);
+            }
+        }
+    }
+    assert!(judged > 0, "the last nights are judged, not only building");
 }
 
 #[test]

@@ -665,15 +665,24 @@ fn in_approval_mode_a_regression_is_reported_not_acted_on() {
 }
 
 #[test]
-fn every_accepted_batch_carries_a_drift_report() {
-    let env = demo_with(&["01", "02"]);
+fn every_accepted_batch_carries_a_drift_report_judged_against_past_batches() {
+    // Every good night of the demo, one ingest each, as the nights arrive.
+    let nights = [
+        "01", "02", "03", "04", "06", "07", "08", "09", "10", "11", "12",
+    ];
+    let env = demo_with(&nights[..1]);
+    for n in &nights[1..] {
+        let out = env.ingest(&[night(n)]);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+    }
     let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    assert_eq!(accepted.len(), nights.len());
     assert!(
         accepted[0]["drift"].is_null(),
         "nothing to compare the first with"
     );
-    let d = &accepted[1]["drift"];
-    let col = |name: &str| {
+    let col = |b: usize, name: &str| {
+        let d = &accepted[b]["drift"];
         d["columns"]
             .as_array()
             .unwrap()
@@ -682,31 +691,68 @@ fn every_accepted_batch_carries_a_drift_report() {
             .unwrap_or_else(|| panic!("{name} in {d}"))
             .clone()
     };
-    // Night 2 is a Tuesday after a Monday: every row has an unseen weekday.
-    let weekday = col("weekday");
+    // Night 2 is a Tuesday after a Monday: every row has a new weekday. It
+    // is reported as a new value, with no distance and no flag.
+    let weekday = col(1, "weekday");
     assert_eq!(weekday["unseen_share"].as_f64(), Some(1.0));
-    assert_eq!(weekday["flagged"], true);
+    assert_eq!(weekday["new_values"], serde_json::json!(["Tue"]));
+    assert_eq!(weekday["flagged"], false);
+    assert_eq!(weekday["judged"]["verdict"], "no_distance");
+    assert_eq!(weekday["day_level"], true);
     // The same shops upload every night.
-    assert_eq!(col("shop")["flagged"], false);
-    assert_eq!(col("shop")["unseen_share"].as_f64(), Some(0.0));
-    // KS critical value: c(0.01)·sqrt((n+m)/(n·m)) with c(0.01) = 1.62762
-    // (two-sample Kolmogorov–Smirnov critical value formula; CHECKS.md).
-    let temp = col("temp_c");
-    let (n, m) = (
-        d["reference_rows"].as_f64().unwrap(),
-        accepted[1]["rows"].as_f64().unwrap(),
-    );
-    let want = 1.62762 * ((n + m) / (n * m)).sqrt();
-    assert!(
-        (temp["critical"].as_f64().unwrap() - want).abs() < 1e-4,
-        "{temp}"
-    );
-    assert_eq!(col("loaves_sold")["target"], true);
-    // status names the flagged columns of the last batch.
+    assert_eq!(col(1, "shop")["unseen_share"].as_f64(), Some(0.0));
+    assert_eq!(col(1, "loaves_sold")["target"], true);
+    for b in 1..accepted.len() {
+        // Each number column has one past distance per earlier batch with
+        // a report, kept in the store beside the batches (at most 28).
+        let temp = col(b, "temp_c");
+        assert_eq!(
+            temp["judged"]["past"].as_u64(),
+            Some((b as u64 - 1).min(28)),
+            "batch {}: {temp}",
+            b + 1
+        );
+        let building = b - 1 < 7;
+        assert_eq!(
+            temp["judged"]["verdict"] == "building",
+            building,
+            "batch {}: {temp}",
+            b + 1
+        );
+        // The day-level columns are never flagged, on any night.
+        for name in ["weekday", "temp_c"] {
+            assert_eq!(
+                col(b, name)["flagged"],
+                false,
+                "batch {}: {}",
+                b + 1,
+                col(b, name)
+            );
+        }
+    }
+    // Night 7 brings the new shop: a new value with its share of rows.
+    let shop = col(5, "shop");
+    assert_eq!(shop["new_values"], serde_json::json!(["Harwick Harbour"]));
+    let share = shop["unseen_share"].as_f64().unwrap();
+    assert!(share > 0.0 && share < 0.02, "{shop}");
+    // status and log say where the reference stands.
     let status = stdout(&env.run(&["status"]));
+    assert!(status.contains("drift"), "{status}");
+    let log = stdout(&env.run(&["log", "--kind", "batch-accepted"]));
+    // Night 3: one past distance for most columns; prev_day_sold has none
+    // (night 1 has no previous day). Each night so far brought a new
+    // weekday, which has no distance and is reported as new.
     assert!(
-        status.contains("drift") && status.contains("weekday"),
-        "{status}"
+        log.contains(
+            "new weekday: Wed; building the drift reference: 1 of 7 batches; prev_day_sold 0 of 7"
+        ),
+        "{log}"
+    );
+    // Night 10 (batch 9): judged, except the weekday (first distance on
+    // night 8) and prev_day_sold.
+    assert!(
+        log.contains("building the drift reference for weekday 2 of 7, prev_day_sold 6 of 7"),
+        "{log}"
     );
 }
 
