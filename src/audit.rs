@@ -82,9 +82,11 @@ pub enum Event {
         parent: Option<ModelId>,
         trained_through: BatchId,
         epochs: usize,
+        #[serde(with = "number")]
         seconds: f64,
         stop: String,
         holdout_rows: usize,
+        #[serde(with = "number")]
         holdout_loss: f64,
         /// blake3 of the checkpoint's manifest.json (which holds the other files' hashes).
         manifest_hash: String,
@@ -103,15 +105,19 @@ pub enum Event {
         cycle: u64,
         holdout_rows: usize,
         /// Mean holdout loss of the training mean / class frequencies.
+        #[serde(with = "number")]
         trivial_loss: f64,
         /// Mean holdout loss of ridge regression on the encoded inputs;
         /// absent when it could not be fitted (`ridge_problem` says why).
+        #[serde(default, with = "maybe_number")]
         ridge_loss: Option<f64>,
+        #[serde(with = "number")]
         ridge_lambda: f64,
         #[serde(default, skip_serializing_if = "Option::is_none")]
         ridge_problem: Option<String>,
         /// The serving model's mean loss on the same rows.
         serving: Option<ModelId>,
+        #[serde(default, with = "maybe_number")]
         serving_loss: Option<f64>,
     },
     /// A cycle that started was cut short (crash, kill, cancel); the serving
@@ -211,9 +217,17 @@ pub struct FreshEvidence {
     pub new_condition_rows: usize,
     /// ln(mean batch loss / mean holdout loss) of the serving model, and the
     /// prediction-interval p against earlier batches' levels.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub level: Option<f64>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub p_level: Option<f64>,
     /// Earlier batches the level was compared with.
     #[serde(default, skip_serializing_if = "is_zero")]
@@ -225,27 +239,50 @@ pub struct FreshEvidence {
     /// Evidence that the serving model is worse than its predecessor,
     /// gathered over this and earlier batches of its service, the evidence
     /// a rollback needs (1 / alpha), and the batches it rests on.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub evidence: Option<f64>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub evidence_needed: Option<f64>,
     #[serde(default, skip_serializing_if = "is_zero")]
     pub monitored_batches: usize,
+    #[serde(default, with = "maybe_number")]
     pub mean_loss_serving: Option<f64>,
     /// The serving model's mean loss on the stored holdout rows.
+    #[serde(default, with = "maybe_number")]
     pub mean_loss_reference: Option<f64>,
     /// One-sided Welch p that the fresh rows cost the serving model more
     /// (written by versions that tested rows as independent; now absent).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub p_shift: Option<f64>,
     /// The model the serving one replaced by promotion or approval.
     pub previous: Option<ModelId>,
+    #[serde(default, with = "maybe_number")]
     pub mean_loss_previous: Option<f64>,
     /// Paired t of serving − previous losses, and its one-sided p (written
     /// by versions that tested rows as independent; now absent).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub t: Option<f64>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub p_regression: Option<f64>,
     /// Category values whose rows carry the most loss above the reference.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
@@ -260,10 +297,13 @@ pub struct Hotspot {
     pub column: String,
     pub value: String,
     pub rows: usize,
+    #[serde(with = "number")]
     pub mean_loss: f64,
     /// Mean loss on stored holdout rows with the same value.
+    #[serde(with = "number")]
     pub usual_loss: f64,
     /// Σ (row loss − usual loss) over these rows.
+    #[serde(with = "number")]
     pub excess_loss: f64,
 }
 
@@ -287,13 +327,18 @@ pub struct GateEvidence {
     /// What the candidate was compared with: "serving" or "trivial".
     pub baseline: String,
     pub rows: usize,
+    #[serde(with = "number")]
     pub mean_loss_baseline: f64,
+    #[serde(with = "number")]
     pub mean_loss_candidate: f64,
+    #[serde(default, with = "maybe_number")]
     pub relative_improvement: Option<f64>,
     /// Paired t statistic; absent when it is infinite (all differences equal).
+    #[serde(default, with = "maybe_number")]
     pub t: Option<f64>,
     /// One-sided p-value that the candidate is better (after Holm's
     /// correction when several candidates were judged).
+    #[serde(with = "number")]
     pub p: f64,
     /// Batches the holdout rows came from (the test's clusters), and the
     /// batches a decision needs.
@@ -304,10 +349,18 @@ pub struct GateEvidence {
     /// Candidates judged together, and the candidate's own p before Holm.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub candidates: Option<usize>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub p_unadjusted: Option<f64>,
     /// Wilcoxon signed-rank one-sided p, recorded beside the t-test's.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
     pub wilcoxon_p: Option<f64>,
     pub new_rows: usize,
     pub old_rows: usize,
@@ -577,6 +630,99 @@ impl Event {
                 format!("{to} serves again instead of {from} ({how}): {reason}")
             }
         }
+    }
+}
+
+/// How a number that is not finite is written: JSON has no NaN or
+/// infinity (serde_json would write `null`, which no `f64` field reads
+/// back). So a non-finite number in an audit field is written as one of
+/// these strings, and read back as the same value. A `null` where a number
+/// belongs (written before this rule) reads as NaN, so older logs still
+/// parse; the chain hashes the line as written, so they still verify.
+pub const NOT_A_NUMBER: &str = "NaN";
+pub const PLUS_INFINITY: &str = "inf";
+pub const MINUS_INFINITY: &str = "-inf";
+
+fn marker(x: f64) -> &'static str {
+    if x.is_nan() {
+        NOT_A_NUMBER
+    } else if x > 0.0 {
+        PLUS_INFINITY
+    } else {
+        MINUS_INFINITY
+    }
+}
+
+/// Reads a number, a marker string, or `null` (NaN); see [`NOT_A_NUMBER`].
+struct NumberVisitor;
+
+impl<'de> serde::de::Visitor<'de> for NumberVisitor {
+    type Value = Option<f64>;
+
+    fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "a number, \"{NOT_A_NUMBER}\", \"{PLUS_INFINITY}\", \"{MINUS_INFINITY}\" or null"
+        )
+    }
+    fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Self::Value, E> {
+        Ok(Some(v))
+    }
+    fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Self::Value, E> {
+        Ok(Some(v as f64))
+    }
+    fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Self::Value, E> {
+        Ok(Some(v as f64))
+    }
+    fn visit_str<E: serde::de::Error>(self, v: &str) -> Result<Self::Value, E> {
+        match v {
+            NOT_A_NUMBER => Ok(Some(f64::NAN)),
+            PLUS_INFINITY => Ok(Some(f64::INFINITY)),
+            MINUS_INFINITY => Ok(Some(f64::NEG_INFINITY)),
+            _ => Err(E::invalid_value(serde::de::Unexpected::Str(v), &self)),
+        }
+    }
+    fn visit_unit<E: serde::de::Error>(self) -> Result<Self::Value, E> {
+        Ok(None)
+    }
+    fn visit_none<E: serde::de::Error>(self) -> Result<Self::Value, E> {
+        Ok(None)
+    }
+    fn visit_some<D: serde::Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
+        d.deserialize_any(NumberVisitor)
+    }
+}
+
+/// `#[serde(with)]` for an `f64` audit field.
+mod number {
+    use serde::{Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(x: &f64, s: S) -> Result<S::Ok, S::Error> {
+        if x.is_finite() {
+            s.serialize_f64(*x)
+        } else {
+            s.serialize_str(super::marker(*x))
+        }
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+        Ok(d.deserialize_any(super::NumberVisitor)?.unwrap_or(f64::NAN))
+    }
+}
+
+/// `#[serde(with)]` for an `Option<f64>` audit field (`null` is `None`).
+mod maybe_number {
+    use serde::{Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(x: &Option<f64>, s: S) -> Result<S::Ok, S::Error> {
+        match x {
+            Some(x) => super::number::serialize(x, s),
+            None => s.serialize_none(),
+        }
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<Option<f64>, D::Error> {
+        d.deserialize_any(super::NumberVisitor)
     }
 }
 
@@ -887,8 +1033,17 @@ impl Mirror {
     }
 
     /// Brings the file level with the store: drops a torn last line and
-    /// appends every stored entry the file lacks. Returns how many were
-    /// appended. Entries already in the file are never rewritten.
+    /// appends every stored entry the file lacks, by sequence number.
+    /// Returns how many were appended.
+    ///
+    /// The file normally holds the store's first entries, line for line.
+    /// When it does not, and every line past the point where it parts from
+    /// the store is one of the store's own entries out of place (an append
+    /// that failed while later ones succeeded, or one made twice), the file
+    /// is cut back to that point and the store's entries follow in order:
+    /// no text is lost that the store does not hold. A line that matches no
+    /// stored entry (an edit) is never rewritten; only entries after the
+    /// file's last one are appended, and `verify` reports the edit.
     pub fn catch_up(&self, stored: &[(AuditSeq, Vec<u8>)]) -> Result<usize, MirrorError> {
         let bytes = match fs::read(&self.path) {
             Ok(b) => b,
@@ -896,21 +1051,53 @@ impl Mirror {
             Err(e) => return Err(self.io(e)),
         };
         let complete = bytes.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
-        if complete < bytes.len() {
+        // (start offset, line) of each complete line.
+        let mut lines: Vec<(usize, &[u8])> = Vec::new();
+        let mut at = 0;
+        for piece in bytes[..complete].split(|&b| b == b'\n') {
+            if !piece.is_empty() {
+                lines.push((at, piece));
+            }
+            at += piece.len() + 1;
+        }
+        let stored_line = |seq: AuditSeq| {
+            stored
+                .binary_search_by_key(&seq, |(s, _)| *s)
+                .ok()
+                .map(|i| stored[i].1.as_slice())
+        };
+        let seq_of = |line: &[u8]| Entry::from_line(line).ok().map(|e| e.seq);
+        let in_step = lines
+            .iter()
+            .zip(stored)
+            .take_while(|((_, l), (_, s))| l == &s.as_slice())
+            .count();
+        let misplaced_own = lines[in_step..]
+            .iter()
+            .all(|(_, l)| seq_of(l).and_then(stored_line) == Some(*l));
+        let (keep, from) = if in_step == lines.len() || misplaced_own {
+            let keep = lines.get(in_step).map_or(complete, |(start, _)| *start);
+            (keep, in_step)
+        } else {
+            // An edited line: leave the file as it is, add what follows it.
+            let last = lines.last().and_then(|(_, l)| seq_of(l));
+            let from = match last {
+                Some(seq) => stored.partition_point(|(s, _)| *s <= seq),
+                None => lines.len(),
+            };
+            (complete, from)
+        };
+        if keep < bytes.len() {
             let f = fs::OpenOptions::new()
                 .write(true)
                 .open(&self.path)
                 .map_err(|e| self.io(e))?;
-            f.set_len(complete as u64).map_err(|e| self.io(e))?;
+            f.set_len(keep as u64).map_err(|e| self.io(e))?;
             f.sync_all().map_err(|e| self.io(e))?;
         }
-        let have = bytes[..complete]
-            .split(|&b| b == b'\n')
-            .filter(|l| !l.is_empty())
-            .count();
         let missing: Vec<&[u8]> = stored
             .iter()
-            .skip(have)
+            .skip(from)
             .map(|(_, l)| l.as_slice())
             .collect();
         self.append(&missing)?;
@@ -1037,6 +1224,131 @@ mod tests {
         assert_eq!(check(&lines).unwrap().len(), 4);
     }
 
+    fn trained(prev: &str, seq: u64, seconds: f64, loss: f64) -> Entry {
+        Entry::seal(
+            AuditSeq(seq),
+            t("2026-12-01T00:00:00Z"),
+            "ana",
+            Event::CandidateTrained {
+                cycle: 1,
+                model: ModelId(1),
+                run: "warm".into(),
+                parent: None,
+                trained_through: BatchId(1),
+                epochs: 3,
+                seconds,
+                stop: "Budget".into(),
+                holdout_rows: 10,
+                holdout_loss: loss,
+                manifest_hash: "00".into(),
+                widened: BTreeMap::new(),
+                rescaled: Vec::new(),
+            },
+            prev,
+        )
+    }
+
+    fn same(a: f64, b: f64) -> bool {
+        a == b || (a.is_nan() && b.is_nan())
+    }
+
+    #[test]
+    fn non_finite_numbers_are_written_as_markers_and_read_back() {
+        let specials = [f64::NAN, f64::INFINITY, f64::NEG_INFINITY, 1.5];
+        let mut prev = GENESIS.to_string();
+        let mut lines = Vec::new();
+        for (i, &x) in specials.iter().enumerate() {
+            let seq = i as u64 * 2 + 1;
+            let e = trained(&prev, seq, 2.0, x);
+            prev = e.hash.clone();
+            lines.push(e.line().into_bytes());
+            let hot = Hotspot {
+                column: "town".into(),
+                value: "Corrin".into(),
+                rows: 3,
+                mean_loss: x,
+                usual_loss: 1.0,
+                excess_loss: -x,
+            };
+            let fresh = Entry::seal(
+                AuditSeq(seq + 1),
+                t("2026-12-01T00:00:00Z"),
+                "ana",
+                Event::FreshChecked {
+                    check: FreshEvidence {
+                        batch: BatchId(2),
+                        rows: 3,
+                        serving: ModelId(1),
+                        verdict: "steady".into(),
+                        tested_rows: Some(3),
+                        new_conditions: BTreeMap::new(),
+                        new_condition_rows: 0,
+                        level: Some(x),
+                        p_level: None,
+                        level_history: 0,
+                        shifted_values: vec![],
+                        evidence: Some(x),
+                        evidence_needed: Some(20.0),
+                        monitored_batches: 1,
+                        mean_loss_serving: Some(x),
+                        mean_loss_reference: None,
+                        p_shift: Some(x),
+                        previous: None,
+                        mean_loss_previous: None,
+                        t: Some(-x),
+                        p_regression: None,
+                        hotspots: vec![hot],
+                        reason: "r".into(),
+                    },
+                },
+                &prev,
+            );
+            prev = fresh.hash.clone();
+            lines.push(fresh.line().into_bytes());
+        }
+        let text: Vec<String> = lines
+            .iter()
+            .map(|l| String::from_utf8(l.clone()).unwrap())
+            .collect();
+        assert!(text[0].contains(r#""holdout_loss":"NaN""#), "{}", text[0]);
+        assert!(text[2].contains(r#""holdout_loss":"inf""#), "{}", text[2]);
+        assert!(text[4].contains(r#""holdout_loss":"-inf""#), "{}", text[4]);
+        assert!(text[6].contains(r#""holdout_loss":1.5"#), "{}", text[6]);
+        let parsed = check(&lines).unwrap();
+        for (i, &x) in specials.iter().enumerate() {
+            let Event::CandidateTrained { holdout_loss, .. } = parsed[i * 2].event else {
+                panic!("kind")
+            };
+            assert!(same(holdout_loss, x), "{holdout_loss} read back for {x}");
+            let Event::FreshChecked { check } = &parsed[i * 2 + 1].event else {
+                panic!("kind")
+            };
+            assert!(same(check.mean_loss_serving.unwrap(), x));
+            assert!(same(check.t.unwrap(), -x));
+            assert!(same(check.level.unwrap(), x));
+            assert!(same(check.evidence.unwrap(), x));
+            assert_eq!(check.p_level, None);
+            assert!(same(check.hotspots[0].mean_loss, x));
+            assert!(same(check.hotspots[0].excess_loss, -x));
+            assert_eq!(check.mean_loss_reference, None);
+        }
+    }
+
+    #[test]
+    fn a_null_number_written_by_an_older_build_reads_as_nan_and_verifies() {
+        // What serde_json wrote for a NaN before markers: `null`, hashed as such.
+        let mut value = serde_json::to_value(trained(GENESIS, 1, 2.0, 0.5)).unwrap();
+        value["holdout_loss"] = serde_json::Value::Null;
+        value["hash"] = serde_json::Value::String(content_hash(&value));
+        let line = serde_json::to_vec(&value).unwrap();
+        let parsed = check(&[line]).unwrap();
+        let Event::CandidateTrained { holdout_loss, .. } = parsed[0].event else {
+            panic!("kind")
+        };
+        assert!(holdout_loss.is_nan());
+        assert!(Entry::from_line(br#"{"x":1}"#).is_err());
+    }
+
     #[test]
     fn filters() {
         let entries = chain(6);
@@ -1086,6 +1398,52 @@ mod tests {
         assert!(parse_when("yesterday", now).is_err());
         assert!(parse_when("-3d", now).is_err());
         assert!(parse_when("d", now).is_err());
+    }
+
+    fn stored_of(entries: &[Entry]) -> Vec<(AuditSeq, Vec<u8>)> {
+        entries
+            .iter()
+            .map(|e| (e.seq, e.line().into_bytes()))
+            .collect()
+    }
+
+    #[test]
+    fn mirror_catch_up_fills_a_gap_left_by_a_failed_append() {
+        let dir = tempfile::tempdir().unwrap();
+        let m = Mirror::new(dir.path().join("audit.jsonl"));
+        let stored = stored_of(&chain(5));
+        // Entry 4's append failed and the process went on to append entry 5.
+        for i in [0, 1, 2, 4] {
+            m.append(&[&stored[i].1]).unwrap();
+        }
+        assert_eq!(m.catch_up(&stored).unwrap(), 2);
+        assert_eq!(check(&m.read_lines().unwrap()).unwrap().len(), 5);
+        assert_eq!(m.catch_up(&stored).unwrap(), 0);
+        // An entry appended twice (a retried append) is dropped again.
+        let dir = tempfile::tempdir().unwrap();
+        let m = Mirror::new(dir.path().join("audit.jsonl"));
+        for i in [0, 1, 1, 2] {
+            m.append(&[&stored[i].1]).unwrap();
+        }
+        m.catch_up(&stored).unwrap();
+        assert_eq!(check(&m.read_lines().unwrap()).unwrap().len(), 5);
+    }
+
+    #[test]
+    fn mirror_catch_up_never_rewrites_an_edited_line() {
+        let dir = tempfile::tempdir().unwrap();
+        let m = Mirror::new(dir.path().join("audit.jsonl"));
+        let stored = stored_of(&chain(5));
+        let edited = String::from_utf8(stored[1].1.clone())
+            .unwrap()
+            .replace("f2.csv", "g2.csv");
+        m.append(&[&stored[0].1, edited.as_bytes(), &stored[2].1])
+            .unwrap();
+        assert_eq!(m.catch_up(&stored).unwrap(), 2);
+        let lines = m.read_lines().unwrap();
+        assert_eq!(lines.len(), 5);
+        assert_eq!(lines[1], edited.as_bytes(), "the evidence stays");
+        assert_eq!(check(&lines).unwrap_err().seq, 2);
     }
 
     #[test]

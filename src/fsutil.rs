@@ -14,7 +14,25 @@ pub fn sync_file(path: &Path) -> std::io::Result<()> {
 }
 
 pub fn sync_dir(path: &Path) -> std::io::Result<()> {
+    #[cfg(test)]
+    SYNCED_DIRS.with(|s| s.borrow_mut().push(path.to_path_buf()));
     fs::File::open(path)?.sync_all()
+}
+
+// Folders this thread synced, so unit tests can check that a rename was
+// made durable.
+#[cfg(test)]
+thread_local! {
+    pub static SYNCED_DIRS: std::cell::RefCell<Vec<PathBuf>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
+/// The folder a path lives in: its parent, or `.` for a bare file name
+/// (whose parent is the empty path, which cannot be opened to sync).
+pub fn parent_dir(path: &Path) -> &Path {
+    match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    }
 }
 
 fn temp_path(dest: &Path) -> PathBuf {
@@ -22,8 +40,7 @@ fn temp_path(dest: &Path) -> PathBuf {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let dir = dest.parent().unwrap_or(Path::new("."));
-    dir.join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
+    parent_dir(dest).join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
 }
 
 /// Creates (or truncates) `path`, writes `bytes` and fsyncs the file.
@@ -44,7 +61,7 @@ pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let result = (|| {
         write_synced(&tmp, bytes)?;
         fs::rename(&tmp, dest)?;
-        sync_dir(dest.parent().unwrap_or(Path::new(".")))
+        sync_dir(parent_dir(dest))
     })();
     if result.is_err() {
         let _ = fs::remove_file(&tmp);
@@ -65,7 +82,7 @@ pub fn write_new(dest: &Path, bytes: &[u8]) -> std::io::Result<bool> {
             Err(e) => return Err(e),
         };
         fs::remove_file(&tmp)?;
-        sync_dir(dest.parent().unwrap_or(Path::new(".")))?;
+        sync_dir(parent_dir(dest))?;
         Ok(created)
     })();
     if result.is_err() {

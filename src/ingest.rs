@@ -135,15 +135,17 @@ pub fn read_file(path: &Path, max_bytes: u64) -> Result<RawFile, ReadError> {
     })
 }
 
+/// O_NOFOLLOW | O_NONBLOCK: a link swapped in after the check fails to
+/// open, and a FIFO swapped in does not block the open. The values differ
+/// between architectures (O_NOFOLLOW is 0o400000 on x86_64 and 0o100000 on
+/// aarch64, where 0o400000 is O_LARGEFILE), so they come from libc.
+const OPEN_FLAGS: i32 = libc::O_NOFOLLOW | libc::O_NONBLOCK;
+
 fn open_no_follow(path: &Path) -> std::io::Result<fs::File> {
     use std::os::unix::fs::OpenOptionsExt;
-    // O_NOFOLLOW | O_NONBLOCK: a link swapped in after the check fails to
-    // open, and a FIFO swapped in does not block the open.
-    const O_NOFOLLOW: i32 = 0o400000;
-    const O_NONBLOCK: i32 = 0o4000;
     fs::OpenOptions::new()
         .read(true)
-        .custom_flags(O_NOFOLLOW | O_NONBLOCK)
+        .custom_flags(OPEN_FLAGS)
         .open(path)
 }
 
@@ -166,7 +168,18 @@ pub struct Problem {
 
 impl std::fmt::Display for Problem {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        write!(f, "line {}", self.line)?;
+        if self.line == 0 && self.column.is_none() && self.value.is_none() {
+            // A problem of the whole file, not of a line: its reason says so.
+            if self.reason.starts_with("the file") {
+                return write!(f, "{}", self.reason);
+            }
+            return write!(f, "the file: {}", self.reason);
+        }
+        if self.line == 0 {
+            write!(f, "the file")?;
+        } else {
+            write!(f, "line {}", self.line)?;
+        }
         if let Some(c) = &self.column {
             write!(f, ", column {c:?}")?;
             if let Some(i) = self.field {
@@ -522,6 +535,14 @@ fn count_byte(bytes: &[u8], needle: u8) -> usize {
     n + chunks.remainder().iter().filter(|&&b| b == needle).count()
 }
 
+/// The first field of a record that is not valid UTF-8, and the byte in it
+/// where the bad sequence starts (both 0-based).
+fn first_non_utf8(rec: &csv::ByteRecord) -> Option<(usize, usize)> {
+    rec.iter()
+        .enumerate()
+        .find_map(|(i, f)| std::str::from_utf8(f).err().map(|e| (i, e.valid_up_to())))
+}
+
 fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
     let schema = cx.schema;
     let limits = cx.limits;
@@ -605,7 +626,16 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
                 column: None,
                 field: None,
                 value: None,
-                reason: if odd_quotes && rec.iter().any(|f| f.contains(&b'\n')) {
+                reason: if let Some((fi, at)) = first_non_utf8(&rec) {
+                    // Another encoding splits rows in ways UTF-8 does not
+                    // expect; the count is a symptom, the encoding the cause.
+                    format!(
+                        "the row is not valid UTF-8 (field {}, byte {}) and has {} fields where the header has {n_fields}; the file seems to be in another encoding (such as Latin-1, Windows-1252 or UTF-16): save it as UTF-8",
+                        fi + 1,
+                        at + 1,
+                        rec.len()
+                    )
+                } else if odd_quotes && rec.iter().any(|f| f.contains(&b'\n')) {
                     format!("the row has {} fields but the header has {n_fields}: a quote (\") opened in this row is never closed", rec.len())
                 } else {
                     format!("the row has {} fields but the header has {n_fields}; every row needs one field per column (quote fields that contain commas)", rec.len())
@@ -1259,5 +1289,26 @@ mod tests {
             }
             assert!(cuts.len() > 2, "the file was cut: {cuts:?}");
         }
+    }
+
+    #[test]
+    fn the_open_refuses_a_link_and_does_not_block_on_a_fifo() {
+        let dir = tempfile::tempdir().unwrap();
+        let target = dir.path().join("real.csv");
+        fs::write(&target, "a\n").unwrap();
+        let link = dir.path().join("link.csv");
+        std::os::unix::fs::symlink(&target, &link).unwrap();
+        // Straight at the open, past read_file's own lstat check: this is
+        // what stops a link swapped in between the check and the open.
+        let e = open_no_follow(&link).unwrap_err();
+        assert_eq!(e.raw_os_error(), Some(libc::ELOOP), "{e}");
+        assert!(open_no_follow(&target).is_ok());
+        let fifo = dir.path().join("pipe");
+        let c = std::ffi::CString::new(fifo.as_os_str().as_encoded_bytes()).unwrap();
+        // SAFETY: a valid NUL-terminated path.
+        assert_eq!(unsafe { libc::mkfifo(c.as_ptr(), 0o600) }, 0);
+        // Without O_NONBLOCK this open would wait for a writer forever.
+        assert!(open_no_follow(&fifo).is_ok());
+        assert_eq!(OPEN_FLAGS & libc::O_NOFOLLOW, libc::O_NOFOLLOW);
     }
 }

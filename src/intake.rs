@@ -98,6 +98,16 @@ fn display_name(path: &Path) -> String {
     )
 }
 
+/// The name a refused file's copy and reasons get under `rejected/`: only
+/// the path's last component, so nothing is written outside the state
+/// dir. A path without one (`/`, `dir/..`) is kept as `unnamed`.
+fn kept_name(path: &Path) -> String {
+    path.file_name().map_or_else(
+        || "unnamed".to_string(),
+        |n| n.to_string_lossy().into_owned(),
+    )
+}
+
 fn pending_path(state: &StateDir, hash: &blake3::Hash) -> PathBuf {
     state
         .archive()
@@ -302,27 +312,33 @@ fn reject(
     // Keep the refused bytes under the file's own name; a different file
     // that reuses the name gets its hash added rather than overwriting.
     let mut kept_as = None;
+    let own = kept_name(path);
     if let Some(raw) = raw {
-        let mut dest = rejected.join(name);
+        let mut dest = rejected.join(&own);
         let same = fs::read(&dest).map(|b| b == raw.bytes).unwrap_or(false);
         if dest.exists() && !same {
             let short = &raw.hash.to_hex()[..12];
-            dest = rejected.join(format!("{name}.{short}"));
+            dest = rejected.join(format!("{own}.{short}"));
         }
         fsutil::write_new(&dest, &raw.bytes).map_err(io_at(&dest))?;
         kept_as = Some(dest);
     } else if source == Source::Inbox {
         // Links, special and oversized files are moved aside unread.
-        let mut dest = rejected.join(name);
+        let mut dest = rejected.join(&own);
         if fs::symlink_metadata(&dest).is_ok() {
-            dest = rejected.join(format!("{name}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
+            dest = rejected.join(format!("{own}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
         }
         fs::rename(path, &dest).map_err(io_at(path))?;
+        // Both folders changed: without their fsync the link could be
+        // back in the inbox after a power loss.
+        fsutil::sync_dir(&rejected).map_err(io_at(&rejected))?;
+        let inbox = fsutil::parent_dir(path);
+        fsutil::sync_dir(inbox).map_err(io_at(inbox))?;
         kept_as = Some(dest);
     }
     let why_name = match &kept_as {
         Some(p) => format!("{}.why.json", display_name(p)),
-        None => format!("{name}.why.json"),
+        None => format!("{own}.why.json"),
     };
     let why_path = rejected.join(&why_name);
     let why = Why {
@@ -369,9 +385,8 @@ fn remove_source(path: &Path, source: Source) -> Result<(), StateError> {
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
             Err(e) => return Err(io_at(path)(e)),
         }
-        if let Some(dir) = path.parent() {
-            fsutil::sync_dir(dir).map_err(io_at(dir))?;
-        }
+        let dir = fsutil::parent_dir(path);
+        fsutil::sync_dir(dir).map_err(io_at(dir))?;
     }
     Ok(())
 }
@@ -414,4 +429,39 @@ pub fn settle_pending(state: &StateDir, store: &Store) -> Result<(usize, usize),
         fsutil::sync_dir(&dir).map_err(io_at(&dir))?;
     }
     Ok(counts)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Config;
+
+    const SMALL: &str = include_str!("../tests/data/small.toml");
+
+    #[test]
+    fn a_refused_link_leaves_the_inbox_durably() {
+        let dir = tempfile::tempdir().unwrap();
+        let state = StateDir::new(dir.path().join("state"));
+        let config = Config::parse(SMALL, Path::new("small.toml")).unwrap();
+        let mut owner = crate::state::create(&state, &config, SMALL, "ana").unwrap();
+        let target = dir.path().join("elsewhere.csv");
+        fs::write(&target, "id,city,temp,flag,y\n").unwrap();
+        let link = state.inbox().join("night.csv");
+        std::os::unix::fs::symlink(&target, &link).unwrap();
+        fsutil::SYNCED_DIRS.with(|s| s.borrow_mut().clear());
+        let outcome = take_file(&mut owner, &link, Source::Inbox, "ana", Utc::now()).unwrap();
+        assert!(outcome.is_rejected(), "{outcome:?}");
+        assert!(
+            fs::symlink_metadata(&link).is_err(),
+            "the link left the inbox"
+        );
+        let synced = fsutil::SYNCED_DIRS.with(|s| s.borrow().clone());
+        for folder in [state.inbox(), state.rejected()] {
+            assert!(
+                synced.contains(&folder),
+                "{} was not synced after the move: {synced:?}",
+                folder.display()
+            );
+        }
+    }
 }

@@ -45,7 +45,7 @@ fn main() -> ExitCode {
         Err(err) => {
             let code = cli::exit_for(&err);
             if code != Exit::Ok {
-                eprintln!("error: {err:#}");
+                eprintln!("error: {}", cli::error_text(&err));
             }
             ExitCode::from(code as u8)
         }

@@ -76,9 +76,39 @@ mod tests {
             mean.abs() < 0.02 && (var - 1.0).abs() < 0.03,
             "{mean} {var}"
         );
-        let mut v: Vec<usize> = (0..10).collect();
-        r.shuffle(&mut v);
-        v.sort();
-        assert_eq!(v, (0..10).collect::<Vec<_>>());
+    }
+
+    #[test]
+    fn shuffle_gives_every_order_equally_often() {
+        // All 24 orders of four items should come up about equally often:
+        // an identity "shuffle", a swap with the wrong range (only cyclic
+        // orders, or a bias towards some) or a lost item all fail this.
+        let mut r = Rng::new(11);
+        let n = 24_000;
+        let mut counts = std::collections::BTreeMap::new();
+        for _ in 0..n {
+            let mut v = [0u8, 1, 2, 3];
+            r.shuffle(&mut v);
+            *counts.entry(v).or_insert(0u32) += 1;
+        }
+        assert_eq!(counts.len(), 24, "every order appears: {counts:?}");
+        for order in counts.keys() {
+            let mut sorted = *order;
+            sorted.sort();
+            assert_eq!(sorted, [0, 1, 2, 3], "a permutation of the input");
+        }
+        let expected = f64::from(n) / 24.0;
+        let chi2: f64 = counts
+            .values()
+            .map(|&c| (f64::from(c) - expected).powi(2) / expected)
+            .sum();
+        // Chi-square with 23 df: 49.73 is its 0.999 quantile (from memory;
+        // checked here against statrs, a reference library).
+        let limit = statrs::distribution::ContinuousCDF::inverse_cdf(
+            &statrs::distribution::ChiSquared::new(23.0).unwrap(),
+            0.999,
+        );
+        assert!((limit - 49.73).abs() < 0.01, "{limit}");
+        assert!(chi2 < limit, "chi-square {chi2} over 24 orders: {counts:?}");
     }
 }

@@ -391,11 +391,16 @@ impl Store {
         let hi = to.unwrap_or(BatchId(u64::MAX));
         for kv in self.chunks.range(lo.key()..) {
             let (k, v) = kv.map_err(|e| self.sled_err(e))?;
-            let id = BatchId::from_key(&k[..8]).ok_or_else(|| self.corrupt("bad chunk key"))?;
+            // A key too short for its batch id and split byte is damage,
+            // not a reason to panic.
+            let (Some(id), Some(&split_byte)) = (k.get(..8).and_then(BatchId::from_key), k.get(8))
+            else {
+                return Err(self.corrupt(format!("bad chunk key {:02x?}", &k[..])));
+            };
             if id > hi {
                 break;
             }
-            if k[8] != split.byte() {
+            if split_byte != split.byte() {
                 continue;
             }
             out.extend(&self.decode_chunk(id, &v)?);

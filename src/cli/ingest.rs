@@ -31,9 +31,22 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         tracing::info!("recovered after an interrupted run: {recovery:?}");
     }
     let user = state::current_user();
-    let (out, exit) = take_files(&mut owner, None, &args.files, cli.json, &user)?;
-    emit(&out)?;
-    Ok(exit)
+    let taken = take_files(&mut owner, None, &args.files, cli.json, &user)?;
+    emit(&taken.stdout)?;
+    if let Some(e) = &taken.error {
+        eprintln!("error: {e}");
+    }
+    Ok(taken.exit)
+}
+
+/// What `ingest` prints: one result line (or JSON object) per file on
+/// stdout, whatever its outcome, and on stderr why the exit code is not 0
+/// (one `error:` line per refused or unready file).
+pub(crate) struct Taken {
+    pub stdout: String,
+    /// Without the first `error: ` prefix (the printer adds it).
+    pub error: Option<String>,
+    pub exit: Exit,
 }
 
 /// Takes each file through intake and renders the outcomes (text or JSON
@@ -45,10 +58,11 @@ pub(crate) fn take_files(
     files: &[PathBuf],
     json_out: bool,
     user: &str,
-) -> anyhow::Result<(String, Exit)> {
+) -> anyhow::Result<Taken> {
     let state = &owner.state.clone();
     let mut exit = Exit::Ok;
     let mut out = String::new();
+    let mut errors: Vec<String> = Vec::new();
     for file in files {
         let path = base.map_or_else(|| file.clone(), |b| b.join(file));
         let outcome = intake::take_file(owner, &path, Source::Keep, user, chrono::Utc::now())?;
@@ -95,6 +109,7 @@ pub(crate) fn take_files(
                 if let Some(w) = &why {
                     d.push_str(&format!("; all problems in {w}"));
                 }
+                errors.push(format!("{shown_file}: {d}"));
                 (
                     "rejected",
                     d,
@@ -103,6 +118,7 @@ pub(crate) fn take_files(
             }
             Outcome::NotReady { reason } => {
                 exit = Exit::Failure;
+                errors.push(format!("{shown_file}: not taken: {reason}"));
                 (
                     "not-ready",
                     reason.clone(),
@@ -136,5 +152,9 @@ pub(crate) fn take_files(
             out.push_str(&format!("{shown_file}: {status}: {detail}\n"));
         }
     }
-    Ok((out, exit))
+    Ok(Taken {
+        stdout: out,
+        error: (!errors.is_empty()).then(|| errors.join("\nerror: ")),
+        exit,
+    })
 }

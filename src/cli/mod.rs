@@ -28,7 +28,7 @@ use clap::{Parser, Subcommand};
 pub(crate) use backup::render_backup;
 pub(crate) use ingest::take_files as ingest_files;
 pub(crate) use retrain::render as render_cycle;
-pub(crate) use verify::render as render_verify;
+pub(crate) use verify::{error as verify_error, render as render_verify};
 
 use crate::config::{Config, ConfigError};
 use crate::state::{StateDir, StateError};
@@ -42,6 +42,8 @@ pub enum Exit {
     Usage = 2,
     BadData = 65,
     Busy = 75,
+    /// The daemon refused a control connection from another uid.
+    Refused = 77,
     BadConfig = 78,
 }
 
@@ -150,6 +152,24 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
 }
 
 /// The exit code for a failure, from the error's cause.
+/// An error and its causes on one line, each cause once: many errors
+/// already quote their cause in their own message ("PATH: CAUSE"), and
+/// printing the chain as well would say it twice.
+pub fn error_text(err: &anyhow::Error) -> String {
+    let mut out = String::new();
+    for cause in err.chain() {
+        let text = cause.to_string();
+        if out.contains(&text) {
+            continue;
+        }
+        if !out.is_empty() {
+            out.push_str(": ");
+        }
+        out.push_str(&text);
+    }
+    out
+}
+
 pub fn exit_for(err: &anyhow::Error) -> Exit {
     for cause in err.chain() {
         if let Some(e) = cause.downcast_ref::<StoreError>() {

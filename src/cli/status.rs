@@ -210,11 +210,21 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let owner = state::owner_pid(state);
     let daemon = crate::daemon::client::ping(state);
     let recent: Vec<&Entry> = entries.iter().rev().take(args.recent).rev().collect();
+    // The configured inbox when the config reads, else the default one.
+    let inbox_dir = super::load_config(cli, state).map_or_else(
+        |_| state.inbox(),
+        |c| crate::daemon::event_loop::inbox_of(state, &c),
+    );
+    let inbox = crate::daemon::inbox::contents(&inbox_dir).unwrap_or_else(|e| {
+        tracing::warn!("cannot list the inbox {}: {e}", inbox_dir.display());
+        Default::default()
+    });
     if cli.json {
         let v = serde_json::json!({
             "state": state.root(),
             "owner_pid": owner,
             "daemon": daemon,
+            "inbox": inbox,
             "summary": summary,
             "recent": recent,
         });
@@ -314,6 +324,18 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         "files       {} rejected, {} duplicates\n",
         summary.rejected_files, summary.duplicate_files
     ));
+    if !inbox.waiting.is_empty() || !inbox.being_written.is_empty() {
+        out.push_str(&format!(
+            "inbox       {} waiting to be taken by the daemon\n",
+            inbox.waiting.len()
+        ));
+    }
+    if !inbox.being_written.is_empty() {
+        out.push_str(&format!(
+            "            ignored until renamed to a name without a leading dot or `.part`: {}\n",
+            inbox.being_written.join(", ")
+        ));
+    }
     for (col, values) in &summary.vocabularies {
         const SHOWN: usize = 8;
         let mut list = values

@@ -19,7 +19,18 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
     let result = verify::check(&owner)?;
     let (text, exit) = render(&result, cli.json);
     emit(&text)?;
+    if let Some(e) = error(&result) {
+        eprintln!("error: {e}");
+    }
     Ok(exit)
+}
+
+/// The stderr line of a failed check (stdout carries the result either way).
+pub(crate) fn error(result: &Result<verify::Report, verify::Problem>) -> Option<String> {
+    result
+        .as_ref()
+        .err()
+        .map(|p| format!("verify found a problem: {p}"))
 }
 
 /// The check's result as printed, with its exit code; the daemon answers

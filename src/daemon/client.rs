@@ -83,6 +83,7 @@ fn exit_from(code: u8) -> Exit {
         2 => Exit::Usage,
         65 => Exit::BadData,
         75 => Exit::Busy,
+        77 => Exit::Refused,
         78 => Exit::BadConfig,
         _ => Exit::Failure,
     }

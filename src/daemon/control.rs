@@ -1,5 +1,7 @@
 //! The control socket `state/control.sock`: mode 0600, peers with another
-//! uid refused (SO_PEERCRED), one request and one answer per connection.
+//! uid refused (SO_PEERCRED, exit 77), one request and one answer per
+//! connection. The acting user written to the audit log is the account
+//! name of the peer's uid, not the name the client sends.
 //!
 //! `ping` is answered here from the published status, so it never waits
 //! for the loop. Every other request becomes an `Event::Control` for the
@@ -86,12 +88,12 @@ fn connection(stream: &UnixStream, events: &Sender<Event>, shared: &Shared) {
 
 fn answer_for(stream: &UnixStream, events: &Sender<Event>, shared: &Shared) -> Answer {
     let ours = current_uid();
-    match peer_uid(stream) {
-        Ok(uid) if uid == ours => {}
+    let peer = match peer_uid(stream) {
+        Ok(uid) if uid == ours => uid,
         Ok(uid) => {
             tracing::warn!("refused a control connection from uid {uid}");
             return Answer::failed(
-                Exit::Busy as u8,
+                Exit::Refused as u8,
                 format!(
                     "refused: the daemon runs as uid {ours} and only takes commands from that uid (you are {uid})"
                 ),
@@ -100,10 +102,10 @@ fn answer_for(stream: &UnixStream, events: &Sender<Event>, shared: &Shared) -> A
         Err(e) => {
             return Answer::failed(Exit::Failure as u8, format!("cannot check the peer: {e}"));
         }
-    }
+    };
     let _ = stream.set_read_timeout(Some(Duration::from_secs(5)));
     let _ = stream.set_write_timeout(Some(Duration::from_secs(10)));
-    let envelope: Envelope =
+    let mut envelope: Envelope =
         match protocol::read_message(BufReader::new(stream), protocol::MAX_REQUEST_BYTES) {
             Ok(e) => e,
             Err(e) => return Answer::failed(Exit::Usage as u8, format!("bad request: {e}")),
@@ -118,6 +120,9 @@ fn answer_for(stream: &UnixStream, events: &Sender<Event>, shared: &Shared) -> A
             ),
         );
     }
+    // The client's own idea of its name ($USER) is not evidence; the
+    // kernel's word on the peer's uid is.
+    envelope.user = user_name(peer);
     if envelope.request == Request::Ping {
         return Answer {
             status: Some(shared.status()),
@@ -146,6 +151,30 @@ fn answer_for(stream: &UnixStream, events: &Sender<Event>, shared: &Shared) -> A
 pub fn current_uid() -> u32 {
     // SAFETY: geteuid has no preconditions and cannot fail.
     unsafe { libc::geteuid() }
+}
+
+/// The account name of `uid` (getpwuid_r), or `uid N` when it has none.
+pub fn user_name(uid: u32) -> String {
+    let mut buf: Vec<libc::c_char> = vec![0; 1024];
+    loop {
+        // SAFETY: an all-zero passwd is a valid value of this plain C struct.
+        let mut pwd: libc::passwd = unsafe { std::mem::zeroed() };
+        let mut found: *mut libc::passwd = std::ptr::null_mut();
+        // SAFETY: every pointer is to a live local of the size passed;
+        // getpwuid_r writes only within them.
+        let rc =
+            unsafe { libc::getpwuid_r(uid, &mut pwd, buf.as_mut_ptr(), buf.len(), &mut found) };
+        if rc == libc::ERANGE && buf.len() < 1 << 20 {
+            buf.resize(buf.len() * 2, 0);
+            continue;
+        }
+        if rc != 0 || found.is_null() || pwd.pw_name.is_null() {
+            return format!("uid {uid}");
+        }
+        // SAFETY: on success pw_name points to a NUL-terminated string in `buf`.
+        let name = unsafe { std::ffi::CStr::from_ptr(pwd.pw_name) };
+        return name.to_string_lossy().into_owned();
+    }
 }
 
 /// The uid of the process on the other end of a Unix socket.

@@ -455,9 +455,10 @@ impl<C: Clock> Daemon<C> {
             Request::Ping => Answer::default(),
             Request::Ingest { cwd, files } => {
                 match cli::ingest_files(owner, Some(&cwd), &files, json, &user) {
-                    Ok((stdout, exit)) => Answer {
-                        exit: exit as u8,
-                        stdout,
+                    Ok(taken) => Answer {
+                        exit: taken.exit as u8,
+                        stdout: taken.stdout,
+                        error: taken.error,
                         ..Answer::default()
                     },
                     Err(e) => {
@@ -466,7 +467,7 @@ impl<C: Clock> Daemon<C> {
                             matches!(c.downcast_ref::<StateError>(),
                                 Some(StateError::Io { path, .. }) if named.contains(path))
                         });
-                        let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                        let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
                         if !files_fault {
                             fatal = Some(e);
                         }
@@ -512,7 +513,7 @@ impl<C: Clock> Daemon<C> {
                         _ => true,
                     };
                     let e = anyhow::Error::from(e);
-                    let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                    let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
                     if machine {
                         fatal = Some(e);
                     }
@@ -525,12 +526,13 @@ impl<C: Clock> Daemon<C> {
                     Answer {
                         exit: exit as u8,
                         stdout,
+                        error: cli::verify_error(&result),
                         ..Answer::default()
                     }
                 }
                 Err(e) => {
                     let e = anyhow::Error::from(e);
-                    let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                    let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
                     fatal = Some(e);
                     answer
                 }
@@ -718,7 +720,7 @@ impl<C: Clock> Daemon<C> {
                     self.blocked_at = Some(owner.store.totals().batches);
                 }
                 let e = anyhow::Error::from(e);
-                let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+                let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
                 if machine {
                     fatal = Some(e);
                 }
@@ -844,7 +846,7 @@ fn decide(
                 DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
             );
             let e = anyhow::Error::from(e);
-            let answer = Answer::failed(cli::exit_for(&e) as u8, format!("{e:#}"));
+            let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
             if machine {
                 *fatal = Some(e);
             }

@@ -49,8 +49,12 @@ fn is_published_bytes(name: &[u8]) -> bool {
     !name.starts_with(b".") && !name.ends_with(b".part") && !name.is_empty()
 }
 
-/// Lists the published entries of the inbox (directories are skipped),
-/// sorted by name so files are taken in a stable order.
+/// Lists the published entries of the inbox, sorted by name so files are
+/// taken in a stable order. A directory with a published name is listed
+/// like a special file: intake refuses it at once (moved to `rejected/`
+/// with its reasons and a `batch-rejected` entry), as `ingest DIR` does,
+/// so nothing sits in the inbox unexplained. Dotfiles and `*.part` names
+/// are files still being written; `status` counts them.
 pub fn list(inbox: &Path) -> std::io::Result<Vec<(PathBuf, Signature)>> {
     let mut out = Vec::new();
     for entry in fs::read_dir(inbox)? {
@@ -65,13 +69,51 @@ pub fn list(inbox: &Path) -> std::io::Result<Vec<(PathBuf, Signature)>> {
         let Ok(meta) = fs::symlink_metadata(entry.path()) else {
             continue;
         };
-        if meta.is_dir() {
-            continue;
-        }
         out.push((entry.path(), Signature::of(&meta)));
     }
     out.sort_by(|a, b| a.0.cmp(&b.0));
     Ok(out)
+}
+
+/// What sits in an inbox, for `status`: entries the daemon will take
+/// (published names, directories included: those are refused) and entries
+/// it leaves alone because they are still being written (dotfiles, `*.part`
+/// names, anything under a dot folder such as `.tmp/`).
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize)]
+pub struct Contents {
+    pub waiting: Vec<String>,
+    pub being_written: Vec<String>,
+}
+
+/// Lists `inbox` for `status` (a missing inbox is empty). Names are
+/// relative to the inbox.
+pub fn contents(inbox: &Path) -> std::io::Result<Contents> {
+    let mut c = Contents::default();
+    let entries = match fs::read_dir(inbox) {
+        Ok(e) => e,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(c),
+        Err(e) => return Err(e),
+    };
+    for entry in entries {
+        let entry = entry?;
+        let name = entry.file_name();
+        let shown = name.to_string_lossy().into_owned();
+        if is_published_bytes(name.as_bytes()) {
+            c.waiting.push(shown);
+        } else if entry.file_type()?.is_dir() {
+            // A publishing folder: what is inside is on its way.
+            for inner in fs::read_dir(entry.path())? {
+                let inner = inner?;
+                c.being_written
+                    .push(format!("{shown}/{}", inner.file_name().to_string_lossy()));
+            }
+        } else {
+            c.being_written.push(shown);
+        }
+    }
+    c.waiting.sort();
+    c.being_written.sort();
+    Ok(c)
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -220,7 +262,7 @@ mod tests {
     }
 
     #[test]
-    fn listing_skips_hidden_partial_and_directories() {
+    fn listing_skips_hidden_and_partial_names_and_lists_directories() {
         let dir = tempfile::tempdir().unwrap();
         fs::create_dir(dir.path().join(".tmp")).unwrap();
         fs::create_dir(dir.path().join("sub")).unwrap();
@@ -238,6 +280,24 @@ mod tests {
             .into_iter()
             .map(|(p, _)| p.file_name().unwrap().to_string_lossy().into_owned())
             .collect();
-        assert_eq!(names, ["a.csv", "n\u{fffd}.csv", "z.csv"]);
+        assert_eq!(names, ["a.csv", "n\u{fffd}.csv", "sub", "z.csv"]);
+    }
+
+    #[test]
+    fn contents_name_what_waits_and_what_is_being_written() {
+        let dir = tempfile::tempdir().unwrap();
+        fs::create_dir(dir.path().join(".tmp")).unwrap();
+        fs::create_dir(dir.path().join("sub")).unwrap();
+        fs::write(dir.path().join(".tmp/x.csv"), "a").unwrap();
+        fs::write(dir.path().join("b.csv.part"), "a").unwrap();
+        fs::write(dir.path().join(".hidden"), "a").unwrap();
+        fs::write(dir.path().join("a.csv"), "a").unwrap();
+        let c = contents(dir.path()).unwrap();
+        assert_eq!(c.waiting, ["a.csv", "sub"]);
+        assert_eq!(c.being_written, [".hidden", ".tmp/x.csv", "b.csv.part"]);
+        assert_eq!(
+            contents(&dir.path().join("none")).unwrap(),
+            Contents::default()
+        );
     }
 }

@@ -6,6 +6,7 @@
 use std::collections::HashMap;
 use std::io::{BufRead, BufReader, Write};
 use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::{Duration, Instant};
 
@@ -249,26 +250,74 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
     out
 }
 
-/// Serves `/health` and `/metrics` on `addr` from a thread of its own.
+/// Requests answered at once; a connection beyond these is closed unanswered.
+const MAX_HTTP_CONNECTIONS: usize = 16;
+
+/// The whole time one connection may take, reading and writing together.
+const REQUEST_DEADLINE: Duration = Duration::from_secs(5);
+
+/// Serves `/health` and `/metrics` on `addr`: a thread accepts, and each
+/// connection is answered on a thread of its own within
+/// `REQUEST_DEADLINE`, so a slow or silent client delays nobody else.
 pub fn serve(addr: SocketAddr, shared: Shared) -> std::io::Result<SocketAddr> {
     let listener = TcpListener::bind(addr)?;
     let bound = listener.local_addr()?;
+    let open = Arc::new(AtomicUsize::new(0));
     std::thread::Builder::new()
         .name("metrics".into())
         .spawn(move || {
             for stream in listener.incoming().flatten() {
-                if let Err(e) = answer_http(stream, &shared) {
-                    tracing::debug!("metrics request failed: {e}");
+                if open.fetch_add(1, Ordering::SeqCst) >= MAX_HTTP_CONNECTIONS {
+                    open.fetch_sub(1, Ordering::SeqCst);
+                    tracing::debug!("metrics: too many connections at once; one closed");
+                    continue;
+                }
+                let (shared, open) = (shared.clone(), open.clone());
+                let spawned = std::thread::Builder::new()
+                    .name("metrics-conn".into())
+                    .spawn(move || {
+                        if let Err(e) = answer_http(stream, &shared) {
+                            tracing::debug!("metrics request failed: {e}");
+                        }
+                        open.fetch_sub(1, Ordering::SeqCst);
+                    });
+                if spawned.is_err() {
+                    tracing::warn!("cannot start a thread for a metrics connection");
                 }
             }
         })?;
     Ok(bound)
 }
 
+/// Reads from a stream until a fixed moment: each read may wait only for
+/// the time left, so trickling one byte at a time does not extend it.
+struct UntilDeadline<'a> {
+    stream: &'a TcpStream,
+    until: Instant,
+}
+
+impl std::io::Read for UntilDeadline<'_> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let left = self.until.saturating_duration_since(Instant::now());
+        if left.is_zero() {
+            return Err(std::io::Error::new(
+                std::io::ErrorKind::TimedOut,
+                "the request took longer than its deadline",
+            ));
+        }
+        self.stream.set_read_timeout(Some(left))?;
+        std::io::Read::read(&mut self.stream, buf)
+    }
+}
+
 fn answer_http(stream: TcpStream, shared: &Shared) -> std::io::Result<()> {
-    stream.set_read_timeout(Some(Duration::from_secs(2)))?;
-    stream.set_write_timeout(Some(Duration::from_secs(2)))?;
-    let mut reader = BufReader::new(std::io::Read::take(&stream, 8192));
+    let until = Instant::now() + REQUEST_DEADLINE;
+    stream.set_write_timeout(Some(REQUEST_DEADLINE))?;
+    let timed = UntilDeadline {
+        stream: &stream,
+        until,
+    };
+    let mut reader = BufReader::new(std::io::Read::take(timed, 8192));
     let mut line = String::new();
     reader.read_line(&mut line)?;
     let path = line.split_whitespace().nth(1).unwrap_or("").to_string();
@@ -362,5 +411,42 @@ mod tests {
         assert!(text.contains("tidegate_rejected_files 1\n"), "{text}");
         assert!(text.contains("tidegate_cycle_duration_seconds_count 2\n"));
         assert!(text.contains("# TYPE tidegate_batches gauge\n"));
+    }
+
+    #[test]
+    fn a_slow_client_does_not_stall_health_for_another() {
+        use std::io::{Read, Write};
+        use std::sync::atomic::AtomicBool;
+        let shared = Shared::new(DaemonStatus::default());
+        let addr = serve("127.0.0.1:0".parse().unwrap(), shared).unwrap();
+        // Sends one byte of its request line at a time and never ends it.
+        let stop = Arc::new(AtomicBool::new(false));
+        let mut slow = TcpStream::connect(addr).unwrap();
+        let trickle = {
+            let stop = stop.clone();
+            std::thread::spawn(move || {
+                for b in b"GET /health HTTP/1.1 and so on".iter().cycle() {
+                    if stop.load(Ordering::SeqCst) || slow.write_all(&[*b]).is_err() {
+                        break;
+                    }
+                    std::thread::sleep(Duration::from_millis(200));
+                }
+            })
+        };
+        // Connected first, so a server taking one connection at a time
+        // is busy with it when the next one arrives.
+        let mut fast = TcpStream::connect(addr).unwrap();
+        // Generous: an answer takes microseconds; served one at a time it
+        // would never come while the slow client trickles.
+        fast.set_read_timeout(Some(Duration::from_secs(15)))
+            .unwrap();
+        fast.write_all(b"GET /health HTTP/1.1\r\nHost: x\r\n\r\n")
+            .unwrap();
+        let mut answer = String::new();
+        let read = fast.read_to_string(&mut answer);
+        stop.store(true, Ordering::SeqCst);
+        trickle.join().unwrap();
+        read.unwrap();
+        assert!(answer.starts_with("HTTP/1.1 200"), "{answer}");
     }
 }

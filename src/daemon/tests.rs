@@ -182,6 +182,36 @@ fn a_file_written_in_place_is_taken_only_after_it_settled() {
 }
 
 #[test]
+fn a_directory_in_the_inbox_is_refused_and_logged_not_left_there() {
+    let mut r = rig("settle_seconds = 0.0\nmin_new_rows = 100000");
+    let dir = r.state.inbox().join("night-07");
+    fs::create_dir(&dir).unwrap();
+    fs::write(dir.join("rows.csv"), "id,city,temp,flag,y\n").unwrap();
+    r.step(Event::InboxChanged);
+    assert!(!dir.exists(), "the directory still sits in the inbox");
+    assert!(
+        r.state
+            .rejected()
+            .join("night-07")
+            .join("rows.csv")
+            .is_file()
+    );
+    let refused: Vec<String> = r
+        .state
+        .mirror()
+        .entries()
+        .unwrap()
+        .iter()
+        .filter(|e| e.event.kind() == "batch-rejected")
+        .map(|e| e.event.summary())
+        .collect();
+    assert_eq!(refused.len(), 1, "{refused:?}");
+    assert!(refused[0].contains("night-07"), "{refused:?}");
+    // The publishing folder is never taken.
+    assert!(r.state.inbox().join(".tmp").is_dir());
+}
+
+#[test]
 fn the_timed_listing_finds_files_whose_events_were_lost() {
     let mut r = rig("settle_seconds = 0.0\nrescan_seconds = 60.0\nmin_new_rows = 100000");
     let path = r.publish("quiet.csv", 3);

@@ -113,3 +113,92 @@ pub fn soak_kills(default: usize) -> usize {
         Err(_) => default,
     }
 }
+
+/// Config of a small regression state: one number column with no `max`
+/// (`count`), one with bounds, a category, a quick network.
+pub const TINY_CONFIG: &str = r#"[data]
+target = "y"
+task = "regression"
+holdout_fraction = 0.25
+
+[[data.columns]]
+name = "count"
+kind = "number"
+min = 0
+
+[[data.columns]]
+name = "temp"
+kind = "number"
+min = -50
+max = 60
+
+[[data.columns]]
+name = "town"
+kind = "category"
+
+[[data.columns]]
+name = "y"
+kind = "number"
+
+[model]
+hidden = [8]
+
+[training]
+cold_epochs = 300
+warm_epochs = 5
+learning_rate = 0.01
+
+[gate]
+min_holdout_rows = 50
+"#;
+
+/// `n` rows of the tiny schema, numbered from `from`; y depends on every input.
+pub fn tiny_rows(from: usize, n: usize) -> String {
+    let mut s = String::from("count,temp,town,y\n");
+    for i in from..from + n {
+        // Small counts (std about 0.14): a huge one overflows f32 once standardised.
+        let count = ((i * 7919) % 50) as f64 / 100.0;
+        let temp = ((i * 104_729) % 400) as f64 / 10.0 - 10.0;
+        let town = ["Arden", "Bexley", "Corrin"][i % 3];
+        let y = 300.0 * count + 0.5 * temp + [0.0, 10.0, 20.0][i % 3];
+        s.push_str(&format!("{count},{temp},{town},{y}\n"));
+    }
+    s
+}
+
+impl Env {
+    /// A state dir created from `config` (written into the temp dir).
+    pub fn with_config_text(config: &str) -> Env {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("tidegate.toml");
+        std::fs::write(&path, config).unwrap();
+        let env = Env { dir };
+        let out = env.run_with_config(&path, &["init"]);
+        assert!(out.status.success(), "init failed: {}", stderr(&out));
+        env
+    }
+
+    /// A tiny state with 600 rows in three batches and a serving model (the
+    /// first cycle must beat the trivial predictor on this plain linear
+    /// truth; the gate needs holdout rows from three batches).
+    pub fn tiny_with_model() -> Env {
+        let env = Env::with_config_text(TINY_CONFIG);
+        let files: Vec<_> = (0..3)
+            .map(|i| {
+                let file = env.dir.path().join(format!("rows-{i}.csv"));
+                std::fs::write(&file, tiny_rows(i * 200, 200)).unwrap();
+                file
+            })
+            .collect();
+        let out = env.ingest(&files);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        let out = env.run(&["retrain"]);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        assert!(
+            !env.status_json()["summary"]["serving"].is_null(),
+            "the first model was not promoted: {}",
+            stdout(&out)
+        );
+        env
+    }
+}

@@ -527,8 +527,10 @@ fn two_runs_on_two_threads_match_sequential_runs() {
 #[test]
 fn red_wine_streamed_cold_then_warm_meets_the_ols_baseline() {
     // Red-wine quality (Cortez et al. 2009) as shipped in linfa-datasets
-    // 0.8.1: 1599 rows × 11 inputs, quality 3–8. Published OLS 10-fold MAE
-    // ≈ 0.505 (CHECKS.md).
+    // 0.8.1: 1599 rows × 11 inputs, quality 3–8. The network is judged
+    // against closed-form OLS fitted and scored on the same split in this
+    // run; the recalled 10-fold figure (CHECKS.md) is checked against a
+    // 10-fold OLS run here, like with like.
     let ds = linfa_datasets::winequality();
     let (records, targets) = (&ds.records, &ds.targets);
     assert_eq!((records.nrows(), records.ncols()), (1599, 11));
@@ -609,13 +611,31 @@ fn red_wine_streamed_cold_then_warm_meets_the_ols_baseline() {
         })
         .sum::<f64>()
         / hold.n_rows() as f64;
+    // 10-fold OLS over all rows (fold = row index mod 10).
+    let mut abs_sum = 0.0;
+    for fold in 0..10 {
+        let (fit, test): (Vec<usize>, Vec<usize>) = (0..all.len()).partition(|r| r % 10 != fold);
+        let x: Vec<f64> = fit.iter().flat_map(|&r| all[r][..width].to_vec()).collect();
+        let y: Vec<f64> = fit.iter().map(|&r| all[r][width]).collect();
+        let b = least_squares(&x, &y, width, 0.0).expect("full rank");
+        abs_sum += test
+            .iter()
+            .map(|&r| {
+                let p = b[0] + (0..width).map(|c| b[c + 1] * all[r][c]).sum::<f64>();
+                (p - all[r][width]).abs()
+            })
+            .sum::<f64>();
+    }
+    let cv_mae = abs_sum / all.len() as f64;
     eprintln!(
-        "red wine: {} holdout rows, network MAE {mae:.4}, OLS MAE {ols_mae:.4} (published OLS 10-fold ≈ 0.505)",
+        "red wine: {} holdout rows, network MAE {mae:.4}, OLS MAE {ols_mae:.4} on the same split; OLS 10-fold MAE {cv_mae:.4}",
         hold.n_rows()
     );
+    // OLS 10-fold MAE ≈ 0.505: from memory (CHECKS.md), not read from the
+    // paper; folds differ from any published run, hence the tolerance.
     assert!(
-        mae < 0.505 * 1.05,
-        "network MAE {mae} vs the published OLS baseline 0.505"
+        (cv_mae - 0.505).abs() < 0.02,
+        "OLS 10-fold MAE {cv_mae} vs the recalled 0.505"
     );
     assert!(
         mae <= ols_mae + 0.01,
