@@ -17,13 +17,19 @@ pub fn sync_dir(path: &Path) -> std::io::Result<()> {
     fs::File::open(path)?.sync_all()
 }
 
+/// The folder `dest` is in; "." for a bare file name, whose parent is "".
+fn parent_of(dest: &Path) -> &Path {
+    dest.parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."))
+}
+
 fn temp_path(dest: &Path) -> PathBuf {
     let name = dest
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let dir = dest.parent().unwrap_or(Path::new("."));
-    dir.join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
+    parent_of(dest).join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
 }
 
 /// Creates (or truncates) `path`, writes `bytes` and fsyncs the file.
@@ -44,7 +50,7 @@ pub fn write_atomic(dest: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let result = (|| {
         write_synced(&tmp, bytes)?;
         fs::rename(&tmp, dest)?;
-        sync_dir(dest.parent().unwrap_or(Path::new(".")))
+        sync_dir(parent_of(dest))
     })();
     if result.is_err() {
         let _ = fs::remove_file(&tmp);
@@ -65,7 +71,7 @@ pub fn write_new(dest: &Path, bytes: &[u8]) -> std::io::Result<bool> {
             Err(e) => return Err(e),
         };
         fs::remove_file(&tmp)?;
-        sync_dir(dest.parent().unwrap_or(Path::new(".")))?;
+        sync_dir(parent_of(dest))?;
         Ok(created)
     })();
     if result.is_err() {
