@@ -573,6 +573,7 @@ pub fn run(
                         path: owner.state.serving(),
                         source,
                     })?;
+                crate::export::follow(owner, s, user)?;
             }
         }
         for ((run, _, summary, _, loss), id) in scored.into_iter().zip(ids) {

@@ -104,6 +104,7 @@ fn commit(
                 source,
             },
         )?;
+        crate::export::follow(owner, id, user)?;
     }
     Ok(entry)
 }
