@@ -9,6 +9,7 @@ mod faults;
 mod ingest;
 mod lifecycle;
 mod migrate;
+mod onnx;
 mod perms;
 mod report;
 mod screens;
