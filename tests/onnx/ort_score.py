@@ -45,7 +45,9 @@ def main() -> None:
         if value.dtype == object:
             out[name] = [str(v) for v in value.tolist()]
         else:
-            out[name] = np.asarray(value, dtype=np.float64).tolist()
+            # NaN or infinity (never expected) becomes null: JSON has neither.
+            values = np.asarray(value, dtype=np.float64)
+            out[name] = np.where(np.isfinite(values), values, None).tolist()
     json.dump(out, sys.stdout)
 
 
