@@ -435,15 +435,7 @@ fn assert_followed(env: &Env, cause: &str) {
 #[test]
 fn the_configured_export_follows_promotions_and_rollbacks() {
     let dir = tempfile::tempdir().unwrap();
-    let config = fs::read_to_string(repo("demo-data/tidegate.toml"))
-        .unwrap()
-        .replace(
-            "# path = \"export/model.onnx\"",
-            "path = \"export/model.onnx\"",
-        );
-    assert!(config.contains("\npath = \"export/model.onnx\""));
-    let config_path = dir.path().join("tidegate.toml");
-    fs::write(&config_path, config).unwrap();
+    let config_path = export_config(dir.path());
     let env = Env::new(&config_path);
     let out = env.ingest(&[night("01"), night("02"), night("03"), night("04")]);
     assert_eq!(code(&out), 0, "{}", stderr(&out));
@@ -496,4 +488,65 @@ fn the_configured_export_follows_promotions_and_rollbacks() {
     assert_eq!(model, serving(&env));
     let out = env.run(&["verify"]);
     assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+}
+
+/// The demo config with `[export] path` on, written into `dir`.
+fn export_config(dir: &Path) -> PathBuf {
+    let config = fs::read_to_string(repo("demo-data/tidegate.toml"))
+        .unwrap()
+        .replace(
+            "# path = \"export/model.onnx\"",
+            "path = \"export/model.onnx\"",
+        );
+    let path = dir.join("tidegate.toml");
+    fs::write(&path, config).unwrap();
+    path
+}
+
+#[test]
+fn a_crash_or_full_disk_before_the_export_is_repaired_at_the_next_start() {
+    for action in ["abort", "enospc"] {
+        let dir = tempfile::tempdir().unwrap();
+        let env = Env::new(&export_config(dir.path()));
+        let out = env.ingest(&[night("01"), night("02"), night("03")]);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        let out = env
+            .command()
+            .env(
+                "TIDEGATE_FAILPOINTS",
+                format!("export:before-write={action}"),
+            )
+            .arg("retrain")
+            .output()
+            .unwrap();
+        assert_ne!(code(&out), 0, "{action}");
+        if action == "enospc" {
+            assert!(
+                stderr(&out).contains("model.onnx"),
+                "the error names the file: {}",
+                stderr(&out)
+            );
+        }
+        // The promotion committed before the export: it stands, and the
+        // export is missing, which verify reports.
+        let file = env.state().join("export/model.onnx");
+        assert!(!file.exists(), "{action}");
+        let out = env.run(&["verify"]);
+        assert_eq!(code(&out), 1, "{action}: {}", stdout(&out));
+        assert!(stdout(&out).contains("export"), "{}", stdout(&out));
+        // The next owner writes it and logs it.
+        let out = env.run(&["retrain", "--dry-run"]);
+        assert_eq!(code(&out), 0, "{action}: {}", stderr(&out));
+        assert_eq!(serving(&env), 1, "{action}");
+        let log = kinds(&env);
+        assert_eq!(log.last().map(String::as_str), Some("model-exported"));
+        assert_eq!(exported(&env).0, 1);
+        let out = env.run(&["verify"]);
+        assert_eq!(code(&out), 0, "{action}: {}{}", stdout(&out), stderr(&out));
+        let leftovers: Vec<_> = fs::read_dir(env.state().join("export"))
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
+        assert_eq!(leftovers.len(), 2, "file and manifest only: {leftovers:?}");
+    }
 }
