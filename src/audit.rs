@@ -191,7 +191,7 @@ pub enum Event {
     /// file (right after the entry that made it serve).
     ModelExported {
         model: ModelId,
-        /// The export file's path as configured (made absolute).
+        /// The export file's path (a relative configured path joined to the state dir).
         file: String,
         /// blake3 of the ONNX file written.
         onnx_hash: String,
