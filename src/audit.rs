@@ -193,6 +193,18 @@ pub enum Event {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         evidence: Option<FreshEvidence>,
     },
+    /// The model that now serves was written to the configured ONNX export
+    /// file (right after the entry that made it serve).
+    ModelExported {
+        model: ModelId,
+        /// The export file's path (a relative configured path joined to the state dir).
+        file: String,
+        /// blake3 of the ONNX file written.
+        onnx_hash: String,
+        /// blake3 of the checkpoint's manifest.json it was built from.
+        checkpoint_manifest_hash: String,
+        opset: i64,
+    },
 }
 
 /// The fresh-data check's numbers as written in the log.
@@ -389,6 +401,7 @@ impl Event {
             Event::Approved { .. } => "approved",
             Event::Declined { .. } => "declined",
             Event::RolledBack { .. } => "rolled-back",
+            Event::ModelExported { .. } => "model-exported",
         }
     }
 
@@ -412,6 +425,7 @@ impl Event {
         "approved",
         "declined",
         "rolled-back",
+        "model-exported",
     ];
 
     /// The model an event is about, if any.
@@ -422,7 +436,8 @@ impl Event {
             | Event::Kept { model, .. }
             | Event::AwaitingApproval { model, .. }
             | Event::Approved { model, .. }
-            | Event::Declined { model, .. } => Some(*model),
+            | Event::Declined { model, .. }
+            | Event::ModelExported { model, .. } => Some(*model),
             Event::RolledBack { to, .. } => Some(*to),
             Event::FreshChecked { check } => Some(check.serving),
             _ => None,
@@ -620,6 +635,15 @@ impl Event {
                 previous.map_or_else(|| "none".to_string(), |m| m.to_string())
             ),
             Event::Declined { model, reason } => format!("{model} declined: {reason}"),
+            Event::ModelExported {
+                model,
+                file,
+                onnx_hash,
+                ..
+            } => format!(
+                "{model} exported to {file} (ONNX, blake3 {})",
+                &onnx_hash[..onnx_hash.len().min(12)]
+            ),
             Event::RolledBack {
                 from,
                 to,

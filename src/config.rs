@@ -27,6 +27,18 @@ pub struct Config {
     pub daemon: DaemonConfig,
     #[serde(default)]
     pub drift: DriftConfig,
+    #[serde(default)]
+    pub export: ExportConfig,
+}
+
+/// Where the serving model is kept as an ONNX file.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct ExportConfig {
+    /// The ONNX file rewritten after every promotion, approval and
+    /// rollback (manifest beside it as `<path>.json`); relative paths are
+    /// taken from the state dir. Off when unset.
+    pub path: Option<PathBuf>,
 }
 
 /// How each accepted batch's drift is judged (see `drift::Rule`).
@@ -767,6 +779,21 @@ impl Config {
                 Ok(_) => {}
             }
         }
+        if let Some(p) = &self.export.path {
+            let name = p.file_name().map(|n| n.to_string_lossy().into_owned());
+            let bad = p.as_os_str().is_empty()
+                || p.to_string_lossy().ends_with('/')
+                || name.as_deref().is_none_or(|n| n.starts_with('.'));
+            if bad {
+                return fail(
+                    whole("path"),
+                    format!(
+                        "export path {:?} must name a file (not a folder or a dotfile), such as \"export/model.onnx\"",
+                        p.display().to_string()
+                    ),
+                );
+            }
+        }
         Ok(())
     }
 
@@ -904,6 +931,19 @@ kind = "number"
     fn template_is_valid() {
         let c = parse(TEMPLATE).unwrap();
         assert_eq!(c.data.target.get_ref(), "loaves_sold");
+    }
+
+    #[test]
+    fn export_path_must_name_a_file() {
+        let with = |extra: &str| format!("{MINIMAL}\n[export]\n{extra}\n");
+        let c = parse(&with("path = \"export/model.onnx\"")).unwrap();
+        assert_eq!(c.export.path, Some(PathBuf::from("export/model.onnx")));
+        assert_eq!(parse(MINIMAL).unwrap().export.path, None);
+        for bad in ["\"\"", "\"export/\"", "\"export/.hidden\""] {
+            let (line, _, msg) = err_at(&with(&format!("path = {bad}")));
+            assert!(msg.contains("must name a file"), "{msg}");
+            assert_eq!(line, MINIMAL.lines().count() + 3, "{bad}");
+        }
     }
 
     #[test]

@@ -779,6 +779,7 @@ pub fn record(
                         path: owner.state.serving(),
                         source,
                     })?;
+                crate::export::follow(owner, s, user)?;
             }
         }
         for (c, id) in scored.candidates.into_iter().zip(ids) {

@@ -32,6 +32,9 @@ pub const POINTS: &[&str] = &[
     "cycle:mid-checkpoint",
     "cycle:before-promote",
     "cycle:after-promote",
+    // Following the serving model with an ONNX export (`export::write`),
+    // after the pointer moved and before the file is replaced.
+    "export:before-write",
     // Start-up recovery (`state::open`): after stale temps are removed, and
     // after pending archive files are settled, before `audit.jsonl` is caught up.
     "state:during-recovery",

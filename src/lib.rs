@@ -15,6 +15,7 @@ pub mod cycle;
 pub mod daemon;
 pub mod demo;
 pub mod drift;
+pub mod export;
 pub mod failpoint;
 pub mod fresh;
 pub mod fsutil;

@@ -106,6 +106,7 @@ fn commit(
                 source,
             },
         )?;
+        crate::export::follow(owner, id, user)?;
     }
     Ok(entry)
 }

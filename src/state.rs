@@ -80,6 +80,8 @@ pub enum StateError {
     NotEmpty { path: PathBuf },
     #[error(transparent)]
     Audit(#[from] crate::audit::MirrorError),
+    #[error(transparent)]
+    Export(#[from] crate::export::ExportError),
 }
 
 fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
@@ -227,6 +229,9 @@ pub struct Recovery {
     pub pending_dropped: usize,
     pub serving_rewritten: bool,
     pub abandoned_cycle: Option<u64>,
+    /// The configured ONNX export did not hold the serving model and was
+    /// written again.
+    pub export_rewritten: bool,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
@@ -291,6 +296,8 @@ fn open_with(
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
         rec.abandoned_cycle = close_open_cycle(&mut store, &mirror, &current_user())?;
+        rec.export_rewritten =
+            crate::export::catch_up(state, config, &mut store, &mirror, &current_user())?;
     }
     Ok((
         Owner {

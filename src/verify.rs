@@ -7,7 +7,8 @@
 //! all in the store, and its archived file still has those bytes; the
 //! store's totals equal the sum over its batches; every checkpoint a cycle
 //! logged still has the manifest it was logged with, and its files match
-//! the hashes in that manifest.
+//! the hashes in that manifest; with an ONNX export configured, the file
+//! is the serving model's export byte for byte and the log recorded it.
 
 use std::collections::BTreeMap;
 
@@ -203,6 +204,9 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
             None,
             "the store's totals differ from the sum over its batches",
         )));
+    }
+    if let Some(what) = crate::export::check(owner)? {
+        return Ok(Err(problem(None, what)));
     }
     Ok(Ok(Report {
         audit_entries: entries.len() as u64,

@@ -12,6 +12,7 @@ mod init;
 mod log;
 mod migrate;
 mod models;
+mod onnx;
 mod predict;
 mod report;
 mod retrain;
@@ -104,6 +105,8 @@ pub enum Command {
     Decline(decline::Args),
     /// Score a CSV file with the serving model (or --model ID).
     Predict(predict::Args),
+    /// Write the serving model (or --model ID) as an ONNX file with a manifest beside it.
+    Onnx(onnx::Args),
     /// Check the audit chain, the store against the log, and the archive.
     Verify(verify::Args),
     /// Run the bundled bakery scenario (invented data) night by night in a scratch state dir.
@@ -141,6 +144,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Migrate(a) => migrate::run(cli, &state, a),
         Command::Restore(a) => backup::run_restore(cli, &state, a),
         Command::Predict(a) => predict::run(cli, &state, a),
+        Command::Onnx(a) => onnx::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),
         Command::Models(a) => models::run(cli, &state, a),
         Command::Rollback(a) => rollback::run(cli, &state, a),

@@ -190,7 +190,8 @@ impl Summary {
                 | Event::BackupMade { .. }
                 | Event::Restored { .. }
                 | Event::BaselinesScored { .. }
-                | Event::CycleAbandoned { .. } => {}
+                | Event::CycleAbandoned { .. }
+                | Event::ModelExported { .. } => {}
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());

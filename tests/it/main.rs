@@ -10,6 +10,7 @@ mod holes;
 mod ingest;
 mod lifecycle;
 mod migrate;
+mod onnx;
 mod paths;
 mod perms;
 mod report;
