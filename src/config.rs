@@ -378,6 +378,16 @@ pub struct DaemonConfig {
     pub metrics_addr: Option<String>,
     /// Allow a metrics_addr that is not a loopback address.
     pub metrics_allow_remote: bool,
+    /// "127.0.0.1:PORT" to serve `POST /predict` over HTTP; off when unset.
+    pub predict_addr: Option<String>,
+    /// Allow a predict_addr that is not a loopback address.
+    pub predict_allow_remote: bool,
+    /// Most rows one prediction request may carry.
+    pub predict_max_rows: usize,
+    /// Largest prediction request body, in bytes.
+    pub predict_max_body_bytes: usize,
+    /// Seconds a prediction request's head, then its body, may take to arrive.
+    pub predict_timeout_seconds: f64,
 }
 
 impl Default for DaemonConfig {
@@ -391,6 +401,11 @@ impl Default for DaemonConfig {
             on_drift: DriftAction::None,
             metrics_addr: None,
             metrics_allow_remote: false,
+            predict_addr: None,
+            predict_allow_remote: false,
+            predict_max_rows: 1000,
+            predict_max_body_bytes: 1024 * 1024,
+            predict_timeout_seconds: 5.0,
         }
     }
 }
@@ -779,6 +794,45 @@ impl Config {
                 Ok(_) => {}
             }
         }
+        if let Some(addr) = &d.predict_addr {
+            match addr.parse::<std::net::SocketAddr>() {
+                Err(_) => {
+                    return fail(
+                        whole("predict_addr"),
+                        format!(
+                            "predict_addr {addr:?} must be an IP address and port, such as \"127.0.0.1:9188\""
+                        ),
+                    );
+                }
+                Ok(a) if !a.ip().is_loopback() && !d.predict_allow_remote => {
+                    return fail(
+                        whole("predict_addr"),
+                        format!(
+                            "predict_addr {addr:?} is not a loopback address; the prediction endpoint has no authentication, so use 127.0.0.1 or ::1 (or set predict_allow_remote = true to expose it anyway)"
+                        ),
+                    );
+                }
+                Ok(_) => {}
+            }
+        }
+        if !(1..=100_000).contains(&d.predict_max_rows) {
+            return fail(
+                whole("predict_max_rows"),
+                "predict_max_rows must be between 1 and 100000".into(),
+            );
+        }
+        if !(1024..=256 * 1024 * 1024).contains(&d.predict_max_body_bytes) {
+            return fail(
+                whole("predict_max_body_bytes"),
+                "predict_max_body_bytes must be between 1024 and 268435456 (256 MiB)".into(),
+            );
+        }
+        if !(d.predict_timeout_seconds >= 0.1 && d.predict_timeout_seconds <= 3600.0) {
+            return fail(
+                whole("predict_timeout_seconds"),
+                "predict_timeout_seconds must be between 0.1 and 3600".into(),
+            );
+        }
         if let Some(p) = &self.export.path {
             let name = p.file_name().map(|n| n.to_string_lossy().into_owned());
             let bad = p.as_os_str().is_empty()
@@ -957,6 +1011,38 @@ kind = "number"
         assert!(msg.contains("IP address and port"), "{msg}");
         let open = with("metrics_addr = \"0.0.0.0:9187\"\nmetrics_allow_remote = true");
         assert!(parse(&open).is_ok());
+    }
+
+    #[test]
+    fn prediction_endpoint_is_off_by_default_and_loopback_unless_allowed() {
+        let d = parse(MINIMAL).unwrap().daemon;
+        assert_eq!(d.predict_addr, None);
+        assert!(!d.predict_allow_remote);
+        let with = |extra: &str| format!("{MINIMAL}\n[daemon]\n{extra}\n");
+        assert!(parse(&with("predict_addr = \"127.0.0.1:9188\"")).is_ok());
+        assert!(parse(&with("predict_addr = \"[::1]:9188\"")).is_ok());
+        let (line, _, msg) = err_at(&with("predict_addr = \"0.0.0.0:9188\""));
+        assert!(msg.contains("not a loopback address"), "{msg}");
+        assert!(msg.contains("predict_allow_remote"), "{msg}");
+        assert!(line > 1, "{line}");
+        let (_, _, msg) = err_at(&with("predict_addr = \"localhost\""));
+        assert!(msg.contains("IP address and port"), "{msg}");
+        let open = with("predict_addr = \"0.0.0.0:9188\"\npredict_allow_remote = true");
+        assert!(parse(&open).is_ok());
+        // Allowing metrics off loopback does not allow predictions.
+        let (_, _, msg) = err_at(&with(
+            "predict_addr = \"0.0.0.0:9188\"\nmetrics_allow_remote = true",
+        ));
+        assert!(msg.contains("predict_allow_remote"), "{msg}");
+        for bad in [
+            "predict_max_rows = 0",
+            "predict_max_body_bytes = 10",
+            "predict_timeout_seconds = 0.0",
+        ] {
+            let (_, _, msg) = err_at(&with(bad));
+            let key = bad.split(' ').next().unwrap();
+            assert!(msg.contains(key), "{bad}: {msg}");
+        }
     }
 
     #[test]

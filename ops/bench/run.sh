@@ -13,6 +13,9 @@
 #   4. cycle scaling       ops/bench/scaling.sh      100k / 1M / 5M stores, RSS
 #   5. gate on 1M rows     examples/bench_gate_rows.rs
 #   6. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
+#   7. prediction endpoint tests/it/endpoint.rs `load` (ignored test): requests/s,
+#                                                    p50/p99 at 1 and 32 rows, idle and
+#                                                    while cycles run and the model moves
 #
 # Output goes to the terminal and to $OUT (default ops/bench/last-run.txt).
 # Figures vary with the machine's load: `uptime` is printed before each
@@ -57,4 +60,8 @@ cargo build --release --examples --bin tidegate
 
   part "6. PyTorch peer (optional)"
   python3 ops/bench/peer_pytorch.py || true
+
+  part "7. prediction endpoint on loopback"
+  if [ "$MODE" = quick ]; then export TIDEGATE_LOAD_SECONDS=3; fi
+  cargo test --release --test it endpoint::load -- --ignored --nocapture
 } 2>&1 | tee "$OUT"

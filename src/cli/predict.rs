@@ -8,10 +8,9 @@ use anyhow::Context;
 
 use super::{Cli, Exit, emit};
 use crate::ids::ModelId;
-use crate::ingest::{self, Limits};
+use crate::ingest;
 use crate::model::Predictions;
-use crate::model::checkpoint::{Checkpoint, model_dir};
-use crate::schema::Schema;
+use crate::scoring::{LoadError, Scorer};
 use crate::state::StateDir;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -65,20 +64,16 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             ),
         },
     };
-    let dir = model_dir(&state.models(), id);
-    if !dir.is_dir() {
-        anyhow::bail!("model {id} does not exist in {}", state.models().display());
-    }
-    let checkpoint = Checkpoint::load(&dir, &config.schema_fingerprint())?;
-    let schema = Schema::from_config(&config);
-    let vocabs = checkpoint.manifest.vocabularies();
-    let limits = Limits {
-        max_file_bytes: config.data.max_file_bytes,
-        max_field_bytes: config.data.max_field_bytes,
-        holdout_fraction: *config.data.holdout_fraction.get_ref(),
+    let scorer = match Scorer::load(&state.models(), &config, id) {
+        Ok(s) => s,
+        Err(LoadError::Missing { id, dir }) => {
+            anyhow::bail!("model {id} does not exist in {}", dir.display())
+        }
+        Err(LoadError::Model(e)) => return Err(e.into()),
     };
-    let raw = ingest::read_file(&args.input, limits.max_file_bytes)?;
-    let scoring = match ingest::parse_for_scoring(&raw.bytes, &schema, &vocabs, &limits) {
+    let schema = &scorer.schema;
+    let raw = ingest::read_file(&args.input, scorer.limits.max_file_bytes)?;
+    let scored = match scorer.score(&raw.bytes)? {
         Ok(s) => s,
         Err(refusal) => {
             eprintln!(
@@ -93,7 +88,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             return Ok(Exit::BadData);
         }
     };
-    for (col, values) in &scoring.unseen {
+    for (col, values) in &scored.unseen {
         tracing::warn!(
             "column {}: {} value(s) the model has not seen ({}); scored as none of the known values",
             schema.columns[*col].name,
@@ -106,16 +101,9 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                 .join(", ")
         );
     }
-    let predictions = checkpoint
-        .model
-        .predict(&scoring.rows, config.training.predict_backend)?;
-    let target = &schema.columns[schema.target].name;
-    let target_vocab = vocabs.get(&schema.target);
-    let class_name = |c: u32| {
-        target_vocab
-            .and_then(|v| v.value(c))
-            .map_or_else(|| c.to_string(), str::to_string)
-    };
+    let predictions = &scored.predictions;
+    let target = scorer.target_name();
+    let class_name = |c: u32| scorer.class_name(c);
 
     // The input is read again to copy its fields exactly; rows line up with
     // the parsed rows because both skip the same blank lines.
@@ -130,7 +118,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let mut records = reader.records();
     let header = records.next().context("input lost its header")??;
     let mut extra: Vec<String> = vec![format!("predicted_{target}")];
-    if let Predictions::Classification { n_classes, .. } = &predictions {
+    if let Predictions::Classification { n_classes, .. } = predictions {
         extra.extend((0..*n_classes).map(|k| format!("p_{}", class_name(k as u32))));
     }
     let mut csv_out = csv::Writer::from_writer(Vec::new());
@@ -144,7 +132,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         if rec.len() == 1 && rec.get(0).is_some_and(str::is_empty) {
             continue;
         }
-        let added: Vec<String> = match &predictions {
+        let added: Vec<String> = match predictions {
             Predictions::Regression { values } => vec![values[i].to_string()],
             Predictions::Classification {
                 classes,
@@ -215,10 +203,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         }
         None => emit(&String::from_utf8_lossy(&bytes))?,
     }
-    if scoring.has_target
-        && let Ok(losses) = checkpoint
+    if scored.has_target
+        && let Ok(losses) = scorer
+            .checkpoint
             .model
-            .row_losses(&scoring.rows, config.training.predict_backend)
+            .row_losses(&scored.rows, scorer.backend)
     {
         let mean = losses.iter().sum::<f64>() / losses.len().max(1) as f64;
         match config.data.task {

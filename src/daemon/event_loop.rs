@@ -134,6 +134,8 @@ pub struct Daemon<C: Clock> {
     /// Batch count when a cycle last failed: no automatic retry until more arrive.
     blocked_at: Option<u64>,
     shared: Shared,
+    /// The prediction endpoint's model, kept on the serving model.
+    endpoint: Option<crate::endpoint::Follower>,
     user: String,
     /// Cycles started by this loop (automatic and asked for).
     pub cycles_started: u64,
@@ -191,6 +193,7 @@ impl<C: Clock> Daemon<C> {
             drift_pending: false,
             blocked_at: None,
             shared,
+            endpoint: None,
             user: state::current_user(),
             cycles_started: 0,
         };
@@ -200,6 +203,14 @@ impl<C: Clock> Daemon<C> {
 
     pub fn inbox(&self) -> &Path {
         &self.inbox
+    }
+
+    /// Keeps the prediction endpoint's model on the serving model from now
+    /// on (loaded at once, then swapped each time the audit log moves the
+    /// serving pointer).
+    pub fn serve_predictions(&mut self, mut follower: crate::endpoint::Follower) {
+        follower.follow(self.shared.lock().counters.serving);
+        self.endpoint = Some(follower);
     }
 
     /// Rows accepted that no cycle has trained on.
@@ -784,12 +795,19 @@ impl<C: Clock> Daemon<C> {
         };
         let after = self.shared.lock().counters.last_seq;
         let fresh = owner.store.audit_after(after)?;
-        let mut p = self.shared.lock();
-        for (_, bytes) in fresh {
-            match crate::audit::Entry::from_line(&bytes) {
-                Ok(e) => p.counters.fold(&e),
-                Err(e) => tracing::warn!("audit entry not readable for metrics: {e}"),
+        let serving = {
+            let mut p = self.shared.lock();
+            for (_, bytes) in fresh {
+                match crate::audit::Entry::from_line(&bytes) {
+                    Ok(e) => p.counters.fold(&e),
+                    Err(e) => tracing::warn!("audit entry not readable for metrics: {e}"),
+                }
             }
+            p.counters.serving
+        };
+        // Outside the lock: loading a model must not hold up `ping`.
+        if let Some(endpoint) = &mut self.endpoint {
+            endpoint.follow(serving);
         }
         Ok(())
     }

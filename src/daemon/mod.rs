@@ -7,7 +7,9 @@
 //! - a worker takes the owner for the length of one cycle and hands it back;
 //! - the watcher, the signal thread, the ticker (the loop's own receive
 //!   timeout) and one thread per control connection only send events;
-//! - `ping` and `/metrics` read what the loop last published (`metrics`).
+//! - `ping` and `/metrics` read what the loop last published (`metrics`);
+//! - the prediction endpoint (`endpoint`) answers on threads of its own
+//!   from a model slot that the loop swaps when the serving model changes.
 
 pub mod client;
 mod control;
@@ -63,6 +65,24 @@ pub fn run(state: &StateDir, config: &Config) -> anyhow::Result<Exit> {
             anyhow::anyhow!("cannot serve metrics on {addr} ([daemon] metrics_addr): {e}")
         })?;
         tracing::info!("metrics on http://{bound}/metrics");
+    }
+    if let Some(addr) = &config.daemon.predict_addr {
+        let addr: std::net::SocketAddr = addr.parse().map_err(|e| {
+            anyhow::anyhow!(
+                "[daemon] predict_addr {addr:?} is not an address like 127.0.0.1:9188: {e}"
+            )
+        })?;
+        let slot = crate::endpoint::Slot::new();
+        daemon.serve_predictions(crate::endpoint::Follower::new(
+            slot.clone(),
+            state.models(),
+            config.clone(),
+        ));
+        let limits = crate::endpoint::Limits::of(&config.daemon);
+        let bound = crate::endpoint::serve(addr, slot, limits).map_err(|e| {
+            anyhow::anyhow!("cannot serve predictions on {addr} ([daemon] predict_addr): {e}")
+        })?;
+        tracing::info!("predictions on http://{bound}/predict");
     }
     drop(tx);
     let mut supervisor = supervise::Supervisor::from_env();
