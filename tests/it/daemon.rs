@@ -19,7 +19,7 @@ use crate::support::{Env, code, data, stderr, stdout};
 
 /// The fixtures' schema with a daemon that reacts fast and trains briefly
 /// (`long`: until cancelled).
-fn config(dir: &Path, daemon: &str, long: bool) -> PathBuf {
+pub(crate) fn config(dir: &Path, daemon: &str, long: bool) -> PathBuf {
     let training = if long {
         "[training]\ncold_epochs = 1000000\npatience = 0\nmax_seconds = 600.0\n"
     } else {
@@ -34,7 +34,7 @@ fn config(dir: &Path, daemon: &str, long: bool) -> PathBuf {
     path
 }
 
-fn env_with(daemon: &str, long: bool) -> Env {
+pub(crate) fn env_with(daemon: &str, long: bool) -> Env {
     let tmp = tempfile::tempdir().unwrap();
     let cfg = config(tmp.path(), daemon, long);
     let env = Env::new(&cfg);
@@ -43,7 +43,7 @@ fn env_with(daemon: &str, long: bool) -> Env {
 }
 
 /// A running daemon; killed if a test fails before stopping it.
-struct Watch {
+pub(crate) struct Watch {
     child: Child,
 }
 
@@ -55,7 +55,7 @@ impl Drop for Watch {
 }
 
 impl Watch {
-    fn start(env: &Env) -> Watch {
+    pub(crate) fn start(env: &Env) -> Watch {
         let log = fs::OpenOptions::new()
             .create(true)
             .append(true)
@@ -89,7 +89,7 @@ impl Watch {
     }
 
     /// SIGTERM, then the exit code and how long it took.
-    fn stop(mut self) -> (i32, Duration) {
+    pub(crate) fn stop(mut self) -> (i32, Duration) {
         let t = Instant::now();
         self.signal(libc::SIGTERM);
         let deadline = t + Duration::from_secs(10);
@@ -103,12 +103,12 @@ impl Watch {
     }
 }
 
-fn watch_log(env: &Env) -> String {
+pub(crate) fn watch_log(env: &Env) -> String {
     fs::read_to_string(env.dir.path().join("watch.log")).unwrap_or_default()
 }
 
 /// Polls `ok` every 20 ms until it holds, failing after `secs` seconds.
-fn wait_for(secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
+pub(crate) fn wait_for(secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
     let deadline = Instant::now() + Duration::from_secs(secs);
     while !ok() {
         assert!(Instant::now() < deadline, "timed out waiting for {what}");
@@ -117,7 +117,7 @@ fn wait_for(secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
 }
 
 /// Like `wait_for`, with the daemon's log in the failure message.
-fn wait_daemon(env: &Env, secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
+pub(crate) fn wait_daemon(env: &Env, secs: u64, what: &str, mut ok: impl FnMut() -> bool) {
     let deadline = Instant::now() + Duration::from_secs(secs);
     while !ok() {
         assert!(
@@ -162,7 +162,7 @@ fn http_get(addr: &str, path: &str) -> String {
 }
 
 /// CSV text with rows whose ids start at `first`.
-fn rows_csv(first: usize, n: usize) -> String {
+pub(crate) fn rows_csv(first: usize, n: usize) -> String {
     let mut text = String::from("id,city,temp,flag,y\n");
     for id in first..first + n {
         text.push_str(&format!(
@@ -194,7 +194,7 @@ fn inbox_files(env: &Env) -> Vec<String> {
         .collect()
 }
 
-fn count_kind(env: &Env, kind: &str) -> usize {
+pub(crate) fn count_kind(env: &Env, kind: &str) -> usize {
     env.log_json(&["--kind", kind]).len()
 }
 

@@ -182,7 +182,12 @@ impl Env {
     /// first cycle must beat the trivial predictor on this plain linear
     /// truth; the gate needs holdout rows from three batches).
     pub fn tiny_with_model() -> Env {
-        let env = Env::with_config_text(TINY_CONFIG);
+        Env::tiny_with_model_and("")
+    }
+
+    /// `tiny_with_model` with `extra` appended to the config (more sections).
+    pub fn tiny_with_model_and(extra: &str) -> Env {
+        let env = Env::with_config_text(&format!("{TINY_CONFIG}\n{extra}"));
         let files: Vec<_> = (0..3)
             .map(|i| {
                 let file = env.dir.path().join(format!("rows-{i}.csv"));
