@@ -686,7 +686,7 @@ impl Config {
             (
                 "min_holdout_batches",
                 g.min_holdout_batches >= 2,
-                "min_holdout_batches must be at least 2: one batch says nothing about how days differ; 3 is usual",
+                "min_holdout_batches must be at least 2: one batch says nothing about how days differ; 3 is the default",
             ),
             (
                 "shift_alpha",

@@ -84,6 +84,13 @@ struct ShopState {
     prev: Vec<Option<f64>>,
 }
 
+impl ShopState {
+    /// A shop is named after its town and street.
+    fn town(&self) -> &str {
+        self.name.split(' ').next().unwrap_or(&self.name)
+    }
+}
+
 /// The demo files in publishing order: (file name, CSV text).
 pub fn files(seed: u64) -> Vec<(String, String)> {
     let mut rng = Rng::new(seed);
@@ -115,8 +122,9 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
         let weekday = day % 7;
         let season = (day as f64 / 40.0).sin();
         let temp = 9.0 + 6.0 * season + 3.0 * rng.normal();
-        let mut csv =
-            String::from("shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n");
+        let mut csv = String::from(
+            "shop,town,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n",
+        );
         for s in &mut shop_states {
             // Each shop has its own weather, close to the region's.
             let t = (temp + 1.5 * rng.normal()).clamp(-15.0, 35.0);
@@ -147,7 +155,7 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                     1.0 - 0.01 * s.warmth * (t - 10.0)
                 };
                 let wet = 1.0 - 0.012 * rain;
-                let shift = if night >= SHIFT_NIGHT && s.name.starts_with(SHIFT_TOWN) {
+                let shift = if night >= SHIFT_NIGHT && s.town() == SHIFT_TOWN {
                     1.45
                 } else {
                     1.0
@@ -165,7 +173,8 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                 };
                 writeln!(
                     csv,
-                    "{shop_field},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}",
+                    "{shop_field},{},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}",
+                    s.town(),
                     WEEKDAYS[weekday]
                 )
                 .expect("write to String");
@@ -193,8 +202,8 @@ fn damage(csv: &str) -> String {
         f[idx] = value.to_string();
         f.join(",")
     };
-    lines[40] = replace_field(&lines[40], 3, "n/a");
-    lines[311] = replace_field(&lines[311], 4, "-2.5");
+    lines[40] = replace_field(&lines[40], 4, "n/a");
+    lines[311] = replace_field(&lines[311], 5, "-2.5");
     let cut = lines[702].rfind(',').expect("row has fields");
     lines[702].truncate(cut);
     let mut out = lines.join("\n");

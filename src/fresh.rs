@@ -62,6 +62,10 @@ pub enum FreshError {
 pub const META_MONITOR: &[u8] = b"fresh/monitor";
 /// Meta key of the recent loss levels of batches that were not flagged.
 pub const META_LEVELS: &[u8] = b"fresh/levels";
+/// Meta key of the batches the check flagged as shifted: their holdout
+/// rows stay out of later checks' reference, so a change is compared with
+/// how things were before it, not with itself.
+pub const META_SHIFTED: &[u8] = b"fresh/shifted";
 /// Observations one monitor keeps (about seven years of nightly files):
 /// with 24 bytes each the value stays under sled's 64 KiB.
 pub const MONITOR_MAX_BATCHES: usize = 2_500;
@@ -148,6 +152,17 @@ fn encode_levels(levels: &[f64]) -> Vec<u8> {
     levels[skip..]
         .iter()
         .flat_map(|v| v.to_le_bytes())
+        .collect()
+}
+
+fn encode_batches(batches: &[u64]) -> Vec<u8> {
+    batches.iter().flat_map(|v| v.to_be_bytes()).collect()
+}
+
+fn decode_batches(bytes: &[u8]) -> Vec<u64> {
+    bytes
+        .chunks_exact(8)
+        .map(|b| u64::from_be_bytes(b.try_into().expect("8 bytes")))
         .collect()
 }
 
@@ -343,7 +358,16 @@ pub fn check_batch(
         let fresh_mean = mean(&fresh);
         evidence.mean_loss_serving = Some(fresh_mean);
         let step = std::time::Instant::now();
-        let (reference_rows, reference_batches) = reference_rows(owner, record.trained_through)?;
+        // The reference is every earlier batch's holdout rows (none of them
+        // trained on): the more rows, the less the usual loss of one
+        // category value wobbles.
+        let mut shifted_batches = owner
+            .store
+            .meta_value(META_SHIFTED)?
+            .map(|v| decode_batches(&v))
+            .unwrap_or_default();
+        let (reference_rows, reference_batches) =
+            reference_rows(owner, BatchId(batch.0.saturating_sub(1)), &shifted_batches)?;
         let reference = serving_model.row_losses(&reference_rows, backend)?;
         tracing::debug!(
             "batch {batch}: fresh-data check scored {} reference rows in {:.3} s",
@@ -398,11 +422,21 @@ pub fn check_batch(
                 .collect();
             reasons.push(format!(
                 "shift in part: {} of {} values tested cost far more than usual beside the rest \
-                 of their column (z ≥ {}): {}",
+                 of their column: {}",
                 group_check.flagged.len(),
                 group_check.tested,
-                crate::gate::show(group_check.z_needed),
-                evidence.shifted_values.join(", ")
+                group_check
+                    .flagged
+                    .iter()
+                    .map(|f| format!(
+                        "{} = {} (z {} ≥ {})",
+                        f.column,
+                        f.value,
+                        crate::gate::show(f.z),
+                        crate::gate::show(f.z_needed)
+                    ))
+                    .collect::<Vec<_>>()
+                    .join(", ")
             ));
         }
         if let Some(l) = level
@@ -410,6 +444,13 @@ pub fn check_batch(
         {
             levels.push(l);
             meta.push((META_LEVELS.to_vec(), Some(encode_levels(&levels))));
+        }
+        if shifted {
+            shifted_batches.push(batch.0);
+            meta.push((
+                META_SHIFTED.to_vec(),
+                Some(encode_batches(&shifted_batches)),
+            ));
         }
         evidence.hotspots = hotspots(
             &schema,
@@ -468,7 +509,7 @@ pub fn check_batch(
             "regressed"
         } else if shifted {
             "shifted"
-        } else if level_check.is_some() || previous_model.is_some() {
+        } else if level_check.is_some() || previous_model.is_some() || group_check.tested > 0 {
             "steady"
         } else if new_condition_rows > 0 {
             "new-conditions"
@@ -544,25 +585,38 @@ fn batch_differences(serving: &[f64], previous: &[f64], batches: &[u64]) -> Vec<
 /// check's cost per batch flat as the store grows.
 pub const MAX_REFERENCE_ROWS: usize = 50_000;
 
-/// The holdout rows of batches up to `through`, or a uniform sample of
-/// `MAX_REFERENCE_ROWS` of them (the same for the same seed and batches),
-/// with the batch of each row.
-fn reference_rows(owner: &Owner, through: BatchId) -> Result<(RowMatrix, Vec<u64>), StoreError> {
+/// The holdout rows of batches up to `through` except those in `skip`, or
+/// a uniform sample of `MAX_REFERENCE_ROWS` of them (the same for the same
+/// seed and batches), with the batch of each row.
+fn reference_rows(
+    owner: &Owner,
+    through: BatchId,
+    skip: &[u64],
+) -> Result<(RowMatrix, Vec<u64>), StoreError> {
     let store = &owner.store;
     let counts = store.split_counts(Split::Holdout, None, Some(through))?;
     let labels: Vec<u64> = counts
         .iter()
         .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
         .collect();
-    let n = labels.len();
-    if n <= MAX_REFERENCE_ROWS {
+    let kept: Vec<usize> = (0..labels.len())
+        .filter(|&i| !skip.contains(&labels[i]))
+        .collect();
+    if kept.len() == labels.len() && labels.len() <= MAX_REFERENCE_ROWS {
         return Ok((store.rows(Split::Holdout, None, Some(through))?, labels));
     }
-    let seed = sample::seed_for(
-        owner.config.training.seed,
-        &[&b"fresh-reference/"[..], &through.key()].concat(),
-    );
-    let picks = sample::choose(n, MAX_REFERENCE_ROWS, &mut Rng::new(seed));
+    let picks: Vec<usize> = if kept.len() <= MAX_REFERENCE_ROWS {
+        kept
+    } else {
+        let seed = sample::seed_for(
+            owner.config.training.seed,
+            &[&b"fresh-reference/"[..], &through.key()].concat(),
+        );
+        sample::choose(kept.len(), MAX_REFERENCE_ROWS, &mut Rng::new(seed))
+            .into_iter()
+            .map(|i| kept[i])
+            .collect()
+    };
     let rows = store.rows_at(Split::Holdout, None, Some(through), &picks)?;
     Ok((rows, picks.iter().map(|&i| labels[i]).collect()))
 }

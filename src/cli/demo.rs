@@ -110,11 +110,33 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                 }
                 waiting_rows += batch.rows();
                 if let Some(found) = fresh::check_batch(&mut owner, batch.id, &user)? {
-                    night.check = found.evidence.verdict.clone();
-                    if let Some(h) = found.evidence.hotspots.first()
-                        && found.evidence.verdict != "steady"
-                    {
-                        night.check.push_str(&format!(" ({})", h.value));
+                    let ev = &found.evidence;
+                    night.check = ev.verdict.clone();
+                    // Name what the verdict is about: the shifted value, the
+                    // first value never seen, or the value carrying most loss.
+                    let about = match ev.verdict.as_str() {
+                        "shifted" => ev.shifted_values.first().cloned(),
+                        "new-conditions" => ev
+                            .new_conditions
+                            .iter()
+                            .next()
+                            .and_then(|(c, v)| v.first().map(|v| format!("{c} = {v}"))),
+                        "regressed" => ev
+                            .hotspots
+                            .first()
+                            .map(|h| format!("{} = {}", h.column, h.value)),
+                        _ => None,
+                    };
+                    if let Some(about) = about {
+                        night.check.push_str(&format!(" ({about})"));
+                    }
+                    if ev.verdict == "shifted" {
+                        events.push(format!(
+                            "{}: {} cost the serving model far more than usual beside the rest \
+                             of the column: a shift in the data, flagged; no model is blamed",
+                            night.file,
+                            ev.shifted_values.join(", ")
+                        ));
                     }
                     if let Some(rb) = &found.rollback {
                         if let crate::audit::Event::RolledBack { from, to, .. } = &rb.event {

@@ -315,7 +315,7 @@ fn refused_file_message_names_file_line_column_and_fix() {
     assert_eq!(
         stdout(&out).trim(),
         format!(
-            "{}: rejected: refused, nothing stored (3 problems): line 41, column \"temp_c\" (field 4), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in rejected/night-05.csv.why.json",
+            "{}: rejected: refused, nothing stored (3 problems): line 41, column \"temp_c\" (field 5), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in rejected/night-05.csv.why.json",
             repo("demo-data/night-05.csv").display()
         )
     );

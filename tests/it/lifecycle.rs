@@ -175,7 +175,7 @@ fn predict_scores_files_with_the_serving_model() {
     let mut lines = text.lines();
     assert_eq!(
         lines.next().unwrap(),
-        "shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold,predicted_loaves_sold"
+        "shop,town,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold,predicted_loaves_sold"
     );
     let rows: Vec<(f64, f64)> = lines
         .map(|l| {

@@ -117,13 +117,14 @@ fn assert_importance(html: &str) {
             "rain_mm",
             "shop",
             "temp_c",
+            "town",
             "weekday"
         ],
         "every input column once, the target never"
     );
     // Six batches are stored (night 5 was refused), so every row has an
     // interval ("a to b"), none says "one batch".
-    assert_eq!(table.matches(" to ").count(), 7, "{table}");
+    assert_eq!(table.matches(" to ").count(), 8, "{table}");
     assert!(!table.contains("one batch"));
 }
 
