@@ -169,7 +169,7 @@ pub fn build(
         .files
         .iter()
         .filter_map(|f| match &f.what {
-            Arrival::Rejected {
+            Arrival::Refused {
                 problems,
                 first_problem,
             } => Some(vec![
