@@ -266,7 +266,7 @@ fn malformed_files_are_refused_whole_with_reasons() {
         let out = env.ingest(&[data(&format!("bad/{name}"))]);
         assert_eq!(code(&out), 65, "{name}: {}{}", stdout(&out), stderr(&out));
         let text = stdout(&out);
-        assert!(text.contains("refused, nothing stored"), "{name}: {text}");
+        assert!(text.contains(": refused: nothing stored"), "{name}: {text}");
         assert!(text.contains(words), "{name}: {text}");
         // The JSON form names line, column and reason.
         let out = env
