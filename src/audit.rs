@@ -48,8 +48,10 @@ pub enum Event {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         drift: Option<crate::drift::BatchReport>,
     },
-    /// A file was refused; nothing from it was stored.
-    BatchRejected {
+    /// A file was refused; nothing from it was stored. (Logs written
+    /// before the name was settled call it `batch-rejected`.)
+    #[serde(alias = "batch-rejected")]
+    BatchRefused {
         file: String,
         file_hash: String,
         problems: u64,
@@ -158,8 +160,11 @@ pub enum Event {
         previous: Option<ModelId>,
         evidence: GateEvidence,
     },
-    /// The gate kept the serving model; the candidate stays on disk.
-    Kept {
+    /// The candidate did not become the serving model and stays on disk,
+    /// unused (the gate kept the model that served). Logs written before
+    /// the name was settled call it `kept`.
+    #[serde(alias = "kept")]
+    Shelved {
         cycle: u64,
         model: ModelId,
         serving: Option<ModelId>,
@@ -192,6 +197,15 @@ pub enum Event {
         /// The fresh-data check behind an automatic rollback.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         evidence: Option<FreshEvidence>,
+    },
+    /// Refused files written by a version that kept them under another
+    /// folder name were moved to the folder refused files are written to
+    /// now. Entries before this one name the old folder in `kept_as`; the
+    /// same file name is now under `to`.
+    FolderRenamed {
+        from: String,
+        to: String,
+        files: u64,
     },
     /// The model that now serves was written to the configured ONNX export
     /// file (right after the entry that made it serve).
@@ -337,10 +351,14 @@ fn is_zero(n: &usize) -> bool {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct GateEvidence {
     /// What the candidate was compared with: "serving" or "trivial".
-    pub baseline: String,
+    /// (Logs written before the name was settled call it `baseline`, a word
+    /// now kept for the reference models of `baselines-scored`.)
+    #[serde(alias = "baseline")]
+    pub compared_with: String,
     pub rows: usize,
-    #[serde(with = "number")]
-    pub mean_loss_baseline: f64,
+    /// Mean holdout loss of the model the candidate was compared with.
+    #[serde(with = "number", alias = "mean_loss_baseline")]
+    pub mean_loss_compared_with: f64,
     #[serde(with = "number")]
     pub mean_loss_candidate: f64,
     #[serde(default, with = "maybe_number")]
@@ -385,7 +403,7 @@ impl Event {
         match self {
             Event::Initialized { .. } => "initialized",
             Event::BatchAccepted { .. } => "batch-accepted",
-            Event::BatchRejected { .. } => "batch-rejected",
+            Event::BatchRefused { .. } => "batch-refused",
             Event::BatchDuplicate { .. } => "batch-duplicate",
             Event::CycleStarted { .. } => "cycle-started",
             Event::CandidateTrained { .. } => "candidate-trained",
@@ -396,12 +414,13 @@ impl Event {
             Event::SchemaMigrated { .. } => "schema-migrated",
             Event::Restored { .. } => "restored",
             Event::Promoted { .. } => "promoted",
-            Event::Kept { .. } => "kept",
+            Event::Shelved { .. } => "shelved",
             Event::AwaitingApproval { .. } => "awaiting-approval",
             Event::Approved { .. } => "approved",
             Event::Declined { .. } => "declined",
             Event::RolledBack { .. } => "rolled-back",
             Event::ModelExported { .. } => "model-exported",
+            Event::FolderRenamed { .. } => "folder-renamed",
         }
     }
 
@@ -409,7 +428,7 @@ impl Event {
     pub const KINDS: &'static [&'static str] = &[
         "initialized",
         "batch-accepted",
-        "batch-rejected",
+        "batch-refused",
         "batch-duplicate",
         "cycle-started",
         "candidate-trained",
@@ -420,20 +439,26 @@ impl Event {
         "restored",
         "schema-migrated",
         "promoted",
-        "kept",
+        "shelved",
         "awaiting-approval",
         "approved",
         "declined",
         "rolled-back",
         "model-exported",
+        "folder-renamed",
     ];
+
+    /// Kind names that older versions wrote, and what they are called now:
+    /// old logs read as the new kinds, and `log --kind` takes either.
+    pub const FORMER_KINDS: &'static [(&'static str, &'static str)] =
+        &[("batch-rejected", "batch-refused"), ("kept", "shelved")];
 
     /// The model an event is about, if any.
     pub fn model(&self) -> Option<ModelId> {
         match self {
             Event::CandidateTrained { model, .. }
             | Event::Promoted { model, .. }
-            | Event::Kept { model, .. }
+            | Event::Shelved { model, .. }
             | Event::AwaitingApproval { model, .. }
             | Event::Approved { model, .. }
             | Event::Declined { model, .. }
@@ -489,7 +514,7 @@ impl Event {
                 }
                 s
             }
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file,
                 problems,
                 first_problem,
@@ -617,7 +642,19 @@ impl Event {
             Event::CycleAbandoned { cycle } => {
                 format!("cycle {cycle} was cut short; the serving model did not change")
             }
-            Event::Kept { model, reason, .. } => format!("{model} kept, not promoted: {reason}"),
+            Event::Shelved {
+                model,
+                serving,
+                reason,
+                ..
+            } => format!(
+                "{model} shelved ({}): {}",
+                serving.map_or_else(
+                    || "no model serves".to_string(),
+                    |m| format!("{m} still serves")
+                ),
+                reason.strip_prefix("keep: ").unwrap_or(reason)
+            ),
             Event::AwaitingApproval {
                 model, evidence, ..
             } => {
@@ -653,6 +690,10 @@ impl Event {
             } => {
                 format!("{to} serves again instead of {from} ({how}): {reason}")
             }
+            Event::FolderRenamed { from, to, files } => format!(
+                "{from}/ renamed to {to}/ ({files} file{}); earlier entries' {from}/ paths are now under {to}/",
+                if *files == 1 { "" } else { "s" }
+            ),
         }
     }
 }
@@ -1371,6 +1412,81 @@ mod tests {
         };
         assert!(holdout_loss.is_nan());
         assert!(Entry::from_line(br#"{"x":1}"#).is_err());
+    }
+
+    #[test]
+    fn entries_written_with_the_former_names_read_as_the_new_ones_and_verify() {
+        // Lines exactly as versions before the renames wrote them: the old
+        // kind names and evidence keys, hashed over the line as written.
+        let evidence = serde_json::json!({
+            "baseline": "serving", "rows": 40, "mean_loss_baseline": 2.5,
+            "mean_loss_candidate": 2.4, "relative_improvement": 0.04, "t": 1.1,
+            "p": 0.2, "new_rows": 10, "old_rows": 30, "reason": "not significant"
+        });
+        let old = [
+            serde_json::json!({"kind": "batch-rejected", "file": "night-05.csv", "file_hash": "ab",
+                "problems": 3, "first_problem": "line 41", "kept_as": "rejected/night-05.csv"}),
+            serde_json::json!({"kind": "kept", "cycle": 2, "model": 3,
+                "serving": 2, "evidence": evidence, "reason": "keep: not significant"}),
+            serde_json::json!({"kind": "promoted", "cycle": 3, "model": 4,
+                "previous": 2, "evidence": evidence}),
+        ];
+        let mut prev = GENESIS.to_string();
+        let mut written = Vec::new();
+        for (i, fields) in old.into_iter().enumerate() {
+            let mut value = fields;
+            value["seq"] = serde_json::json!(i + 1);
+            value["time"] = serde_json::json!("2026-11-30T05:00:00.000Z");
+            value["user"] = serde_json::json!("ana");
+            value["prev"] = serde_json::json!(prev);
+            let hash = content_hash(&value);
+            value["hash"] = serde_json::json!(hash);
+            prev = hash;
+            written.push(serde_json::to_vec(&value).unwrap());
+        }
+        let parsed = check(&written).unwrap();
+        assert!(
+            matches!(&parsed[0].event, Event::BatchRefused { kept_as: Some(k), .. } if k == "rejected/night-05.csv")
+        );
+        assert_eq!(parsed[0].event.kind(), "batch-refused");
+        let Event::Shelved {
+            evidence: Some(e), ..
+        } = &parsed[1].event
+        else {
+            panic!("{:?}", parsed[1].event)
+        };
+        assert_eq!(
+            (e.compared_with.as_str(), e.mean_loss_compared_with),
+            ("serving", 2.5)
+        );
+        assert_eq!(
+            parsed[1].event.summary(),
+            "m000003 shelved (m000002 still serves): not significant"
+        );
+        let Event::Promoted { evidence, .. } = &parsed[2].event else {
+            panic!("{:?}", parsed[2].event)
+        };
+        assert_eq!(evidence.compared_with, "serving");
+        // Written again, an entry uses the new names only.
+        let line = Entry::seal(
+            AuditSeq(9),
+            t("2026-12-01T00:00:00Z"),
+            "ana",
+            parsed[1].event.clone(),
+            GENESIS,
+        )
+        .line();
+        assert!(
+            line.contains("\"kind\":\"shelved\"") && line.contains("\"compared_with\":\"serving\""),
+            "{line}"
+        );
+        assert!(
+            !line.contains("baseline") && !line.contains("\"kept\""),
+            "{line}"
+        );
+        for (former, now) in Event::FORMER_KINDS {
+            assert!(Event::KINDS.contains(now) && !Event::KINDS.contains(former));
+        }
     }
 
     #[test]

@@ -764,7 +764,7 @@ impl Config {
                     return fail(
                         whole("metrics_addr"),
                         format!(
-                            "metrics_addr {addr:?} must be an IP address and port, such as \"127.0.0.1:9187\""
+                            "metrics_addr {addr:?} must be an IP address and port, such as {EXAMPLE_METRICS_ADDR:?}"
                         ),
                     );
                 }
@@ -869,6 +869,13 @@ fn key_span(text: &str, key: &str) -> Range<usize> {
 /// A commented config template for `tidegate init --template`.
 pub const TEMPLATE: &str = include_str!("config_template.toml");
 
+/// The metrics address the template, the docs and the messages show. The
+/// port is outside 9100–9999 and the numbers above it where metrics
+/// exporters are registered, is no well-known service's default, and is
+/// below Linux's ephemeral range (32768–60999), so the kernel never hands it
+/// to an outgoing connection: it collides with nothing a host commonly runs.
+pub const EXAMPLE_METRICS_ADDR: &str = "127.0.0.1:23719";
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -949,14 +956,51 @@ kind = "number"
     #[test]
     fn metrics_address_must_be_loopback_unless_allowed() {
         let with = |extra: &str| format!("{MINIMAL}\n[daemon]\n{extra}\n");
-        assert!(parse(&with("metrics_addr = \"127.0.0.1:9187\"")).is_ok());
-        assert!(parse(&with("metrics_addr = \"[::1]:9187\"")).is_ok());
-        let (_, _, msg) = err_at(&with("metrics_addr = \"0.0.0.0:9187\""));
+        assert!(parse(&with(&format!("metrics_addr = {EXAMPLE_METRICS_ADDR:?}"))).is_ok());
+        assert!(parse(&with("metrics_addr = \"[::1]:23719\"")).is_ok());
+        let (_, _, msg) = err_at(&with("metrics_addr = \"0.0.0.0:23719\""));
         assert!(msg.contains("not a loopback address"), "{msg}");
         let (_, _, msg) = err_at(&with("metrics_addr = \"localhost\""));
         assert!(msg.contains("IP address and port"), "{msg}");
-        let open = with("metrics_addr = \"0.0.0.0:9187\"\nmetrics_allow_remote = true");
+        let open = with("metrics_addr = \"0.0.0.0:23719\"\nmetrics_allow_remote = true");
         assert!(parse(&open).is_ok());
+    }
+
+    /// The `metrics_addr = "…"` addresses a text shows, in order.
+    fn metrics_addrs(text: &str) -> Vec<&str> {
+        text.split("metrics_addr = \"")
+            .skip(1)
+            .filter_map(|rest| rest.split('"').next())
+            .collect()
+    }
+
+    #[test]
+    fn the_example_metrics_address_is_the_documented_one_everywhere() {
+        let operations = include_str!("../ops/OPERATIONS.md");
+        let demo = include_str!("../demo-data/tidegate.toml");
+        assert_eq!(metrics_addrs(TEMPLATE), vec![EXAMPLE_METRICS_ADDR]);
+        assert_eq!(metrics_addrs(operations), vec![EXAMPLE_METRICS_ADDR]);
+        // The demo's config is the template, byte for byte.
+        assert_eq!(demo, TEMPLATE);
+        // The port a database's metrics exporter listens on by default, used
+        // here before: nothing should still show it.
+        let readme = include_str!("../README.md");
+        for (name, text) in [
+            ("template", TEMPLATE),
+            ("OPERATIONS.md", operations),
+            ("README.md", readme),
+        ] {
+            assert!(!text.contains(":9187"), "{name} still shows port 9187");
+        }
+        let port: u16 = EXAMPLE_METRICS_ADDR
+            .rsplit(':')
+            .next()
+            .and_then(|p| p.parse().ok())
+            .expect("the example has a port");
+        // Exporters are registered from 9100 upwards (common practice, no
+        // source); the ephemeral range is Linux's default
+        // net.ipv4.ip_local_port_range (from memory).
+        assert!(!(9100..=9999).contains(&port) && port < 32768, "{port}");
     }
 
     #[test]

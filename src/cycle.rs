@@ -712,7 +712,7 @@ pub fn record(
                 } else {
                     this.reason()
                 };
-                let event = Event::Kept {
+                let event = Event::Shelved {
                     cycle,
                     model: *id,
                     serving: serving_id,
@@ -751,7 +751,7 @@ pub fn record(
                     vec![(META_PENDING, Some(id.key().to_vec())), close],
                 ),
                 Decision::Keep { .. } => (
-                    Event::Kept {
+                    Event::Shelved {
                         cycle,
                         model: *id,
                         serving: serving_id,
@@ -903,12 +903,12 @@ pub(crate) fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, Cy
 /// The gate's numbers in the form the audit log keeps.
 pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
     GateEvidence {
-        baseline: match e.baseline {
+        compared_with: match e.baseline {
             gate::Baseline::Serving => "serving".into(),
             gate::Baseline::Trivial => "trivial".into(),
         },
         rows: e.rows,
-        mean_loss_baseline: e.mean_loss_baseline,
+        mean_loss_compared_with: e.mean_loss_baseline,
         mean_loss_candidate: e.mean_loss_candidate,
         relative_improvement: e.relative_improvement,
         t: e.test.t.is_finite().then_some(e.test.t),

@@ -48,7 +48,7 @@ pub enum Outcome {
         of: BatchId,
         entry: Entry,
     },
-    Rejected {
+    Refused {
         refusal: Refusal,
         kept_as: Option<PathBuf>,
         entry: Entry,
@@ -65,8 +65,8 @@ pub enum Outcome {
 }
 
 impl Outcome {
-    pub fn is_rejected(&self) -> bool {
-        matches!(self, Outcome::Rejected { .. })
+    pub fn is_refused(&self) -> bool {
+        matches!(self, Outcome::Refused { .. })
     }
 }
 
@@ -98,7 +98,7 @@ fn display_name(path: &Path) -> String {
     )
 }
 
-/// The name a refused file's copy and reasons get under `rejected/`: only
+/// The name a refused file's copy and reasons get under `refused/`: only
 /// the path's last component, so nothing is written outside the state
 /// dir. A path without one (`/`, `dir/..`) is kept as `unnamed`.
 fn kept_name(path: &Path) -> String {
@@ -152,7 +152,7 @@ pub fn take_file(
                 }],
                 total: 1,
             };
-            return reject(owner, path, &name, None, refusal, source, user, now);
+            return refuse(owner, path, &name, None, refusal, source, user, now);
         }
         Err(ReadError::Io { path, source }) => return Err(StateError::Io { path, source }),
         Err(e) => unreachable!("every other read error is a refusal: {e}"),
@@ -196,7 +196,7 @@ pub fn take_file(
             Ok(Ok(done)) => done,
             Ok(Err(refusal)) => {
                 let _ = fs::remove_file(&pending);
-                return reject(owner, path, &name, Some(&raw), refusal, source, user, now);
+                return refuse(owner, path, &name, Some(&raw), refusal, source, user, now);
             }
             Err(e) => {
                 let _ = fs::remove_file(&pending);
@@ -297,7 +297,7 @@ fn commit_and_archive(
 }
 
 #[allow(clippy::too_many_arguments)]
-fn reject(
+fn refuse(
     owner: &mut Owner,
     path: &Path,
     name: &str,
@@ -307,31 +307,31 @@ fn reject(
     user: &str,
     now: DateTime<Utc>,
 ) -> Result<Outcome, StateError> {
-    let rejected = owner.state.rejected();
+    let refused = owner.state.refused();
     let hash = raw.map(|r| r.hash.to_hex().to_string());
     // Keep the refused bytes under the file's own name; a different file
     // that reuses the name gets its hash added rather than overwriting.
     let mut kept_as = None;
     let own = kept_name(path);
     if let Some(raw) = raw {
-        let mut dest = rejected.join(&own);
+        let mut dest = refused.join(&own);
         let same = fs::read(&dest).map(|b| b == raw.bytes).unwrap_or(false);
         if dest.exists() && !same {
             let short = &raw.hash.to_hex()[..12];
-            dest = rejected.join(format!("{own}.{short}"));
+            dest = refused.join(format!("{own}.{short}"));
         }
         fsutil::write_new(&dest, &raw.bytes).map_err(io_at(&dest))?;
         kept_as = Some(dest);
     } else if source == Source::Inbox {
         // Links, special and oversized files are moved aside unread.
-        let mut dest = rejected.join(&own);
+        let mut dest = refused.join(&own);
         if fs::symlink_metadata(&dest).is_ok() {
-            dest = rejected.join(format!("{own}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
+            dest = refused.join(format!("{own}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
         }
         fs::rename(path, &dest).map_err(io_at(path))?;
         // Both folders changed: without their fsync the link could be
         // back in the inbox after a power loss.
-        fsutil::sync_dir(&rejected).map_err(io_at(&rejected))?;
+        fsutil::sync_dir(&refused).map_err(io_at(&refused))?;
         let inbox = fsutil::parent_dir(path);
         fsutil::sync_dir(inbox).map_err(io_at(inbox))?;
         kept_as = Some(dest);
@@ -340,7 +340,7 @@ fn reject(
         Some(p) => format!("{}.why.json", display_name(p)),
         None => format!("{own}.why.json"),
     };
-    let why_path = rejected.join(&why_name);
+    let why_path = refused.join(&why_name);
     let why = Why {
         file: name,
         hash: hash.clone(),
@@ -359,7 +359,7 @@ fn reject(
             .display()
             .to_string()
     };
-    let event = Event::BatchRejected {
+    let event = Event::BatchRefused {
         file: name.to_string(),
         file_hash: hash.unwrap_or_default(),
         problems: refusal.total as u64,
@@ -371,7 +371,7 @@ fn reject(
     if raw.is_some() {
         remove_source(path, source)?;
     }
-    Ok(Outcome::Rejected {
+    Ok(Outcome::Refused {
         refusal,
         kept_as,
         entry,
@@ -450,13 +450,13 @@ mod tests {
         std::os::unix::fs::symlink(&target, &link).unwrap();
         fsutil::SYNCED_DIRS.with(|s| s.borrow_mut().clear());
         let outcome = take_file(&mut owner, &link, Source::Inbox, "ana", Utc::now()).unwrap();
-        assert!(outcome.is_rejected(), "{outcome:?}");
+        assert!(outcome.is_refused(), "{outcome:?}");
         assert!(
             fs::symlink_metadata(&link).is_err(),
             "the link left the inbox"
         );
         let synced = fsutil::SYNCED_DIRS.with(|s| s.borrow().clone());
-        for folder in [state.inbox(), state.rejected()] {
+        for folder in [state.inbox(), state.refused()] {
             assert!(
                 synced.contains(&folder),
                 "{} was not synced after the move: {synced:?}",

@@ -157,7 +157,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     night.file
                 ));
             }
-            Outcome::Rejected { refusal, .. } => {
+            Outcome::Refused { refusal, .. } => {
                 night.intake = format!("refused, {} problems", refusal.total);
                 events.push(format!(
                     "{}: refused whole, first problem: {}",
@@ -192,10 +192,12 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     if let Some(id) = judged.id {
                         night.decision.push_str(&format!(" {id}"));
                     }
-                    if r.decision.kind() == "keep" && events.iter().all(|e| !e.contains(" kept:")) {
+                    if r.decision.kind() == "keep"
+                        && events.iter().all(|e| !e.contains(" shelved:"))
+                    {
                         let reason = r.decision.reason();
                         events.push(format!(
-                            "{}: candidate {} kept: {}",
+                            "{}: candidate {} shelved: {}",
                             night.file,
                             judged.id.map(|m| m.to_string()).unwrap_or_default(),
                             reason.strip_prefix("keep: ").unwrap_or(&reason)
@@ -297,7 +299,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
     ));
     let root = state.root().display();
     out.push_str(&format!(
-        "  tidegate --state {root} log --kind promoted,kept,rolled-back,batch-rejected\n  \
+        "  tidegate --state {root} log --kind promoted,shelved,rolled-back,batch-refused\n  \
          tidegate --state {root} models\n  \
          tidegate --state {root} predict --input {}\n",
         files

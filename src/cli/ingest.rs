@@ -91,7 +91,7 @@ pub(crate) fn take_files(
                 ),
                 serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch, "recovered": true}),
             ),
-            Outcome::Rejected {
+            Outcome::Refused {
                 refusal,
                 kept_as,
                 entry,
@@ -101,7 +101,7 @@ pub(crate) fn take_files(
                     .as_ref()
                     .map(|p| format!("{}.why.json", shown(state, p)));
                 let mut d = format!(
-                    "refused, nothing stored ({} problem{}): {}",
+                    "nothing stored ({} problem{}): {}",
                     refusal.total,
                     if refusal.total == 1 { "" } else { "s" },
                     refusal.first()
@@ -109,11 +109,11 @@ pub(crate) fn take_files(
                 if let Some(w) = &why {
                     d.push_str(&format!("; all problems in {w}"));
                 }
-                errors.push(format!("{shown_file}: {d}"));
+                errors.push(format!("{shown_file}: refused, {d}"));
                 (
-                    "rejected",
+                    "refused",
                     d,
-                    serde_json::json!({"file": shown_file, "status": "rejected", "problems_total": refusal.total, "problems": refusal.problems, "why": why, "audit_seq": entry.seq}),
+                    serde_json::json!({"file": shown_file, "status": "refused", "problems_total": refusal.total, "problems": refusal.problems, "why": why, "audit_seq": entry.seq}),
                 )
             }
             Outcome::NotReady { reason } => {

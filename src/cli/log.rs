@@ -14,7 +14,7 @@ pub struct Args {
     /// Only entries at or before this time (same forms as --since).
     #[arg(long, value_name = "WHEN")]
     until: Option<String>,
-    /// Only these kinds, comma-separated (e.g. batch-accepted,batch-rejected).
+    /// Only these kinds, comma-separated (e.g. batch-accepted,batch-refused).
     #[arg(long, value_name = "KINDS", value_delimiter = ',')]
     kind: Vec<String>,
     /// Only entries about this batch.
@@ -38,11 +38,19 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             return Ok(Exit::Usage);
         }
     };
-    if let Some(bad) = args
+    // A kind's former name (from scripts written before the rename) means
+    // the kind it became.
+    let kinds: Vec<String> = args
         .kind
         .iter()
-        .find(|k| !Event::KINDS.contains(&k.as_str()))
-    {
+        .map(|k| {
+            Event::FORMER_KINDS
+                .iter()
+                .find(|(former, _)| former == k)
+                .map_or_else(|| k.clone(), |(_, now)| now.to_string())
+        })
+        .collect();
+    if let Some(bad) = kinds.iter().find(|k| !Event::KINDS.contains(&k.as_str())) {
         eprintln!(
             "error: unknown kind {bad:?}; known kinds: {}",
             Event::KINDS.join(", ")
@@ -59,7 +67,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     let filter = Filter {
         since,
         until,
-        kinds: args.kind.clone(),
+        kinds,
         batch: args.batch,
         model: args.model,
         limit: args.limit,

@@ -298,9 +298,9 @@ fn outcome_color(cell: &str) -> Option<&'static str> {
     let word = cell.split_whitespace().next().unwrap_or("");
     match word.trim_end_matches(',') {
         "promote" | "promoted" | "approved" | "accepted" | "steady" => Some("32"),
-        "keep" | "kept" | "declined" | "duplicate" | "batch-duplicate" | "shifted" => Some("33"),
-        "rolled-back" | "batch-rejected" | "rejected" | "refused" | "regressed"
-        | "cycle-abandoned" | "schema-migrated" => Some("31"),
+        "keep" | "shelved" | "declined" | "duplicate" | "batch-duplicate" | "shifted" => Some("33"),
+        "rolled-back" | "batch-refused" | "refused" | "regressed" | "cycle-abandoned"
+        | "schema-migrated" => Some("31"),
         "awaiting-approval" | "await-approval" => Some("36"),
         _ => None,
     }
@@ -373,16 +373,20 @@ mod tests {
                 "12.5".to_string(),
                 "promoted".to_string(),
             ],
-            vec!["m000002".to_string(), "3".to_string(), "kept".to_string()],
+            vec![
+                "m000002".to_string(),
+                "3".to_string(),
+                "shelved".to_string(),
+            ],
         ];
         let plain = table_styled(&["model", "loss", "decision"], &rows, false);
         let lines: Vec<&str> = plain.lines().collect();
         assert_eq!(lines[1], "m000001  12.5  promoted");
-        assert_eq!(lines[2], "m000002     3  kept");
+        assert_eq!(lines[2], "m000002     3  shelved");
         assert!(!plain.contains('\x1b'));
         let colored = table_styled(&["model", "loss", "decision"], &rows, true);
         assert!(colored.contains("\x1b[32mpromoted\x1b[0m"), "{colored:?}");
-        assert!(colored.contains("\x1b[33mkept\x1b[0m"), "{colored:?}");
+        assert!(colored.contains("\x1b[33mshelved\x1b[0m"), "{colored:?}");
         assert!(
             colored.lines().next().unwrap().starts_with("model"),
             "header plain"

@@ -24,7 +24,7 @@ pub struct Summary {
     pub rows: u64,
     pub train_rows: u64,
     pub holdout_rows: u64,
-    pub rejected_files: u64,
+    pub refused_files: u64,
     pub duplicate_files: u64,
     /// Category values per column, in order of first appearance.
     pub vocabularies: BTreeMap<String, Vec<String>>,
@@ -131,7 +131,7 @@ impl Summary {
                             .extend(values.iter().cloned());
                     }
                 }
-                Event::BatchRejected { .. } => s.rejected_files += 1,
+                Event::BatchRefused { .. } => s.refused_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
                 Event::Approved { model, .. } | Event::RolledBack { to: model, .. } => {
                     s.serving = Some(*model);
@@ -146,7 +146,7 @@ impl Summary {
                     s.serving = Some(*model);
                     s.last_decision = Some(e.event.summary());
                 }
-                Event::Kept { .. } | Event::AwaitingApproval { .. } => {
+                Event::Shelved { .. } | Event::AwaitingApproval { .. } => {
                     s.last_decision = Some(e.event.summary())
                 }
                 Event::CandidateTrained {
@@ -191,7 +191,8 @@ impl Summary {
                 | Event::Restored { .. }
                 | Event::BaselinesScored { .. }
                 | Event::CycleAbandoned { .. }
-                | Event::ModelExported { .. } => {}
+                | Event::ModelExported { .. }
+                | Event::FolderRenamed { .. } => {}
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
@@ -322,8 +323,8 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         }
     }
     out.push_str(&format!(
-        "files       {} rejected, {} duplicates\n",
-        summary.rejected_files, summary.duplicate_files
+        "files       {} refused, {} duplicates\n",
+        summary.refused_files, summary.duplicate_files
     ));
     if !inbox.waiting.is_empty() || !inbox.being_written.is_empty() {
         out.push_str(&format!(
@@ -430,7 +431,7 @@ mod tests {
                 new_categories: cats.clone(),
                 drift: None,
             },
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file: "b".into(),
                 file_hash: "h2".into(),
                 problems: 3,
@@ -463,7 +464,7 @@ mod tests {
             (s.batches, s.rows, s.train_rows, s.holdout_rows),
             (2, 15, 12, 3)
         );
-        assert_eq!((s.rejected_files, s.duplicate_files), (1, 1));
+        assert_eq!((s.refused_files, s.duplicate_files), (1, 1));
         assert_eq!(s.vocabularies, cats);
     }
 }

@@ -358,7 +358,7 @@ impl<C: Clock> Daemon<C> {
             Ok(Outcome::Completed { batch }) => {
                 tracing::info!("{shown}: already stored as batch {batch}; archiving finished")
             }
-            Ok(Outcome::Rejected {
+            Ok(Outcome::Refused {
                 refusal, kept_as, ..
             }) => tracing::warn!(
                 "{shown}: refused, nothing stored ({} problem(s)): {}{}",

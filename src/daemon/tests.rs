@@ -191,7 +191,7 @@ fn a_directory_in_the_inbox_is_refused_and_logged_not_left_there() {
     assert!(!dir.exists(), "the directory still sits in the inbox");
     assert!(
         r.state
-            .rejected()
+            .refused()
             .join("night-07")
             .join("rows.csv")
             .is_file()
@@ -202,7 +202,7 @@ fn a_directory_in_the_inbox_is_refused_and_logged_not_left_there() {
         .entries()
         .unwrap()
         .iter()
-        .filter(|e| e.event.kind() == "batch-rejected")
+        .filter(|e| e.event.kind() == "batch-refused")
         .map(|e| e.event.summary())
         .collect();
     assert_eq!(refused.len(), 1, "{refused:?}");
@@ -417,6 +417,6 @@ fn a_link_in_the_inbox_is_set_aside_unread_and_the_loop_goes_on() {
     assert!(!good.exists());
     // A link is refused (set aside with its reasons), never followed.
     assert!(fs::symlink_metadata(&dangling).is_err());
-    assert_eq!(r.count("batch-rejected"), 1);
+    assert_eq!(r.count("batch-refused"), 1);
     assert_eq!(r.count("batch-accepted"), 1);
 }

@@ -18,7 +18,7 @@ use crate::state::StateDir;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 pub enum Fate {
     Promoted,
-    Kept,
+    Shelved,
     RolledBack,
     Approved,
     Declined,
@@ -27,10 +27,21 @@ pub enum Fate {
 }
 
 impl Fate {
+    /// Every fate, in the order the report's legend lists them.
+    pub const ALL: [Fate; 7] = [
+        Fate::Promoted,
+        Fate::Approved,
+        Fate::Shelved,
+        Fate::Declined,
+        Fate::RolledBack,
+        Fate::Awaiting,
+        Fate::Undecided,
+    ];
+
     pub fn label(self) -> &'static str {
         match self {
             Fate::Promoted => "promoted",
-            Fate::Kept => "kept",
+            Fate::Shelved => "shelved",
             Fate::RolledBack => "rolled back",
             Fate::Approved => "approved",
             Fate::Declined => "declined",
@@ -71,7 +82,7 @@ pub enum Arrival {
         /// per column.
         new_values: Vec<String>,
     },
-    Rejected {
+    Refused {
         problems: u64,
         first_problem: String,
     },
@@ -155,8 +166,8 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
             }
-            Event::Kept { model, .. } => {
-                fates.insert(*model, Fate::Kept);
+            Event::Shelved { model, .. } => {
+                fates.insert(*model, Fate::Shelved);
             }
             Event::AwaitingApproval { model, .. } => {
                 fates.insert(*model, Fate::Awaiting);
@@ -204,7 +215,7 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                     rows_stored: stored,
                 });
             }
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file,
                 problems,
                 first_problem,
@@ -212,7 +223,7 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
             } => t.files.push(FileEvent {
                 time: e.time.clone(),
                 file: file.clone(),
-                what: Arrival::Rejected {
+                what: Arrival::Refused {
                     problems: *problems,
                     first_problem: first_problem.clone(),
                 },
@@ -411,9 +422,9 @@ mod tests {
 
     fn evidence() -> crate::audit::GateEvidence {
         crate::audit::GateEvidence {
-            baseline: "serving".into(),
+            compared_with: "serving".into(),
             rows: 100,
-            mean_loss_baseline: 2.0,
+            mean_loss_compared_with: 2.0,
             mean_loss_candidate: 1.0,
             relative_improvement: Some(0.5),
             t: Some(3.0),
@@ -433,7 +444,7 @@ mod tests {
     fn fates_follow_the_latest_decision_and_rows_accumulate() {
         let log = entries(vec![
             accepted(1, 10),
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file: "bad.csv".into(),
                 file_hash: "cd".into(),
                 problems: 2,
@@ -471,7 +482,7 @@ mod tests {
                 previous: Some(ModelId(1)),
                 evidence: evidence(),
             },
-            Event::Kept {
+            Event::Shelved {
                 cycle: 2,
                 model: ModelId(3),
                 serving: Some(ModelId(2)),
@@ -490,7 +501,11 @@ mod tests {
         let fates: Vec<(u64, Fate)> = t.candidates.iter().map(|c| (c.model.0, c.fate)).collect();
         assert_eq!(
             fates,
-            vec![(1, Fate::Promoted), (2, Fate::RolledBack), (3, Fate::Kept)]
+            vec![
+                (1, Fate::Promoted),
+                (2, Fate::RolledBack),
+                (3, Fate::Shelved)
+            ]
         );
         assert_eq!(t.candidates[1].holdout_loss, 3.0);
         assert_eq!(t.baselines.len(), 1);
@@ -499,7 +514,7 @@ mod tests {
         assert_eq!(stored, vec![10, 10, 15, 15]);
         assert!(matches!(
             t.files[1].what,
-            Arrival::Rejected { problems: 2, .. }
+            Arrival::Refused { problems: 2, .. }
         ));
         assert_eq!(t.batches(), vec![BatchId(1), BatchId(2)]);
     }

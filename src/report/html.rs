@@ -142,11 +142,11 @@ mod tests {
         let t = table(
             "log",
             &["kind", "summary"],
-            &[vec!["kept".into(), "<b>bold</b>".into()]],
+            &[vec!["shelved".into(), "<b>bold</b>".into()]],
             &[" data-seq=\"3\"".into()],
         );
         assert!(
-            t.contains("<tr data-seq=\"3\"><td>kept</td><td>&lt;b&gt;bold&lt;/b&gt;</td></tr>")
+            t.contains("<tr data-seq=\"3\"><td>shelved</td><td>&lt;b&gt;bold&lt;/b&gt;</td></tr>")
         );
         assert!(!t.contains("<b>"));
     }

@@ -71,7 +71,8 @@ pub fn build(
     // 1. Holdout loss per model version.
     let mut s = note(
         "Mean loss on the holdout rows of every candidate, by the retrain cycle that trained it; \
-         the marker says what the log records as its latest fate. Dashed lines: the cycle's ridge \
+         the marker says what the log records as its latest fate, each fate with a shape of its own \
+         as well as a colour. Dashed lines: the cycle's ridge \
          regression and trivial predictor, fitted on the same rows and scored on the same holdout rows.",
     );
     match charts::holdout(&t)? {
@@ -169,7 +170,7 @@ pub fn build(
         .files
         .iter()
         .filter_map(|f| match &f.what {
-            Arrival::Rejected {
+            Arrival::Refused {
                 problems,
                 first_problem,
             } => Some(vec![

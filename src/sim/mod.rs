@@ -322,9 +322,9 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         holdout_loss: mean(&worse.row_losses(&holdout, backend)?),
     };
     let evidence = crate::audit::GateEvidence {
-        baseline: "serving".into(),
+        compared_with: "serving".into(),
         rows: holdout.n_rows(),
-        mean_loss_baseline: base,
+        mean_loss_compared_with: base,
         mean_loss_candidate: record.holdout_loss,
         relative_improvement: None,
         t: None,

@@ -101,7 +101,7 @@ fn killed_ingests_never_lose_or_double_rows() {
     // Read what the finished run left before opening the store again (the
     // owner's start-up recovery would otherwise tidy up after a bug).
     // Nothing half-written is left behind.
-    for dir in [sd.root().to_path_buf(), sd.archive(), sd.rejected()] {
+    for dir in [sd.root().to_path_buf(), sd.archive(), sd.refused()] {
         for e in fs::read_dir(&dir).unwrap() {
             let name = e.unwrap().file_name().to_string_lossy().into_owned();
             assert!(

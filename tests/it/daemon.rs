@@ -222,7 +222,7 @@ fn watch_takes_published_files_and_retrains() {
         inbox_files(&env).is_empty()
     });
     wait_daemon(&env, 60, "the cycle's decision", || {
-        count_kind(&env, "kept") + count_kind(&env, "promoted") >= 1
+        count_kind(&env, "shelved") + count_kind(&env, "promoted") >= 1
     });
     let accepted = env.log_json(&["--kind", "batch-accepted"]);
     assert_eq!(accepted.len(), 3, "{accepted:?}");
@@ -234,8 +234,8 @@ fn watch_takes_published_files_and_retrains() {
         slow_entry["rows"], 12,
         "the half-written file was taken early: {slow_entry}"
     );
-    assert_eq!(count_kind(&env, "batch-rejected"), 1);
-    assert!(env.state().join("rejected/bad.csv.why.json").exists());
+    assert_eq!(count_kind(&env, "batch-refused"), 1);
+    assert!(env.state().join("refused/bad.csv.why.json").exists());
     assert_eq!(count_kind(&env, "cycle-started"), 1, "{}", watch_log(&env));
     let (code, took) = watch.stop();
     assert_eq!(code, 0, "{}", watch_log(&env));
@@ -316,15 +316,38 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
         .unwrap_or_else(|| panic!("no metrics address in the log: {log}"));
     let metrics = http_get(addr, "/metrics");
     assert!(metrics.starts_with("HTTP/1.1 200"), "{metrics}");
-    assert!(metrics.contains("\ntidegate_batches 3\n"), "{metrics}");
+    let (head, body) = metrics.split_once("\r\n\r\n").expect("headers end");
     assert!(
-        metrics.contains("\ntidegate_rejected_files 1\n"),
-        "{metrics}"
+        head.contains(
+            "\r\nContent-Type: application/openmetrics-text; version=1.0.0; charset=utf-8\r\n"
+        ),
+        "{head}"
     );
-    assert!(
-        metrics.contains("tidegate_last_decision{decision="),
-        "{metrics}"
+    let families = crate::openmetrics::parse(body).unwrap_or_else(|e| panic!("{e}\n{body}"));
+    let sample = |family: &str| {
+        let f = families
+            .iter()
+            .find(|f| f.name == family)
+            .unwrap_or_else(|| panic!("no family {family}: {body}"));
+        (
+            f.kind.clone(),
+            f.samples[0].name.clone(),
+            f.samples[0].value,
+        )
+    };
+    assert_eq!(
+        sample("tidegate_batches"),
+        ("gauge".into(), "tidegate_batches".into(), 3.0)
     );
+    assert_eq!(
+        sample("tidegate_refused_files"),
+        ("counter".into(), "tidegate_refused_files_total".into(), 1.0)
+    );
+    assert_eq!(
+        sample("tidegate_cycles_started").1,
+        "tidegate_cycles_started_total"
+    );
+    assert_eq!(sample("tidegate_last_decision").0, "gauge");
     assert!(http_get(addr, "/health").starts_with("HTTP/1.1 200"));
     assert!(http_get(addr, "/other").starts_with("HTTP/1.1 404"));
     // A second daemon is refused with the owner's PID.
@@ -621,13 +644,13 @@ fn killed_daemons_never_lose_or_double_a_file() {
         );
     }
     // Every bad file refused, kept with its reasons.
-    let rejected = of_kind("batch-rejected");
-    let rejected_set: BTreeSet<String> = rejected
+    let refused = of_kind("batch-refused");
+    let refused_set: BTreeSet<String> = refused
         .iter()
         .map(|e| e["file"].as_str().unwrap().to_string())
         .collect();
-    assert_eq!(rejected_set, bad, "a bad file not refused");
-    for e in &rejected {
+    assert_eq!(refused_set, bad, "a bad file not refused");
+    for e in &refused {
         let kept = env.state().join(e["kept_as"].as_str().unwrap());
         assert!(kept.exists(), "{} missing", kept.display());
         let why = kept.with_file_name(format!(
@@ -702,8 +725,8 @@ fn killed_daemons_never_lose_or_double_a_file() {
         at_points.values().sum::<usize>(),
         hits.join(", "),
         accepted_set.len(),
-        rejected_set.len(),
-        rejected.len(),
+        refused_set.len(),
+        refused.len(),
         of_kind("batch-duplicate").len(),
         want.len(),
         of_kind("cycle-started").len(),
@@ -785,7 +808,7 @@ fn latency_from_file_drop_to_decision() {
         if accepted.is_none() && seen(&["batch-accepted"], before) {
             accepted = Some(dropped.elapsed());
         }
-        if seen(&["promoted", "kept", "awaiting-approval"], before) {
+        if seen(&["promoted", "shelved", "awaiting-approval"], before) {
             break dropped.elapsed();
         }
         assert!(

@@ -145,7 +145,7 @@ fn colours_only_when_asked_or_on_a_terminal_without_no_color() {
         .output()
         .unwrap();
     assert_eq!(code(&out), 0, "{}", stderr(&out));
-    let log = ["log", "--kind", "promoted,kept"];
+    let log = ["log", "--kind", "promoted,shelved"];
     // Tests read a pipe, not a terminal: auto means no colours.
     assert!(!run(&log, false).contains('\x1b'));
     let forced = run(&[&["--color", "always"][..], &log[..]].concat(), false);

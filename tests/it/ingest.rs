@@ -266,7 +266,7 @@ fn malformed_files_are_refused_whole_with_reasons() {
         let out = env.ingest(&[data(&format!("bad/{name}"))]);
         assert_eq!(code(&out), 65, "{name}: {}{}", stdout(&out), stderr(&out));
         let text = stdout(&out);
-        assert!(text.contains("refused, nothing stored"), "{name}: {text}");
+        assert!(text.contains(": refused: nothing stored"), "{name}: {text}");
         assert!(text.contains(words), "{name}: {text}");
         // The JSON form names line, column and reason.
         let out = env
@@ -276,7 +276,7 @@ fn malformed_files_are_refused_whole_with_reasons() {
             .output()
             .unwrap();
         let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
-        assert_eq!(v["status"], "rejected", "{name}");
+        assert_eq!(v["status"], "refused", "{name}");
         let first = &v["problems"][0];
         assert_eq!(first["line"], *line, "{name}: {first}");
         assert_eq!(first["column"].as_str(), *column, "{name}: {first}");
@@ -292,17 +292,17 @@ fn malformed_files_are_refused_whole_with_reasons() {
     );
     let s = env.status_json();
     assert_eq!(s["summary"]["batches"], 0);
-    assert_eq!(s["summary"]["rejected_files"], 2 * BAD.len());
+    assert_eq!(s["summary"]["refused_files"], 2 * BAD.len());
     // Each refused file that could be read is kept with its reasons.
     let why: serde_json::Value = serde_json::from_slice(
-        &fs::read(env.state().join("rejected/many-bad-rows.csv.why.json")).unwrap(),
+        &fs::read(env.state().join("refused/many-bad-rows.csv.why.json")).unwrap(),
     )
     .unwrap();
     assert_eq!(why["problems_total"], 150);
     assert_eq!(why["problems_listed"], 100);
     assert_eq!(why["problems"][0]["value"], "hot");
     assert_eq!(
-        fs::read(env.state().join("rejected/many-bad-rows.csv")).unwrap(),
+        fs::read(env.state().join("refused/many-bad-rows.csv")).unwrap(),
         fs::read(data("bad/many-bad-rows.csv")).unwrap()
     );
 }
@@ -315,13 +315,13 @@ fn refused_file_message_names_file_line_column_and_fix() {
     assert_eq!(
         stdout(&out).trim(),
         format!(
-            "{}: rejected: refused, nothing stored (3 problems): line 41, column \"temp_c\" (field 5), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in rejected/night-05.csv.why.json",
+            "{}: refused: nothing stored (3 problems): line 41, column \"temp_c\" (field 5), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in refused/night-05.csv.why.json",
             repo("demo-data/night-05.csv").display()
         )
     );
-    let log = env.log_json(&["--kind", "batch-rejected"]);
+    let log = env.log_json(&["--kind", "batch-refused"]);
     assert_eq!(log[0]["problems"], 3);
-    assert_eq!(log[0]["kept_as"], "rejected/night-05.csv");
+    assert_eq!(log[0]["kept_as"], "refused/night-05.csv");
 }
 
 #[test]
@@ -367,7 +367,7 @@ fn demo_batches_ingest_with_the_bad_night_refused() {
     assert_eq!(code(&out), 65, "one file is refused");
     let text = stdout(&out);
     assert_eq!(text.matches(": accepted:").count(), 11, "{text}");
-    assert_eq!(text.matches(": rejected:").count(), 1, "{text}");
+    assert_eq!(text.matches(": refused:").count(), 1, "{text}");
     assert_eq!(text.matches(": duplicate:").count(), 1, "{text}");
     let s = env.status_json();
     assert_eq!(s["summary"]["batches"], 11);
@@ -444,7 +444,7 @@ fn log_filters_and_json_lines() {
         vec![
             "initialized",
             "batch-accepted",
-            "batch-rejected",
+            "batch-refused",
             "batch-accepted",
             "batch-duplicate"
         ]
@@ -607,7 +607,7 @@ fn a_file_over_the_size_limit_is_refused_unread_even_at_two_gigabytes() {
     assert!(started.elapsed().as_secs() < 10, "refused without reading");
     assert_eq!(env.status_json()["summary"]["rows"], 0);
     assert!(
-        !env.state().join("rejected/huge.csv").exists(),
+        !env.state().join("refused/huge.csv").exists(),
         "an oversized file is not copied"
     );
 }

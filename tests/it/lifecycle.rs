@@ -1,6 +1,6 @@
 //! Retrain cycles and predictions through the real binary on the demo data:
 //! the first model must beat the trivial predictor, later candidates face
-//! the serving model, a damaged candidate is kept, a dry run changes
+//! the serving model, a damaged candidate is shelved, a dry run changes
 //! nothing, and `predict` scores files with the serving model.
 
 use std::fs;
@@ -40,13 +40,13 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     let env = demo_with(&["01", "02", "03", "04"]);
     let r = retrain(&env, &[]);
     assert_eq!(r["outcome"], "promote", "{r}");
-    assert_eq!(r["baseline"], "trivial predictor");
+    assert_eq!(r["compared_with"], "trivial predictor");
     assert_eq!(r["candidates"].as_array().unwrap().len(), 1);
     assert_eq!(r["candidates"][0]["run"], "cold");
     assert_eq!(r["serving_after"], 1);
     assert!(
         r["candidates"][0]["holdout_loss"].as_f64().unwrap()
-            < r["baseline_loss"].as_f64().unwrap() / 2.0
+            < r["compared_with_loss"].as_f64().unwrap() / 2.0
     );
     assert_eq!(
         fs::read_to_string(env.state().join("serving")).unwrap(),
@@ -63,7 +63,7 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     assert_eq!(code(&out), 0);
     let r = retrain(&env, &[]);
     assert_eq!(r["serving_before"], 1);
-    assert_eq!(r["baseline"], "m000001");
+    assert_eq!(r["compared_with"], "m000001");
     assert_eq!(r["candidates"][0]["run"], "warm");
     assert_eq!(r["new_batches"], serde_json::json!([5, 6]));
     // The warm parent took the values nights 6 and 7 brought: Saturday,
@@ -85,14 +85,14 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
             if decided == "promote" {
                 "promoted".into()
             } else {
-                "kept".into()
+                "shelved".into()
             }
         ]
     );
     // The reviewer's question: what changed, when, on which evidence.
     let promoted = env.log_json(&["--kind", "promoted", "--model", "m000001"]);
     assert_eq!(promoted.len(), 1);
-    assert_eq!(promoted[0]["evidence"]["baseline"], "trivial");
+    assert_eq!(promoted[0]["evidence"]["compared_with"], "trivial");
     assert!(promoted[0]["evidence"]["p"].as_f64().unwrap() < 0.05);
     // The rank test on per-batch means is recorded beside it (with a few
     // batches it cannot go below 1/2^batches).
@@ -104,7 +104,7 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
 }
 
 #[test]
-fn a_candidate_trained_on_scrambled_targets_is_kept() {
+fn a_candidate_trained_on_scrambled_targets_is_shelved() {
     let env = demo_with(&["01", "02", "03", "04", "06"]);
     assert_eq!(retrain(&env, &[])["outcome"], "promote");
     // Night 7 with its target column replaced by the values of another
@@ -132,11 +132,19 @@ fn a_candidate_trained_on_scrambled_targets_is_kept() {
         fs::read_to_string(env.state().join("serving")).unwrap(),
         "m000001\n"
     );
-    // The kept candidate stays on disk, and the log says why.
+    // The shelved candidate stays on disk, and the log says why (the kind's
+    // former name still selects it).
     assert!(env.state().join("models/m000002/manifest.json").exists());
-    let kept = env.log_json(&["--kind", "kept"]);
-    assert_eq!(kept.last().unwrap()["model"], 2);
-    assert!(!kept.last().unwrap()["reason"].as_str().unwrap().is_empty());
+    let shelved = env.log_json(&["--kind", "shelved"]);
+    assert_eq!(shelved.last().unwrap()["model"], 2);
+    assert_eq!(shelved.last().unwrap()["kind"], "shelved");
+    assert!(
+        !shelved.last().unwrap()["reason"]
+            .as_str()
+            .unwrap()
+            .is_empty()
+    );
+    assert_eq!(env.log_json(&["--kind", "kept"]), shelved);
 }
 
 #[test]
