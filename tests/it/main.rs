@@ -13,6 +13,7 @@ mod migrate;
 mod onnx;
 mod paths;
 mod perms;
+mod powerloss;
 mod report;
 mod screens;
 mod support;
