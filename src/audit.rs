@@ -452,6 +452,21 @@ impl Event {
     /// old logs read as the new kinds, and `log --kind` takes either.
     pub const FORMER_KINDS: &'static [(&'static str, &'static str)] =
         &[("batch-rejected", "batch-refused"), ("kept", "shelved")];
+    /// The serving pointer's move this event records, if any: the model
+    /// that serves from now, the one that served before it, and whether it
+    /// came back by a rollback (rather than a promotion or an approval).
+    pub fn arrival(&self) -> Option<(ModelId, Option<ModelId>, bool)> {
+        match self {
+            Event::Promoted {
+                model, previous, ..
+            }
+            | Event::Approved {
+                model, previous, ..
+            } => Some((*model, *previous, false)),
+            Event::RolledBack { from, to, .. } => Some((*to, Some(*from), true)),
+            _ => None,
+        }
+    }
 
     /// The model an event is about, if any.
     pub fn model(&self) -> Option<ModelId> {

@@ -23,7 +23,16 @@
 //! What the checks remember between batches lives in the store's meta tree,
 //! written in the same transaction as the `fresh-checked` entry: the
 //! serving model's monitor ([`META_MONITOR`], removed whenever the serving
-//! model changes) and the recent loss levels ([`META_LEVELS`]).
+//! model changes), the recent loss levels ([`META_LEVELS`]) and the last
+//! batch checked ([`META_CHECKED`]). A batch stored after that one which the
+//! serving model has not trained on missed its check (a crash between the
+//! commit and the check, or a failure in between); every owner's start runs
+//! the missing checks ([`run_missing`]).
+//!
+//! A failure to write the check's entry or the rollback (store, audit log,
+//! serving file) is fatal to the caller ([`FreshError::is_fatal`]): the
+//! store's transaction may have committed in memory while the entry's
+//! sequence number did not advance, so going on could reuse it.
 
 use chrono::Utc;
 
@@ -58,6 +67,27 @@ pub enum FreshError {
     Audit(#[from] crate::audit::MirrorError),
 }
 
+impl FreshError {
+    /// Whether the error came from writing the store, the audit log or the
+    /// state dir, after which the process must stop (as in the cycle).
+    /// Otherwise a model could not be loaded or scored: nothing was written,
+    /// the batch stays stored and the failure is reported.
+    pub fn is_fatal(&self) -> bool {
+        match self {
+            FreshError::Store(_) | FreshError::Audit(_) => true,
+            FreshError::Cycle(e) => matches!(
+                e,
+                CycleError::Store(_) | CycleError::State(_) | CycleError::Audit(_)
+            ),
+            FreshError::Decision(e) => matches!(
+                e,
+                DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
+            ),
+            FreshError::Model(_) => false,
+        }
+    }
+}
+
 /// Meta key of the serving model's monitor (see [`MonitorState`]).
 pub const META_MONITOR: &[u8] = b"fresh/monitor";
 /// Meta key of the recent loss levels of batches that were not flagged.
@@ -66,6 +96,9 @@ pub const META_LEVELS: &[u8] = b"fresh/levels";
 /// rows stay out of later checks' reference, so a change is compared with
 /// how things were before it, not with itself.
 pub const META_SHIFTED: &[u8] = b"fresh/shifted";
+/// Meta key of the highest `BatchId` whose check has run (its entry is in
+/// the same transaction).
+pub const META_CHECKED: &[u8] = b"fresh/checked";
 /// Observations one monitor keeps (about seven years of nightly files):
 /// with 24 bytes each the value stays under sled's 64 KiB.
 pub const MONITOR_MAX_BATCHES: usize = 2_500;
@@ -232,6 +265,10 @@ pub fn check_batch(
     batch: BatchId,
     user: &str,
 ) -> Result<Option<Outcome>, FreshError> {
+    crate::failpoint::hit("fresh:before-check").map_err(|source| StoreError::Io {
+        path: owner.store.path().to_path_buf(),
+        source,
+    })?;
     let Some(serving) = owner.store.serving()? else {
         return Ok(None);
     };
@@ -519,6 +556,8 @@ pub fn check_batch(
         .into();
     }
     evidence.reason = reasons.join("; ");
+    let checked = last_checked(owner)?.map_or(batch, |c| c.max(batch));
+    meta.push((META_CHECKED.to_vec(), Some(checked.key().to_vec())));
 
     let changes: Vec<MetaChange<'_>> = meta.iter().map(|(k, v)| (&k[..], v.clone())).collect();
     let entry = owner.store.record_with_meta(
@@ -549,6 +588,73 @@ pub fn check_batch(
         entry,
         rollback,
     }))
+}
+
+/// The highest batch whose check ran: the store's marker, or for a store
+/// written before the marker existed, the newest `fresh-checked` entry of
+/// the log (read once: the next check writes the marker).
+fn last_checked(owner: &Owner) -> Result<Option<BatchId>, FreshError> {
+    if let Some(v) = owner.store.meta_value(META_CHECKED)? {
+        return Ok(BatchId::from_key(&v));
+    }
+    let mut last = None;
+    for (_, line) in owner.store.audit_entries()? {
+        // Most lines are other events: skip them without parsing.
+        if !line.windows(13).any(|w| w == b"fresh-checked") {
+            continue;
+        }
+        if let Ok(Entry {
+            event: Event::FreshChecked { check },
+            ..
+        }) = Entry::from_line(&line)
+        {
+            last = last.max(Some(check.batch));
+        }
+    }
+    Ok(last)
+}
+
+/// Batches that missed their check: stored after the last checked batch,
+/// while a model serves that has not trained on them.
+pub fn missing(owner: &Owner) -> Result<Vec<BatchId>, FreshError> {
+    let next = owner.store.next_batch_id();
+    let Some(serving) = owner.store.serving()? else {
+        return Ok(Vec::new());
+    };
+    let trained = model_record(owner, serving)?.trained_through;
+    if next.0 <= trained.0 + 1 {
+        return Ok(Vec::new());
+    }
+    let checked = last_checked(owner)?.map_or(0, |b| b.0);
+    Ok((trained.0.max(checked) + 1..next.0).map(BatchId).collect())
+}
+
+/// Runs the checks that [`missing`] finds, in batch order; returns how
+/// many ran. A check that cannot run (a model that does not load) is
+/// reported and skipped; a failure to write is returned.
+pub fn run_missing(owner: &mut Owner, user: &str) -> Result<usize, FreshError> {
+    let mut ran = 0;
+    for batch in missing(owner)? {
+        match check_batch(owner, batch, user) {
+            Ok(found) => {
+                ran += 1;
+                if let Some(found) = found {
+                    tracing::info!(
+                        "batch {batch}: fresh-data check missed before, run now: {}",
+                        found.verdict()
+                    );
+                    if let Some(r) = &found.rollback {
+                        tracing::warn!("batch {batch}: {}", r.event.summary());
+                    }
+                }
+            }
+            Err(e) if !e.is_fatal() => {
+                tracing::warn!("batch {batch}: the fresh-data check could not run: {e}")
+            }
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(ran)
 }
 
 /// Mean of `d` and the variance of that mean (s² / n; 0 for one value).

@@ -11,7 +11,7 @@ use crate::ids::ModelId;
 use crate::model::ModelError;
 use crate::model::checkpoint::{Checkpoint, model_dir};
 use crate::state::{Owner, StateError};
-use crate::store::{META_SERVING, StoreError};
+use crate::store::{META_SERVING, Store, StoreError};
 
 /// Why a decision could not be taken.
 #[derive(Debug, thiserror::Error)]
@@ -200,24 +200,32 @@ pub fn rollback_automatic(
     commit(owner, event, user, Some(to), false)
 }
 
-/// How `current` came to serve, from the log: the model serving before it,
-/// and whether it came back by a rollback (rather than a promotion or an
-/// approval).
+/// How `current` came to serve: the model serving before it, and whether
+/// it came back by a rollback (rather than a promotion or an approval).
+/// Kept in the store beside each move of the serving pointer; a model that
+/// arrived in a store written before those records is looked up in the log.
 fn arrival(owner: &Owner, current: ModelId) -> Result<(Option<ModelId>, bool), DecisionError> {
+    if let Some(found) = owner.store.arrival(current)? {
+        return Ok(found);
+    }
+    Ok(arrival_from_log(&owner.store, current)?)
+}
+
+/// [`arrival`] read from the whole log: the last entry that made `current`
+/// serve. (None, false) when it never served.
+pub fn arrival_from_log(
+    store: &Store,
+    current: ModelId,
+) -> Result<(Option<ModelId>, bool), StoreError> {
     let mut found = (None, false);
-    for (_, line) in owner.store.audit_entries()? {
+    for (_, line) in store.audit_entries()? {
         let Ok(entry) = Entry::from_line(&line) else {
             continue;
         };
-        match entry.event {
-            Event::Promoted {
-                model, previous: p, ..
-            }
-            | Event::Approved {
-                model, previous: p, ..
-            } if model == current => found = (p, false),
-            Event::RolledBack { to, from, .. } if to == current => found = (Some(from), true),
-            _ => {}
+        if let Some((model, previous, by_rollback)) = entry.event.arrival()
+            && model == current
+        {
+            found = (previous, by_rollback);
         }
     }
     Ok(found)
@@ -237,4 +245,130 @@ pub fn replaced_by_promotion(
 /// The model that served before `current` started serving.
 fn previous_of(owner: &Owner, current: ModelId) -> Result<Option<ModelId>, DecisionError> {
     Ok(arrival(owner, current)?.0)
+}
+
+#[cfg(test)]
+pub(crate) mod tests {
+    use super::*;
+    use crate::audit::GateEvidence;
+    use crate::config::Config;
+    use crate::schema::Schema;
+
+    /// A new store under `dir` for a small schema.
+    fn small_config() -> Config {
+        let text = "[data]\ntarget = \"y\"\ntask = \"regression\"\n[[data.columns]]\nname = \"x\"\n\
+                    kind = \"number\"\n[[data.columns]]\nname = \"y\"\nkind = \"number\"\n";
+        Config::parse(text, std::path::Path::new("t.toml")).unwrap()
+    }
+
+    pub(crate) fn store_in(dir: &std::path::Path) -> Store {
+        let config = small_config();
+        Store::create(
+            &dir.join("store"),
+            &Schema::from_config(&config),
+            &config.schema_fingerprint(),
+        )
+        .unwrap()
+    }
+
+    pub(crate) fn promoted(model: u64, previous: Option<u64>) -> Event {
+        Event::Promoted {
+            cycle: model,
+            model: ModelId(model),
+            previous: previous.map(ModelId),
+            evidence: GateEvidence {
+                baseline: "serving".into(),
+                rows: 100,
+                mean_loss_baseline: 1.0,
+                mean_loss_candidate: 0.9,
+                relative_improvement: Some(0.1),
+                t: Some(3.0),
+                p: 0.001,
+                batches: None,
+                batches_needed: None,
+                candidates: None,
+                p_unadjusted: None,
+                wilcoxon_p: None,
+                new_rows: 10,
+                old_rows: 90,
+                reason: "better".into(),
+            },
+        }
+    }
+
+    #[test]
+    fn stored_arrivals_match_a_full_reading_of_the_log() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = store_in(dir.path());
+        let rolled = |from: u64, to: u64| Event::RolledBack {
+            from: ModelId(from),
+            to: ModelId(to),
+            how: "manual".into(),
+            reason: "test".into(),
+            evidence: None,
+        };
+        let approved = |model: u64, previous: u64| Event::Approved {
+            model: ModelId(model),
+            previous: Some(ModelId(previous)),
+            reason: "looks right".into(),
+        };
+        let declined = |model: u64| Event::Declined {
+            model: ModelId(model),
+            reason: "no".into(),
+        };
+        // Every way the pointer moves, a model arriving twice in different
+        // ways (m1, m2), and entries that move nothing.
+        let events = vec![
+            promoted(1, None),
+            promoted(2, Some(1)),
+            rolled(2, 1),
+            declined(3),
+            approved(4, 1),
+            promoted(5, Some(4)),
+            rolled(5, 2),
+            promoted(6, Some(2)),
+            rolled(6, 5),
+            promoted(1, Some(5)),
+        ];
+        for e in events {
+            store
+                .record_with_meta(e, "tester", chrono::Utc::now(), &[])
+                .unwrap();
+        }
+        for m in 1..=7 {
+            let from_log = arrival_from_log(&store, ModelId(m)).unwrap();
+            let stored = store.arrival(ModelId(m)).unwrap();
+            if [3, 7].contains(&m) {
+                assert_eq!(stored, None, "m{m} never served");
+                assert_eq!(from_log, (None, false));
+            } else {
+                assert_eq!(stored, Some(from_log), "m{m}");
+            }
+        }
+        assert_eq!(
+            store.arrival(ModelId(1)).unwrap(),
+            Some((Some(ModelId(5)), false))
+        );
+        assert_eq!(
+            store.arrival(ModelId(5)).unwrap(),
+            Some((Some(ModelId(6)), true))
+        );
+        // And they survive a reopen, as the log does.
+        drop(store);
+        let store = store_in_reopen(dir.path());
+        assert_eq!(
+            store.arrival(ModelId(2)).unwrap(),
+            Some((Some(ModelId(5)), true))
+        );
+    }
+
+    fn store_in_reopen(dir: &std::path::Path) -> Store {
+        let config = small_config();
+        Store::open(
+            &dir.join("store"),
+            &Schema::from_config(&config),
+            &config.schema_fingerprint(),
+        )
+        .unwrap()
+    }
 }

@@ -88,6 +88,8 @@ pub enum StateError {
     Audit(#[from] crate::audit::MirrorError),
     #[error(transparent)]
     Export(#[from] crate::export::ExportError),
+    #[error("the fresh-data check of a batch that missed it: {0}")]
+    Fresh(Box<crate::fresh::FreshError>),
 }
 
 fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
@@ -241,11 +243,15 @@ pub struct Recovery {
     /// Refused files moved from the folder's former name (`None`: there was
     /// no such folder).
     pub refused_moved: Option<u64>,
+    /// Batches stored without their fresh-data check (a crash or failure
+    /// between the commit and the check) whose check ran now.
+    pub fresh_checks_run: usize,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
 /// repairs whatever a crash left (stale temps, unarchived accepted files,
-/// audit lines missing from `audit.jsonl`).
+/// audit lines missing from `audit.jsonl`, fresh-data checks that did not
+/// run).
 pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), StateError> {
     open_with(state, config, true)
 }
@@ -312,16 +318,19 @@ fn open_with(
         rec.export_rewritten =
             crate::export::catch_up(state, config, &mut store, &mirror, &current_user())?;
     }
-    Ok((
-        Owner {
-            state: state.clone(),
-            config: config.clone(),
-            store,
-            mirror,
-            _lock: lock,
-        },
-        rec,
-    ))
+    let mut owner = Owner {
+        state: state.clone(),
+        config: config.clone(),
+        store,
+        mirror,
+        _lock: lock,
+    };
+    if catch_up_log {
+        // Last: the check may roll back, which needs the log caught up.
+        rec.fresh_checks_run = crate::fresh::run_missing(&mut owner, &current_user())
+            .map_err(|e| StateError::Fresh(Box::new(e)))?;
+    }
+    Ok((owner, rec))
 }
 
 /// The folder refused files are written to.

@@ -7,6 +7,7 @@
 //! |-----------|---------------------------------------|--------------------------------|
 //! | `meta`    | name                                  | JSON or u64                    |
 //! | `meta`    | `drift_history/` + column name        | JSON `drift::PastDistances`    |
+//! | `meta`    | `arrival/` + `ModelId`                | previous `ModelId` (0: none), rollback byte |
 //! | `batches` | `BatchId`                             | JSON `BatchRecord`             |
 //! | `hashes`  | blake3 of the file (32 bytes)         | `BatchId`                      |
 //! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s    |
@@ -149,6 +150,20 @@ pub const META_OPEN_CYCLE: &[u8] = b"open_cycle";
 /// (at most `drift::MAX_WINDOW` numbers each, so far below 64 KiB). A store
 /// without them (written by an older version) starts with empty histories.
 pub const META_DRIFT_HISTORY: &[u8] = b"drift_history/";
+/// Prefix of the keys saying how each model last came to serve (see
+/// [`Store::arrival`]); written by the transaction of the entry that moved
+/// the serving pointer, so they always agree with the log.
+pub const META_ARRIVAL: &[u8] = b"arrival/";
+
+fn arrival_key(model: ModelId) -> Vec<u8> {
+    [META_ARRIVAL, &model.key()[..]].concat()
+}
+
+fn encode_arrival(previous: Option<ModelId>, by_rollback: bool) -> Vec<u8> {
+    let mut v = previous.map_or([0; 8], |p| p.key()).to_vec();
+    v.push(u8::from(by_rollback));
+    v
+}
 
 impl Store {
     /// Creates a new store at `path` (which must not exist yet).
@@ -590,6 +605,9 @@ impl Store {
         time: chrono::DateTime<chrono::Utc>,
         meta_values: &[MetaChange<'_>],
     ) -> Result<Entry, StoreError> {
+        // A move of the serving pointer also records how the model arrived,
+        // so nobody needs to read the whole log to learn it.
+        let arrival = entry_arrival(&event);
         let entry = self.seal(event, user, time);
         let line = entry.line().into_bytes();
         let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.audit)
@@ -599,6 +617,9 @@ impl Store {
                         Some(v) => meta.insert(*k, v.as_slice())?,
                         None => meta.remove(*k)?,
                     };
+                }
+                if let Some((k, v)) = &arrival {
+                    meta.insert(k.as_slice(), v.as_slice())?;
                 }
                 audit.insert(&entry.seq.key()[..], line.as_slice())?;
                 Ok(())
@@ -673,6 +694,24 @@ impl Store {
         Ok(out)
     }
 
+    /// How `model` last came to serve, as recorded beside the entry that
+    /// moved the serving pointer: the model serving before it and whether
+    /// it came back by a rollback. `None` when no such record exists (the
+    /// model never served, or it arrived in a store written before these
+    /// records; `lifecycle` then reads the log).
+    pub fn arrival(&self, model: ModelId) -> Result<Option<(Option<ModelId>, bool)>, StoreError> {
+        let Some(v) = self.meta_value(&arrival_key(model))? else {
+            return Ok(None);
+        };
+        if v.len() != 9 || v[8] > 1 {
+            return Err(self.corrupt(format!(
+                "arrival record of {model} has a bad length or flag"
+            )));
+        }
+        let previous = ModelId::from_key(&v[..8]).filter(|p| p.0 != 0);
+        Ok(Some((previous, v[8] == 1)))
+    }
+
     /// Records an event that touches no data (rejections, duplicates, …).
     pub fn record(
         &mut self,
@@ -680,6 +719,10 @@ impl Store {
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<Entry, StoreError> {
+        debug_assert!(
+            entry_arrival(&event).is_none(),
+            "a move of the serving pointer goes through record_with_meta"
+        );
         let entry = self.seal(event, user, time);
         self.audit
             .insert(entry.seq.key(), entry.line().into_bytes())
@@ -978,6 +1021,13 @@ impl Store {
         })?;
         Ok(())
     }
+}
+
+/// The `arrival/` key and value an event writes, if it moves the pointer.
+fn entry_arrival(event: &Event) -> Option<(Vec<u8>, Vec<u8>)> {
+    event.arrival().map(|(model, previous, by_rollback)| {
+        (arrival_key(model), encode_arrival(previous, by_rollback))
+    })
 }
 
 /// A batch's rows on one side of the split as `chunks` entries: keys

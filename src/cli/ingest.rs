@@ -127,8 +127,9 @@ pub(crate) fn take_files(
             }
         };
         if let Outcome::Accepted { batch, .. } = &outcome {
-            // The batch is stored whatever the check says; a failure to run
-            // it is reported, not fatal.
+            // The batch is stored whatever the check says; a model that
+            // cannot be scored is reported, a failure to write ends the
+            // command (the next start runs the check again).
             match fresh::check_batch(owner, batch.id, user) {
                 Ok(Some(found)) => {
                     let e = &found.evidence;
@@ -140,6 +141,12 @@ pub(crate) fn take_files(
                     json["rolled_back"] = serde_json::Value::Bool(found.rollback.is_some());
                 }
                 Ok(None) => {}
+                Err(err) if err.is_fatal() => {
+                    return Err(anyhow::Error::new(err).context(format!(
+                        "{shown_file}: stored as batch {}, but its fresh-data check could not be recorded",
+                        batch.id
+                    )));
+                }
                 Err(err) => {
                     tracing::warn!("{shown_file}: the fresh-data check could not run: {err}");
                     detail.push_str(&format!("; fresh-data check failed: {err}"));

@@ -331,7 +331,7 @@ impl<C: Clock> Daemon<C> {
                     batch.rows()
                 );
                 self.untrained_rows += batch.rows();
-                let shifted = after_accept(owner, &batch, &self.user);
+                let shifted = after_accept(owner, &batch, &self.user)?;
                 let flagged = match &entry.event {
                     crate::audit::Event::BatchAccepted { drift: Some(d), .. } => {
                         d.flagged().iter().map(|c| c.to_string()).collect()
@@ -380,6 +380,9 @@ impl<C: Clock> Daemon<C> {
                     "{shown}: cannot be taken: {source}; it stays in the inbox until it changes"
                 );
                 self.stuck.insert(path.to_path_buf(), signature);
+                // It may have failed after its batch was stored (removing
+                // it from the inbox): that batch's check runs now.
+                crate::fresh::run_missing(owner, &self.user)?;
                 return Ok(());
             }
             Err(e) => return Err(e.into()),
@@ -882,26 +885,33 @@ pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
 
 /// Runs after each batch the daemon accepts from the inbox: the fresh-data
 /// check (serving model against the one it replaced, on the new rows; it
-/// may roll back). The batch is stored whatever the check finds, and a
-/// check that cannot run is reported, not fatal, as with `ingest`.
+/// may roll back). The batch is stored whatever the check finds; a check
+/// whose models cannot be scored is reported, as with `ingest`, and a
+/// failure to write its entry or rollback stops the daemon (the next start
+/// runs the check again).
 /// Returns whether the check saw the serving model's loss rise on the
 /// batch (a shift the per-column drift statistics may not see).
-pub fn after_accept(owner: &mut Owner, batch: &BatchRecord, user: &str) -> bool {
+pub fn after_accept(
+    owner: &mut Owner,
+    batch: &BatchRecord,
+    user: &str,
+) -> Result<bool, crate::fresh::FreshError> {
     match crate::fresh::check_batch(owner, batch.id, user) {
         Ok(Some(found)) => {
             tracing::info!("batch {}: fresh-data check: {}", batch.id, found.verdict());
             if let Some(r) = &found.rollback {
                 tracing::warn!("batch {}: {}", batch.id, r.event.summary());
             }
-            found.verdict() == "shifted"
+            Ok(found.verdict() == "shifted")
         }
-        Ok(None) => false,
+        Ok(None) => Ok(false),
+        Err(e) if e.is_fatal() => Err(e),
         Err(e) => {
             tracing::warn!(
                 "batch {}: the fresh-data check could not run: {e}",
                 batch.id
             );
-            false
+            Ok(false)
         }
     }
 }

@@ -15,6 +15,7 @@ mod onnx;
 mod openmetrics;
 mod paths;
 mod perms;
+mod powerloss;
 mod report;
 mod screens;
 mod support;
