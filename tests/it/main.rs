@@ -16,5 +16,6 @@ mod perms;
 mod report;
 mod screens;
 mod support;
+mod suspect;
 mod tamper;
 mod training;
