@@ -330,7 +330,7 @@ impl Default for GateConfig {
             fresh_min_rows: 100,
             auto_rollback: true,
             shift_alpha: 0.01,
-            suspect_alpha: 0.01,
+            suspect_alpha: 0.05,
         }
     }
 }
@@ -700,7 +700,7 @@ impl Config {
             (
                 "suspect_alpha",
                 g.suspect_alpha > 0.0 && g.suspect_alpha <= 0.5,
-                "suspect_alpha must be in (0, 0.5]; 0.01 is usual",
+                "suspect_alpha must be in (0, 0.5]; 0.05 is usual",
             ),
             (
                 "ridge_lambda",

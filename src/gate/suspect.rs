@@ -498,4 +498,165 @@ mod tests {
         let none = [check("ridge", Pairing::CannotTell)];
         assert!(!judge(&none, None, &copies).suspect);
     }
+
+    /// One simulated nightly batch: y = 10 + 3·x1 + 2·x2 + noise (the
+    /// inputs explain about half), times a day factor 1 ± 12% shared by
+    /// every row, x2 a day-level temperature plus row spread. The reference
+    /// predicts from the inputs without knowing the day.
+    fn sim_batch(rng: &mut Rng, n: usize) -> (Vec<[f64; 2]>, Vec<f64>) {
+        let day = 1.0 + 0.12 * rng.normal();
+        let temp = rng.normal();
+        let x: Vec<[f64; 2]> = (0..n)
+            .map(|_| [rng.normal(), temp + 0.5 * rng.normal()])
+            .collect();
+        let y = x
+            .iter()
+            .map(|v| day * (10.0 + 3.0 * v[0] + 2.0 * v[1]) + 3.6 * rng.normal())
+            .collect();
+        (x, y)
+    }
+
+    fn sim_losses(x: &[[f64; 2]], y: &[f64], rng: &mut Rng) -> (Vec<f64>, Vec<f64>) {
+        let pred: Vec<f64> = x.iter().map(|v| 10.0 + 3.0 * v[0] + 2.0 * v[1]).collect();
+        let actual = pred.iter().zip(y).map(|(p, t)| (p - t).powi(2)).collect();
+        let mut shuffled = vec![0.0; y.len()];
+        for _ in 0..4 {
+            let mut perm: Vec<usize> = (0..y.len()).collect();
+            rng.shuffle(&mut perm);
+            for (i, &j) in perm.iter().enumerate() {
+                shuffled[i] += (pred[i] - y[j]).powi(2) / 4.0;
+            }
+        }
+        (actual, shuffled)
+    }
+
+    fn rms(y: &[f64]) -> f64 {
+        (y.iter().map(|v| v * v).sum::<f64>() / y.len() as f64).sqrt()
+    }
+
+    /// (false set-aside rate on ordinary batches, catch rate of shuffled
+    /// targets, of ×1000, of one row repeated) over `streams` seeded
+    /// streams of 20 ordinary nights of `n` rows, the history taken from
+    /// each earlier night's holdout fifth, then one faulty night of each kind.
+    fn sim_rates(streams: u64, n: usize, alpha: f64) -> (f64, f64, f64, f64) {
+        let (mut ordinary, mut false_flags) = (0usize, 0usize);
+        let mut caught = [0usize; 3];
+        for s in 0..streams {
+            let mut rng = Rng::new(0x5eed_0000 + s);
+            let mut history = Vec::new();
+            let mut ratios = Vec::new();
+            let mut shares = Vec::new();
+            let mut pooled: Vec<f64> = Vec::new();
+            let judge_batch = |x: &[[f64; 2]],
+                               y: &[f64],
+                               history: &[f64],
+                               ratios: &[f64],
+                               shares: &[f64],
+                               pooled: &[f64],
+                               rng: &mut Rng| {
+                let (actual, shuffled) = sim_losses(x, y, rng);
+                let p = judge_pairing(
+                    &PairingInput {
+                        name: "ref".into(),
+                        actual,
+                        shuffled,
+                        holdout_loss: Some(13.0),
+                        history: history.to_vec(),
+                    },
+                    alpha,
+                );
+                let scale = (!pooled.is_empty())
+                    .then(|| judge_scale(rms(y) / rms(pooled), ratios))
+                    .flatten();
+                let keys: Vec<(i64, i64, i64)> = x
+                    .iter()
+                    .zip(y)
+                    .map(|(v, t)| ((v[0] * 1e3) as i64, (v[1] * 1e3) as i64, (t * 1e3) as i64))
+                    .collect();
+                let copies = judge_copies(modal_share(&keys), y.len(), shares);
+                judge(&[p], scale.as_ref(), &copies).suspect
+            };
+            for night in 0..20 {
+                let (x, y) = sim_batch(&mut rng, n);
+                if night >= 1 {
+                    ordinary += 1;
+                    if judge_batch(&x, &y, &history, &ratios, &shares, &pooled, &mut rng) {
+                        false_flags += 1;
+                    }
+                }
+                let fifth = n / 5;
+                let (a, sh) = sim_losses(&x[..fifth], &y[..fifth], &mut rng);
+                if let Some(e) = explained(&a, &sh) {
+                    history.push(e);
+                }
+                if !pooled.is_empty() {
+                    ratios.push(rms(&y) / rms(&pooled));
+                }
+                shares.push(modal_share(
+                    &y[..fifth]
+                        .iter()
+                        .map(|t| (t * 1e3) as i64)
+                        .collect::<Vec<_>>(),
+                ));
+                pooled.extend(&y);
+            }
+            for (kind, hit) in caught.iter_mut().enumerate() {
+                let (mut x, mut y) = sim_batch(&mut rng, n);
+                match kind {
+                    0 => rng.shuffle(&mut y),
+                    1 => y.iter_mut().for_each(|t| *t *= 1000.0),
+                    _ => {
+                        let (x0, y0) = (x[0], y[0]);
+                        x.iter_mut().skip(n / 10).for_each(|v| *v = x0);
+                        y.iter_mut().skip(n / 10).for_each(|t| *t = y0);
+                    }
+                }
+                if judge_batch(&x, &y, &history, &ratios, &shares, &pooled, &mut rng) {
+                    *hit += 1;
+                }
+            }
+        }
+        let rate = |k: usize, of: usize| k as f64 / of as f64;
+        (
+            rate(false_flags, ordinary),
+            rate(caught[0], streams as usize),
+            rate(caught[1], streams as usize),
+            rate(caught[2], streams as usize),
+        )
+    }
+
+    #[test]
+    fn simulated_streams_with_day_effects_are_rarely_set_aside_and_faults_are_caught() {
+        // 40 streams: 760 ordinary nights, 40 faults of each kind (the full
+        // measurement is `suspect_rates`).
+        let (false_rate, shuffled, scaled, copies) = sim_rates(40, 160, 0.05);
+        assert!(false_rate <= 0.01, "false set-aside rate {false_rate}");
+        assert!(shuffled >= 0.8, "shuffled targets caught in {shuffled}");
+        assert_eq!(scaled, 1.0);
+        assert_eq!(copies, 1.0);
+    }
+
+    /// The rates quoted in DEVELOPERS.md:
+    /// `cargo test --release --lib gate::suspect::tests::suspect_rates -- --ignored --nocapture`
+    #[test]
+    #[ignore]
+    fn suspect_rates() {
+        for (n, alpha) in [
+            (50, 0.01),
+            (160, 0.01),
+            (1000, 0.01),
+            (50, 0.05),
+            (160, 0.05),
+            (1000, 0.05),
+        ] {
+            let (f, s, x, c) = sim_rates(500, n, alpha);
+            println!(
+                "alpha {alpha}, {n} rows a night: false set-aside {:.2}% of ordinary nights; caught: shuffled {:.1}%, ×1000 {:.1}%, one row repeated {:.1}%",
+                100.0 * f,
+                100.0 * s,
+                100.0 * x,
+                100.0 * c
+            );
+        }
+    }
 }

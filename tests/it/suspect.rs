@@ -387,3 +387,71 @@ fn a_batch_set_aside_by_hand_and_brought_back_keeps_store_log_and_verify_consist
     let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
     assert!(v["summary"]["set_aside"]["3"].is_string(), "{v}");
 }
+
+fn faulty(env: &Env, point: &str, args: &[&str]) -> std::process::Output {
+    env.command()
+        .env("TIDEGATE_FAILPOINTS", format!("{point}=abort"))
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn a_crash_while_setting_aside_loses_nothing_and_leaves_store_and_log_agreeing() {
+    let env = Env::with_config_text(CONFIG);
+    let files: Vec<PathBuf> = (1..=6)
+        .map(|n| write(&env, &format!("night-{n}.csv"), &night(5, n, Fault::None)))
+        .collect();
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+
+    // By hand: a crash inside, before or after the transaction is durable.
+    for point in [
+        "store:mid-transaction",
+        "store:before-flush",
+        "store:after-flush",
+    ] {
+        let before = env.status_json()["summary"]["set_aside"].clone();
+        let was_aside = before.get("2").is_some();
+        let verb = if was_aside { "bring-back" } else { "set-aside" };
+        let out = faulty(&env, point, &[verb, "b000002", "--reason", "crash test"]);
+        assert_ne!(code(&out), 0, "{point}: the process died");
+        // The next owner's start catches `audit.jsonl` up with the store
+        // (this command opens the state dir, then finds no such batch).
+        let out = env.run(&["set-aside", "b000999", "--reason", "probe"]);
+        assert!(
+            stderr(&out).contains("no batch b000999"),
+            "{}",
+            stderr(&out)
+        );
+        let v = env.run(&["verify"]);
+        assert_eq!(code(&v), 0, "{point}: {}{}", stdout(&v), stderr(&v));
+        let now = env.status_json()["summary"]["set_aside"].get("2").is_some();
+        if point == "store:after-flush" {
+            assert_ne!(now, was_aside, "{point}: a durable change was lost");
+        } else if now == was_aside {
+            // Not applied: doing it again works.
+            let out = env.run(&[verb, "b000002", "--reason", "again"]);
+            assert_eq!(code(&out), 0, "{point}: {}", stderr(&out));
+        }
+        let v = env.run(&["verify"]);
+        assert_eq!(code(&v), 0, "{point}: {}{}", stdout(&v), stderr(&v));
+    }
+
+    // At intake: a suspect file whose ingest dies after its commit is
+    // finished by the next run, still set aside, stored once.
+    let bad = write(&env, "night-7.csv", &night(5, 7, Fault::Shuffled));
+    let out = faulty(
+        &env,
+        "intake:after-commit",
+        &["ingest", bad.to_str().unwrap()],
+    );
+    assert_ne!(code(&out), 0);
+    let out = env.ingest(std::slice::from_ref(&bad));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let s = env.status_json();
+    assert_eq!(s["summary"]["batches"], 7, "{s}");
+    assert!(s["summary"]["set_aside"].get("7").is_some(), "{s}");
+    let v = env.run(&["verify"]);
+    assert_eq!(code(&v), 0, "{}{}", stdout(&v), stderr(&v));
+}
