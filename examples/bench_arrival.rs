@@ -26,9 +26,9 @@ fn promoted(model: u64) -> Event {
         model: ModelId(model),
         previous: (model > 1).then(|| ModelId(model - 1)),
         evidence: GateEvidence {
-            baseline: "serving".into(),
+            compared_with: "serving".into(),
             rows: 1000,
-            mean_loss_baseline: 1.0,
+            mean_loss_compared_with: 1.0,
             mean_loss_candidate: 0.9,
             relative_improvement: Some(0.1),
             t: Some(3.0),

@@ -47,7 +47,17 @@ pub enum Event {
         /// first batch).
         #[serde(default, skip_serializing_if = "Option::is_none")]
         drift: Option<crate::drift::BatchReport>,
+        /// The suspect-batch check (absent before it existed, and for the
+        /// first batch, which nothing can be compared with). A suspect
+        /// batch is stored and set aside in this same entry.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        suspect: Option<SuspectEvidence>,
     },
+    /// An operator set a stored batch aside: its rows stay stored and
+    /// archived, and nothing reads them until it is brought back.
+    BatchSetAside { batch: BatchId, reason: String },
+    /// An operator brought a batch that was set aside back into use.
+    BatchBroughtBack { batch: BatchId, reason: String },
     /// A file was refused; nothing from it was stored. (Logs written
     /// before the name was settled call it `batch-rejected`.)
     #[serde(alias = "batch-rejected")]
@@ -219,6 +229,70 @@ pub enum Event {
         checkpoint_manifest_hash: String,
         opset: i64,
     },
+}
+
+/// The suspect-batch check's findings as written in the batch's entry.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SuspectEvidence {
+    /// The batch was found suspect and set aside.
+    pub suspect: bool,
+    /// What made it suspect, short (empty when it is not).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub why: Vec<String>,
+    /// Rows the pairing was judged on (rows with a new category value or
+    /// no target are left out).
+    pub rows: usize,
+    /// One judgement per reference model.
+    pub references: Vec<SuspectReference>,
+    /// Batch target root mean square / the stored rows' (regression).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub target_scale: Option<f64>,
+    /// Share of the batch's rows that are copies of its most common row.
+    #[serde(with = "number")]
+    pub copies_share: f64,
+    /// Every check's figures in words.
+    pub reason: String,
+}
+
+/// One reference model's pairing judgement on a batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SuspectReference {
+    /// "serving m000004", "predecessor m000003" or "ridge".
+    pub name: String,
+    /// "related", "unrelated" or "cannot-tell".
+    pub verdict: String,
+    /// Share of the shuffled-target loss the rows' own targets save.
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub explained: Option<f64>,
+    /// The same on earlier batches (median).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub usual_explained: Option<f64>,
+    /// ln(mean batch loss / mean holdout loss).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub level: Option<f64>,
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub p: Option<f64>,
+    pub history: usize,
 }
 
 /// The fresh-data check's numbers as written in the log.
@@ -403,6 +477,8 @@ impl Event {
         match self {
             Event::Initialized { .. } => "initialized",
             Event::BatchAccepted { .. } => "batch-accepted",
+            Event::BatchSetAside { .. } => "batch-set-aside",
+            Event::BatchBroughtBack { .. } => "batch-brought-back",
             Event::BatchRefused { .. } => "batch-refused",
             Event::BatchDuplicate { .. } => "batch-duplicate",
             Event::CycleStarted { .. } => "cycle-started",
@@ -428,6 +504,8 @@ impl Event {
     pub const KINDS: &'static [&'static str] = &[
         "initialized",
         "batch-accepted",
+        "batch-set-aside",
+        "batch-brought-back",
         "batch-refused",
         "batch-duplicate",
         "cycle-started",
@@ -487,7 +565,9 @@ impl Event {
     /// The batch an event is about, if any.
     pub fn batch(&self) -> Option<BatchId> {
         match self {
-            Event::BatchAccepted { batch, .. } => Some(*batch),
+            Event::BatchAccepted { batch, .. }
+            | Event::BatchSetAside { batch, .. }
+            | Event::BatchBroughtBack { batch, .. } => Some(*batch),
             Event::BatchDuplicate { duplicate_of, .. } => Some(*duplicate_of),
             Event::FreshChecked { check } => Some(check.batch),
             _ => None,
@@ -516,6 +596,7 @@ impl Event {
                 holdout_rows,
                 new_categories,
                 drift,
+                suspect,
                 ..
             } => {
                 let mut s = format!(
@@ -527,7 +608,16 @@ impl Event {
                 if let Some(line) = drift.as_ref().and_then(|d| d.summary()) {
                     s.push_str(&format!("; {line}"));
                 }
+                if let Some(sus) = suspect.as_ref().filter(|x| x.suspect) {
+                    s.push_str(&format!("; SUSPECT, set aside: {}", sus.why.join("; ")));
+                }
                 s
+            }
+            Event::BatchSetAside { batch, reason } => {
+                format!("{batch} set aside by hand: {reason}")
+            }
+            Event::BatchBroughtBack { batch, reason } => {
+                format!("{batch} brought back into use: {reason}")
             }
             Event::BatchRefused {
                 file,

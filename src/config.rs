@@ -312,6 +312,9 @@ pub struct GateConfig {
     /// Level of the fresh-data check's shift flags, per batch. A flag is a
     /// reason to look, never an action by itself.
     pub shift_alpha: f64,
+    /// Level of the suspect-batch check's test that a batch's targets have
+    /// lost their relation to its inputs (a suspect batch is set aside).
+    pub suspect_alpha: f64,
 }
 
 impl Default for GateConfig {
@@ -327,6 +330,7 @@ impl Default for GateConfig {
             fresh_min_rows: 100,
             auto_rollback: true,
             shift_alpha: 0.01,
+            suspect_alpha: 0.05,
         }
     }
 }
@@ -682,7 +686,7 @@ impl Config {
             }
         }
         let g = &self.gate;
-        let checks: [(&str, bool, &str); 6] = [
+        let checks: [(&str, bool, &str); 7] = [
             (
                 "min_holdout_batches",
                 g.min_holdout_batches >= 2,
@@ -692,6 +696,11 @@ impl Config {
                 "shift_alpha",
                 g.shift_alpha > 0.0 && g.shift_alpha <= 0.5,
                 "shift_alpha must be in (0, 0.5]; 0.01 is usual",
+            ),
+            (
+                "suspect_alpha",
+                g.suspect_alpha > 0.0 && g.suspect_alpha <= 0.5,
+                "suspect_alpha must be in (0, 0.5]; 0.05 is usual",
             ),
             (
                 "ridge_lambda",

@@ -193,7 +193,14 @@ pub enum Planned {
 /// Stage 1: which candidates to train, from the store's state.
 pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let store = &owner.store;
-    let last = BatchId(store.totals().batches);
+    // Batches set aside are not data for a cycle: neither the last batch
+    // nor a new one.
+    let in_use: Vec<BatchId> = store
+        .split_counts(Split::Train, None, None)?
+        .iter()
+        .map(|(b, _)| *b)
+        .collect();
+    let last = in_use.last().copied().unwrap_or(BatchId(0));
     if last.0 == 0 {
         return Err(CycleError::NoData);
     }
@@ -235,7 +242,7 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
         through,
         want_warm,
         want_cold,
-        new_batches: (through.0 + 1..=last.0).map(BatchId).collect(),
+        new_batches: in_use.iter().filter(|b| **b > through).copied().collect(),
         serving,
         fingerprint,
     })))
@@ -381,7 +388,7 @@ pub fn train(
     let step = std::time::Instant::now();
     let store = &owner.store;
     let training = &owner.config.training;
-    let cold_spec = cold_spec(owner);
+    let cold_spec = cold_spec(owner)?;
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
     // Number columns whose stats moved far are restandardised the same way.
@@ -389,7 +396,7 @@ pub fn train(
         Some((_, _, ck)) => {
             let (wide, added) = ck.model.widened(store.vocabularies())?;
             let (parent, rescaled) =
-                wide.rescaled(&store.totals().train_stats, training.rescale_threshold)?;
+                wide.rescaled(&store.train_stats()?, training.rescale_threshold)?;
             Some((parent, added, rescaled))
         }
         None => None,
@@ -449,13 +456,13 @@ pub fn train(
     })
 }
 
-fn cold_spec(owner: &Owner) -> FeatureSpec {
+fn cold_spec(owner: &Owner) -> Result<FeatureSpec, StoreError> {
     let store = &owner.store;
-    FeatureSpec::new(
+    Ok(FeatureSpec::new(
         store.schema(),
-        &store.totals().train_stats,
+        &store.train_stats()?,
         store.vocabularies(),
-    )
+    ))
 }
 
 /// One candidate with its per-row holdout losses.
@@ -518,7 +525,7 @@ pub fn score(
         Some((_, _, ck)) => Some(row_losses(&ck.model, &data.holdout, backend)?),
         None => None,
     };
-    let spec = cold_spec(owner);
+    let spec = cold_spec(owner)?;
     let parts = [&data.older_train, &data.new_train];
     let trivial = baseline::trivial_losses(&spec, &parts, &data.holdout)
         .map_err(|e| CycleError::Scoring(e.to_string()))?;

@@ -258,8 +258,9 @@ fn known_rows(
     (known, named)
 }
 
-/// Runs the check on `batch` (just accepted). `None` when no model serves
-/// or the serving model has already trained on the batch.
+/// Runs the check on `batch` (just accepted). `None` when no model serves,
+/// the serving model has already trained on the batch, or the batch is set
+/// aside.
 pub fn check_batch(
     owner: &mut Owner,
     batch: BatchId,
@@ -269,6 +270,10 @@ pub fn check_batch(
         path: owner.store.path().to_path_buf(),
         source,
     })?;
+    // A batch set aside is not evidence about any model.
+    if owner.store.set_aside_batches().contains(&batch) {
+        return Ok(None);
+    }
     let Some(serving) = owner.store.serving()? else {
         return Ok(None);
     };

@@ -192,7 +192,7 @@ pub fn take_file(
         let writer = scope.spawn(|| fsutil::write_atomic(&pending, &raw.bytes));
         let steps = parse_and_measure(owner, &raw, &limits, path);
         let written = writer.join().expect("the archive writer panicked");
-        let (batch, drift) = match steps {
+        let parsed = match steps {
             Ok(Ok(done)) => done,
             Ok(Err(refusal)) => {
                 let _ = fs::remove_file(&pending);
@@ -207,20 +207,27 @@ pub fn take_file(
             .and_then(|()| crate::failpoint::hit("intake:after-pending"))
             .map_err(io_at(&pending))?;
         commit_and_archive(
-            owner, path, source, &name, &raw, &batch, drift, &pending, user, now,
+            owner, path, source, &name, &raw, parsed, &pending, user, now,
         )
     })
 }
 
-/// Parses and validates the file, then measures its drift against the
-/// stored training rows. The outer error is the machine's, the inner the
-/// file's.
+/// A parsed file with what intake measured before storing it.
+struct Parsed {
+    batch: ingest::Batch,
+    drift: Option<crate::drift::Measurement>,
+    suspect: Option<crate::audit::SuspectEvidence>,
+}
+
+/// Parses and validates the file, measures its drift against the stored
+/// training rows and runs the suspect-batch check. The outer error is the
+/// machine's, the inner the file's.
 fn parse_and_measure(
     owner: &Owner,
     raw: &ingest::RawFile,
     limits: &Limits,
     path: &Path,
-) -> Result<Result<(ingest::Batch, Option<crate::drift::Measurement>), Refusal>, StateError> {
+) -> Result<Result<Parsed, Refusal>, StateError> {
     let batch = match ingest::parse(
         &raw.bytes,
         owner.store.schema(),
@@ -261,7 +268,20 @@ fn parse_and_measure(
             &owner.config.drift.rule(),
         )
     };
-    Ok(Ok((batch, drift)))
+    // Before anything can train on it: is the data itself broken?
+    let suspect = crate::suspect::check(owner, &batch)?;
+    if let Some(s) = suspect.as_ref().filter(|s| s.suspect) {
+        tracing::warn!(
+            "{}: suspect, stored but set aside: {}",
+            path.display(),
+            s.why.join("; ")
+        );
+    }
+    Ok(Ok(Parsed {
+        batch,
+        drift,
+        suspect,
+    }))
 }
 
 /// One transaction for the rows and their log entry, then the log mirror,
@@ -273,15 +293,20 @@ fn commit_and_archive(
     source: Source,
     name: &str,
     raw: &ingest::RawFile,
-    batch: &ingest::Batch,
-    drift: Option<crate::drift::Measurement>,
+    parsed: Parsed,
     pending: &Path,
     user: &str,
     now: DateTime<Utc>,
 ) -> Result<Outcome, StateError> {
-    let (record, entry) = owner
-        .store
-        .commit_batch(batch, name, &raw.hash, drift, user, now)?;
+    let (record, entry) = owner.store.commit_batch(
+        &parsed.batch,
+        name,
+        &raw.hash,
+        parsed.drift,
+        parsed.suspect,
+        user,
+        now,
+    )?;
     crate::failpoint::hit("intake:after-commit").map_err(io_at(&owner.state.audit()))?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let archived = archive_path(&owner.state, record.id);

@@ -6,6 +6,7 @@
 //! The `cli` module holds one file per command; `main.rs` only maps errors
 //! to exit codes.
 
+pub mod aside;
 pub mod audit;
 pub mod backup;
 pub mod baseline;
@@ -33,5 +34,6 @@ pub mod schema;
 pub mod sim;
 pub mod state;
 pub mod store;
+pub mod suspect;
 pub mod train;
 pub mod verify;

@@ -277,9 +277,9 @@ pub(crate) mod tests {
             model: ModelId(model),
             previous: previous.map(ModelId),
             evidence: GateEvidence {
-                baseline: "serving".into(),
+                compared_with: "serving".into(),
                 rows: 100,
-                mean_loss_baseline: 1.0,
+                mean_loss_compared_with: 1.0,
                 mean_loss_candidate: 0.9,
                 relative_improvement: Some(0.1),
                 t: Some(3.0),

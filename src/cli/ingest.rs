@@ -126,6 +126,16 @@ pub(crate) fn take_files(
                 )
             }
         };
+        if let Outcome::Accepted { batch, .. } = &outcome
+            && let Some(aside) = &batch.set_aside
+        {
+            detail.push_str(&format!(
+                "; suspect, set aside (not trained on, not in the holdout): {}",
+                aside.reason
+            ));
+            json["set_aside"] =
+                serde_json::json!({"reason": aside.reason, "automatic": aside.automatic});
+        }
         if let Outcome::Accepted { batch, .. } = &outcome {
             // The batch is stored whatever the check says; a model that
             // cannot be scored is reported, a failure to write ends the

@@ -3,6 +3,7 @@
 //! messages on stderr; `--json` switches data to JSON.
 
 mod approve;
+mod aside;
 mod backup;
 mod completions;
 mod decline;
@@ -103,6 +104,10 @@ pub enum Command {
     Approve(approve::Args),
     /// Turn the candidate waiting for approval down.
     Decline(decline::Args),
+    /// Keep a stored batch out of training, holdout, baselines and drift (--reason).
+    SetAside(aside::Args),
+    /// Put a batch that was set aside back into use (--reason).
+    BringBack(aside::Args),
     /// Score a CSV file with the serving model (or --model ID).
     Predict(predict::Args),
     /// Write the serving model (or --model ID) as an ONNX file with a manifest beside it.
@@ -150,6 +155,8 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Rollback(a) => rollback::run(cli, &state, a),
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
+        Command::SetAside(a) => aside::run(cli, &state, a, true),
+        Command::BringBack(a) => aside::run(cli, &state, a, false),
         Command::Watch(a) => watch::run(cli, &state, a),
         Command::Report(a) => report::run(cli, &state, a),
     }

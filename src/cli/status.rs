@@ -1,13 +1,13 @@
 //! `tidegate status`: what the state dir holds and who owns it. Reads
 //! `audit.jsonl` and `LOCK` only, so it works while the daemon runs.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
 use super::{Cli, Exit, emit};
 use crate::audit::{Entry, Event, FreshEvidence};
-use crate::ids::ModelId;
+use crate::ids::{BatchId, ModelId};
 use crate::state::{self, StateDir};
 
 #[derive(Debug, clap::Args)]
@@ -41,6 +41,14 @@ pub struct Summary {
     pub fresh_check: Option<FreshEvidence>,
     /// The last accepted batch's drift report.
     pub last_drift: Option<LastDrift>,
+    /// Batches stored but set aside (suspect at intake, or by hand), with why.
+    pub set_aside: BTreeMap<BatchId, String>,
+    /// Batches now set aside that the serving model trained on, directly or
+    /// through its parents.
+    pub serving_saw_set_aside: Vec<BatchId>,
+    /// Batches each model trained on, directly or through its parents.
+    #[serde(skip)]
+    pub seen: BTreeMap<ModelId, BTreeSet<BatchId>>,
 }
 
 /// Which columns of the last accepted batch moved away from the stored rows.
@@ -82,6 +90,10 @@ impl Summary {
         // comparison with ridge.
         let mut cycle_losses: BTreeMap<ModelId, f64> = BTreeMap::new();
         let mut vs_ridge: BTreeMap<ModelId, VersusRidge> = BTreeMap::new();
+        // Batches in use (stored, not set aside), and those in use when the
+        // running cycle started: what its candidates could train on.
+        let mut in_use: BTreeSet<BatchId> = BTreeSet::new();
+        let mut cycle_batches: BTreeSet<BatchId> = BTreeSet::new();
         for e in entries {
             match &e.event {
                 Event::BatchAccepted {
@@ -91,8 +103,18 @@ impl Summary {
                     holdout_rows,
                     new_categories,
                     drift,
+                    suspect,
                     ..
                 } => {
+                    match suspect.as_ref().filter(|x| x.suspect) {
+                        Some(x) => {
+                            s.set_aside
+                                .insert(*batch, format!("suspect: {}", x.why.join("; ")));
+                        }
+                        None => {
+                            in_use.insert(*batch);
+                        }
+                    }
                     s.last_drift = drift.as_ref().map(|d| LastDrift {
                         batch: *batch,
                         flagged: d.flagged().iter().map(|c| c.to_string()).collect(),
@@ -131,6 +153,15 @@ impl Summary {
                             .extend(values.iter().cloned());
                     }
                 }
+                Event::BatchSetAside { batch, reason } => {
+                    in_use.remove(batch);
+                    s.set_aside
+                        .insert(*batch, format!("by {} at {}: {reason}", e.user, e.time));
+                }
+                Event::BatchBroughtBack { batch, .. } => {
+                    s.set_aside.remove(batch);
+                    in_use.insert(*batch);
+                }
                 Event::BatchRefused { .. } => s.refused_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
                 Event::Approved { model, .. } | Event::RolledBack { to: model, .. } => {
@@ -152,8 +183,19 @@ impl Summary {
                 Event::CandidateTrained {
                     model,
                     holdout_loss,
+                    parent,
+                    trained_through,
                     ..
                 } => {
+                    let mut seen: BTreeSet<BatchId> = cycle_batches
+                        .iter()
+                        .filter(|b| *b <= trained_through)
+                        .copied()
+                        .collect();
+                    if let Some(p) = parent.and_then(|p| s.seen.get(&p)) {
+                        seen.extend(p.iter().copied());
+                    }
+                    s.seen.insert(*model, seen);
                     s.models_trained += 1;
                     cycle_losses.insert(*model, *holdout_loss);
                 }
@@ -182,6 +224,7 @@ impl Summary {
                     }
                 }
                 Event::CycleStarted { .. } => {
+                    cycle_batches = in_use.clone();
                     cycle_losses.clear();
                     s.fresh_check = None;
                 }
@@ -196,6 +239,16 @@ impl Summary {
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
+        s.serving_saw_set_aside = s
+            .serving
+            .and_then(|m| s.seen.get(&m))
+            .map(|seen| {
+                seen.iter()
+                    .filter(|b| s.set_aside.contains_key(b))
+                    .copied()
+                    .collect()
+            })
+            .unwrap_or_default();
         s
     }
 }
@@ -322,6 +375,21 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             }
         }
     }
+    for (b, why) in &summary.set_aside {
+        out.push_str(&format!("set aside   {b} (stored, not used): {why}\n"));
+    }
+    if !summary.serving_saw_set_aside.is_empty() {
+        let list: Vec<String> = summary
+            .serving_saw_set_aside
+            .iter()
+            .map(|b| b.to_string())
+            .collect();
+        out.push_str(&format!(
+            "WARNING     the serving model trained on {} (since set aside), directly or through \
+             its parents\n",
+            list.join(", ")
+        ));
+    }
     out.push_str(&format!(
         "files       {} refused, {} duplicates\n",
         summary.refused_files, summary.duplicate_files
@@ -430,6 +498,7 @@ mod tests {
                 holdout_rows: 2,
                 new_categories: cats.clone(),
                 drift: None,
+                suspect: None,
             },
             Event::BatchRefused {
                 file: "b".into(),
@@ -452,6 +521,7 @@ mod tests {
                 holdout_rows: 1,
                 new_categories: BTreeMap::new(),
                 drift: None,
+                suspect: None,
             },
         ];
         let entries: Vec<Entry> = events

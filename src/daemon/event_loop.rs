@@ -330,7 +330,9 @@ impl<C: Clock> Daemon<C> {
                     batch.id,
                     batch.rows()
                 );
-                self.untrained_rows += batch.rows();
+                if !batch.is_set_aside() {
+                    self.untrained_rows += batch.rows();
+                }
                 let shifted = after_accept(owner, &batch, &self.user)?;
                 let flagged = match &entry.event {
                     crate::audit::Event::BatchAccepted { drift: Some(d), .. } => {
@@ -338,7 +340,13 @@ impl<C: Clock> Daemon<C> {
                     }
                     _ => Vec::new(),
                 };
-                if shifted || !flagged.is_empty() {
+                if batch.is_set_aside() {
+                    tracing::warn!(
+                        "batch {}: suspect, set aside: {}",
+                        batch.id,
+                        batch.set_aside.as_ref().map_or("", |a| a.reason.as_str())
+                    );
+                } else if shifted || !flagged.is_empty() {
                     tracing::info!(
                         "batch {}: drift ({}); on_drift = {}",
                         batch.id,
@@ -858,7 +866,8 @@ fn decide(
     }
 }
 
-/// Accepted rows in batches after the last one any cycle trained through.
+/// Accepted rows in batches after the last one any cycle trained through,
+/// less those of batches set aside.
 pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
     let next = owner.store.next_model_id()?;
     let mut through = BatchId(0);
@@ -878,7 +887,7 @@ pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
         .store
         .batches()?
         .iter()
-        .filter(|b| b.id > through)
+        .filter(|b| b.id > through && !b.is_set_aside())
         .map(BatchRecord::rows)
         .sum())
 }

@@ -405,6 +405,7 @@ mod tests {
                 holdout_rows: 2,
                 new_categories: Default::default(),
                 drift: None,
+                suspect: None,
             },
         );
         c.fold(&accepted);

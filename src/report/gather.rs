@@ -417,6 +417,7 @@ mod tests {
             holdout_rows: 1,
             new_categories: BTreeMap::new(),
             drift: None,
+            suspect: None,
         }
     }
 

@@ -279,9 +279,9 @@ fn promote_with_evidence_of_regression(env: &Env) -> (u64, u64) {
         model: other,
         previous: Some(serving),
         evidence: tidegate::audit::GateEvidence {
-            baseline: "serving".into(),
+            compared_with: "serving".into(),
             rows: 100,
-            mean_loss_baseline: 1.0,
+            mean_loss_compared_with: 1.0,
             mean_loss_candidate: 0.9,
             relative_improvement: Some(0.1),
             t: Some(3.0),

@@ -19,5 +19,6 @@ mod powerloss;
 mod report;
 mod screens;
 mod support;
+mod suspect;
 mod tamper;
 mod training;

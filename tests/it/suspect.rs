@@ -1,0 +1,457 @@
+//! Suspect batches through the real binary: a file with its targets
+//! shuffled among its rows, one with its target scaled by 1000 and one of a
+//! single row repeated are stored but set aside (no rollback, not in any
+//! later cycle's holdout); the demo's real demand shift is not; a batch set
+//! aside by hand and brought back leaves the store, the log and `verify`
+//! consistent. Every stream here is invented: a bakery's nightly sales of
+//! a few bread lines in a few shops, with a day effect on every row.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use tidegate::rng::Rng;
+
+use crate::support::{Env, code, repo, stderr, stdout};
+
+const CONFIG: &str = r#"
+[data]
+target = "sold"
+task = "regression"
+holdout_fraction = 0.2
+
+[[data.columns]]
+name = "shop"
+kind = "category"
+
+[[data.columns]]
+name = "bread"
+kind = "category"
+
+[[data.columns]]
+name = "temp_c"
+kind = "number"
+
+[[data.columns]]
+name = "price"
+kind = "number"
+
+[[data.columns]]
+name = "sold"
+kind = "number"
+
+[model]
+hidden = [16]
+
+[training]
+cold_epochs = 150
+warm_epochs = 8
+learning_rate = 0.01
+
+[gate]
+min_holdout_rows = 50
+"#;
+
+const SHOPS: [&str; 8] = [
+    "Ashby",
+    "Brackwell",
+    "Corrin",
+    "Dunmore",
+    "Elstead",
+    "Farrow",
+    "Glenholm",
+    "Harwick",
+];
+const BREADS: [&str; 5] = ["white tin", "wholemeal", "rye", "seeded", "spelt"];
+
+/// What is wrong with a night's file, if anything.
+#[derive(Clone, Copy, PartialEq)]
+enum Fault {
+    None,
+    /// Targets shuffled among the file's rows (a broken join).
+    Shuffled,
+    /// Targets in another unit: ×1000.
+    Scaled,
+    /// The export repeated one row.
+    OneRow,
+}
+
+/// One night of 160 rows: sales depend on the shop, the bread, the price
+/// and the day's temperature, times a day effect shared by every row, plus
+/// row noise.
+fn night(seed: u64, n: usize, fault: Fault) -> String {
+    let mut rng = Rng::new(seed * 1_000 + n as u64);
+    let shop_level: Vec<f64> = {
+        let mut r = Rng::new(seed);
+        SHOPS.iter().map(|_| 20.0 + 40.0 * r.uniform()).collect()
+    };
+    let bread_level = [1.6, 1.1, 0.5, 0.8, 0.4];
+    let temp = 8.0 + 6.0 * rng.normal();
+    let day = 1.0 + 0.12 * rng.normal();
+    let mut rows: Vec<(usize, usize, f64, f64)> = Vec::new();
+    for _ in 0..160 {
+        let s = rng.below(SHOPS.len());
+        let b = rng.below(BREADS.len());
+        let price = 1.5 + 2.0 * rng.uniform();
+        let sold =
+            (shop_level[s] * bread_level[b] * day * (1.0 - 0.01 * temp) * (2.2 - 0.3 * price)
+                + 6.0 * rng.normal())
+            .max(0.0);
+        rows.push((s, b, price, sold));
+    }
+    match fault {
+        Fault::None => {}
+        Fault::Shuffled => {
+            let mut sold: Vec<f64> = rows.iter().map(|r| r.3).collect();
+            rng.shuffle(&mut sold);
+            for (r, v) in rows.iter_mut().zip(sold) {
+                r.3 = v;
+            }
+        }
+        Fault::Scaled => rows.iter_mut().for_each(|r| r.3 *= 1000.0),
+        Fault::OneRow => {
+            let first = rows[0];
+            rows.iter_mut().skip(8).for_each(|r| *r = first);
+        }
+    }
+    let mut csv = String::from("shop,bread,temp_c,price,sold\n");
+    for (s, b, price, sold) in rows {
+        csv.push_str(&format!(
+            "{},{},{temp:.1},{price:.2},{sold:.1}\n",
+            SHOPS[s], BREADS[b]
+        ));
+    }
+    csv
+}
+
+fn write(env: &Env, name: &str, text: &str) -> PathBuf {
+    let p = env.dir.path().join(name);
+    fs::write(&p, text).unwrap();
+    p
+}
+
+fn ingest_json(env: &Env, file: &Path) -> serde_json::Value {
+    let out = env.run(&["--json", "ingest", file.to_str().unwrap()]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    serde_json::from_str(stdout(&out).trim()).unwrap()
+}
+
+fn retrain(env: &Env) {
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+}
+
+fn kinds(env: &Env) -> Vec<String> {
+    env.log_json(&[])
+        .iter()
+        .map(|e| e["kind"].as_str().unwrap().to_string())
+        .collect()
+}
+
+/// Holdout rows of the batches in use, from the log's accepted entries.
+fn holdout_rows_in_use(env: &Env, aside: &[u64]) -> u64 {
+    env.log_json(&["--kind", "batch-accepted"])
+        .iter()
+        .filter(|e| !aside.contains(&e["batch"].as_u64().unwrap()))
+        .map(|e| e["holdout_rows"].as_u64().unwrap())
+        .sum()
+}
+
+#[test]
+fn broken_files_are_set_aside_without_rollback_and_never_judge_a_model() {
+    let env = Env::with_config_text(CONFIG);
+    // Eight ordinary nights, a cycle after each from the third (as a daemon
+    // with a small min_new_rows would run).
+    for n in 1..=8 {
+        let f = write(&env, &format!("night-{n}.csv"), &night(7, n, Fault::None));
+        let r = ingest_json(&env, &f);
+        assert!(r.get("set_aside").is_none(), "night {n}: {r}");
+        if n >= 3 {
+            retrain(&env);
+        }
+    }
+    assert!(!env.status_json()["summary"]["serving"].is_null());
+
+    let mut aside = Vec::new();
+    for (n, fault) in [
+        (9, Fault::Shuffled),
+        (10, Fault::Scaled),
+        (11, Fault::OneRow),
+    ] {
+        let f = write(&env, &format!("night-{n}.csv"), &night(7, n, fault));
+        let r = ingest_json(&env, &f);
+        assert_eq!(r["status"], "accepted", "{r}");
+        assert!(
+            r["set_aside"]["automatic"] == true,
+            "night {n} was not set aside: {r}"
+        );
+        assert!(
+            r.get("fresh_check").is_none(),
+            "a suspect batch was fresh-checked: {r}"
+        );
+        aside.push(r["batch"].as_u64().unwrap());
+    }
+    // The evidence is in each batch's entry.
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    for e in &accepted {
+        let b = e["batch"].as_u64().unwrap();
+        assert_eq!(
+            e["suspect"]["suspect"].as_bool().unwrap_or(false),
+            aside.contains(&b),
+            "{e}"
+        );
+    }
+    let shuffled = &accepted[8]["suspect"];
+    assert!(
+        shuffled["references"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|r| r["name"].as_str().unwrap().starts_with("serving")),
+        "{shuffled}"
+    );
+
+    let status = env.status_json();
+    let listed = status["summary"]["set_aside"].as_object().unwrap();
+    assert_eq!(listed.len(), 3, "{status}");
+    let text = stdout(&env.run(&["status"]));
+    assert!(text.contains("set aside"), "{text}");
+
+    // No batch set aside caused a rollback or a fresh-data check.
+    let k = kinds(&env);
+    assert!(!k.iter().any(|k| k == "rolled-back"), "{k:?}");
+    let checked: Vec<u64> = env
+        .log_json(&["--kind", "fresh-checked"])
+        .iter()
+        .map(|e| e["check"]["batch"].as_u64().unwrap())
+        .collect();
+    assert!(!checked.iter().any(|b| aside.contains(b)), "{checked:?}");
+
+    // A later ordinary night is taken; later cycles neither train on nor
+    // judge with the batches set aside.
+    let f = write(&env, "night-12.csv", &night(7, 12, Fault::None));
+    let r = ingest_json(&env, &f);
+    assert!(r.get("set_aside").is_none(), "{r}");
+    for _ in 0..2 {
+        let out = env.run(&["--json", "retrain"]);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        let r: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+        if r["outcome"] == "nothing-new" {
+            continue;
+        }
+        let new: Vec<u64> = r["new_batches"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|b| b.as_u64().unwrap())
+            .collect();
+        assert!(!new.iter().any(|b| aside.contains(b)), "{r}");
+        assert_eq!(
+            r["holdout_rows"].as_u64().unwrap(),
+            holdout_rows_in_use(&env, &aside),
+            "{r}"
+        );
+    }
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+}
+
+#[test]
+fn the_demo_demand_shift_is_not_set_aside() {
+    let env = Env::new(&repo("demo-data/tidegate.toml"));
+    let nights = |list: &[&str]| -> Vec<PathBuf> {
+        list.iter()
+            .map(|n| repo(&format!("demo-data/night-{n}.csv")))
+            .collect()
+    };
+    let out = env.ingest(&nights(&["01", "02", "03", "04"]));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    retrain(&env);
+    let out = env.ingest(&nights(&["06", "07", "08", "09", "10", "11", "12"]));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    assert_eq!(accepted.len(), 11);
+    for e in &accepted[1..] {
+        let s = &e["suspect"];
+        assert_eq!(s["suspect"], false, "batch {} set aside: {s}", e["batch"]);
+    }
+    // Nights 10–12 (the Corrin shift) were judged by every reference,
+    // the serving model among them, and found related.
+    // (Night 12 is the first Friday stored, since night 5 was refused: every
+    // row is a new condition, so no reference can speak for it.)
+    for e in &accepted[8..10] {
+        let refs = e["suspect"]["references"].as_array().unwrap();
+        assert!(refs.len() >= 2, "{e}");
+        assert!(
+            refs.iter().all(|r| r["verdict"] == "related"),
+            "{}",
+            e["suspect"]
+        );
+    }
+    assert!(
+        env.status_json()["summary"]["set_aside"]
+            .as_object()
+            .unwrap()
+            .is_empty()
+    );
+}
+
+#[test]
+fn a_batch_set_aside_by_hand_and_brought_back_keeps_store_log_and_verify_consistent() {
+    let env = Env::with_config_text(CONFIG);
+    let files: Vec<PathBuf> = (1..=4)
+        .map(|n| write(&env, &format!("night-{n}.csv"), &night(3, n, Fault::None)))
+        .collect();
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+
+    // A reason is required, the batch must exist, and the state must change.
+    let out = env.run(&["set-aside", "b000002"]);
+    assert_ne!(code(&out), 0);
+    let out = env.run(&["set-aside", "b000009", "--reason", "x"]);
+    assert_ne!(code(&out), 0);
+    assert!(
+        stderr(&out).contains("no batch b000009"),
+        "{}",
+        stderr(&out)
+    );
+    let out = env.run(&["bring-back", "b000002", "--reason", "x"]);
+    assert_ne!(code(&out), 0);
+    assert!(stderr(&out).contains("not set aside"), "{}", stderr(&out));
+
+    let out = env.run(&["set-aside", "b000002", "--reason", "export was broken"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let entries = env.log_json(&["--kind", "batch-set-aside"]);
+    assert_eq!(entries.len(), 1);
+    assert_eq!(entries[0]["user"], "tester");
+    assert_eq!(entries[0]["reason"], "export was broken");
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+    let status = env.status_json();
+    assert!(status["summary"]["set_aside"]["2"].is_string(), "{status}");
+    let out = env.run(&["set-aside", "b000002", "--reason", "again"]);
+    assert_ne!(code(&out), 0);
+
+    // The first cycle's holdout leaves the batch out.
+    retrain(&env);
+    let trained = env.log_json(&["--kind", "candidate-trained"]);
+    assert_eq!(
+        trained[0]["holdout_rows"].as_u64().unwrap(),
+        holdout_rows_in_use(&env, &[2])
+    );
+
+    let out = env.run(&["bring-back", "b000002", "--reason", "the file was fine"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+    assert!(
+        env.status_json()["summary"]["set_aside"]
+            .as_object()
+            .unwrap()
+            .is_empty()
+    );
+    // Back in use: the next cycle's holdout has every batch again.
+    let f = write(&env, "night-5.csv", &night(3, 5, Fault::None));
+    let out = env.ingest(&[f]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let holdout_all = holdout_rows_in_use(&env, &[]);
+    retrain(&env);
+    let trained = env.log_json(&["--kind", "candidate-trained"]);
+    assert_eq!(
+        trained.last().unwrap()["holdout_rows"].as_u64().unwrap(),
+        holdout_all
+    );
+
+    // A backup restores the same state and verifies.
+    let out = env.run(&["set-aside", "b000003", "--reason", "late doubt"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let backup = env.dir.path().join("copy");
+    let out = env.run(&["backup", "--out", backup.to_str().unwrap()]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let restored = env.dir.path().join("restored");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidegate"))
+        .args([
+            "--state",
+            restored.to_str().unwrap(),
+            "restore",
+            "--from",
+            backup.to_str().unwrap(),
+        ])
+        .env("NO_COLOR", "1")
+        .output()
+        .unwrap();
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidegate"))
+        .args(["--state", restored.to_str().unwrap(), "--json", "status"])
+        .output()
+        .unwrap();
+    let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    assert!(v["summary"]["set_aside"]["3"].is_string(), "{v}");
+}
+
+fn faulty(env: &Env, point: &str, args: &[&str]) -> std::process::Output {
+    env.command()
+        .env("TIDEGATE_FAILPOINTS", format!("{point}=abort"))
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn a_crash_while_setting_aside_loses_nothing_and_leaves_store_and_log_agreeing() {
+    let env = Env::with_config_text(CONFIG);
+    let files: Vec<PathBuf> = (1..=6)
+        .map(|n| write(&env, &format!("night-{n}.csv"), &night(5, n, Fault::None)))
+        .collect();
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+
+    // By hand: a crash inside, before or after the transaction is durable.
+    for point in [
+        "store:mid-transaction",
+        "store:before-flush",
+        "store:after-flush",
+    ] {
+        let before = env.status_json()["summary"]["set_aside"].clone();
+        let was_aside = before.get("2").is_some();
+        let verb = if was_aside { "bring-back" } else { "set-aside" };
+        let out = faulty(&env, point, &[verb, "b000002", "--reason", "crash test"]);
+        assert_ne!(code(&out), 0, "{point}: the process died");
+        // The next owner's start catches `audit.jsonl` up with the store
+        // (this command opens the state dir, then finds no such batch).
+        let out = env.run(&["set-aside", "b000999", "--reason", "probe"]);
+        assert!(
+            stderr(&out).contains("no batch b000999"),
+            "{}",
+            stderr(&out)
+        );
+        let v = env.run(&["verify"]);
+        assert_eq!(code(&v), 0, "{point}: {}{}", stdout(&v), stderr(&v));
+        let now = env.status_json()["summary"]["set_aside"].get("2").is_some();
+        if point == "store:after-flush" {
+            assert_ne!(now, was_aside, "{point}: a durable change was lost");
+        } else if now == was_aside {
+            // Not applied: doing it again works.
+            let out = env.run(&[verb, "b000002", "--reason", "again"]);
+            assert_eq!(code(&out), 0, "{point}: {}", stderr(&out));
+        }
+        let v = env.run(&["verify"]);
+        assert_eq!(code(&v), 0, "{point}: {}{}", stdout(&v), stderr(&v));
+    }
+
+    // At intake: a suspect file whose ingest dies after its commit is
+    // finished by the next run, still set aside, stored once.
+    let bad = write(&env, "night-7.csv", &night(5, 7, Fault::Shuffled));
+    let out = faulty(
+        &env,
+        "intake:after-commit",
+        &["ingest", bad.to_str().unwrap()],
+    );
+    assert_ne!(code(&out), 0);
+    let out = env.ingest(std::slice::from_ref(&bad));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let s = env.status_json();
+    assert_eq!(s["summary"]["batches"], 7, "{s}");
+    assert!(s["summary"]["set_aside"].get("7").is_some(), "{s}");
+    let v = env.run(&["verify"]);
+    assert_eq!(code(&v), 0, "{}{}", stdout(&v), stderr(&v));
+}
