@@ -376,12 +376,17 @@ pub struct Tally {
     pub any_flag_nights: usize,
     pub rollbacks: usize,
     pub promotions: usize,
+    /// Drift flags per column, and the nights (1-based) they fell on.
+    pub drift_columns: std::collections::BTreeMap<String, Vec<usize>>,
 }
 
 impl Tally {
     pub fn add(&mut self, nights: &[Night]) {
         self.streams += 1;
-        for n in nights {
+        for (i, n) in nights.iter().enumerate() {
+            for c in &n.drift_flagged {
+                self.drift_columns.entry(c.clone()).or_default().push(i + 1);
+            }
             self.nights += 1;
             if n.verdict != "untested" {
                 self.checked_nights += 1;

@@ -135,6 +135,12 @@ fn error_rates_table() {
         100.0 * t.any_flag_nights as f64 / t.nights as f64
     );
     println!("| promotions over those streams | {} |", t.promotions);
+    for (c, nights) in &t.drift_columns {
+        println!(
+            "| drift flags on `{c}` (nights) | {} {nights:?} |",
+            nights.len()
+        );
+    }
     println!(
         "| false promotions per cycle, 1 candidate (gate, 10 batches) | {:.2}% |",
         100.0 * fp1
