@@ -25,23 +25,7 @@ fn promoted(model: u64) -> Event {
         cycle: model,
         model: ModelId(model),
         previous: (model > 1).then(|| ModelId(model - 1)),
-        evidence: GateEvidence {
-            compared_with: "serving".into(),
-            rows: 1000,
-            mean_loss_compared_with: 1.0,
-            mean_loss_candidate: 0.9,
-            relative_improvement: Some(0.1),
-            t: Some(3.0),
-            p: 0.001,
-            batches: None,
-            batches_needed: None,
-            candidates: None,
-            p_unadjusted: None,
-            wilcoxon_p: None,
-            new_rows: 100,
-            old_rows: 900,
-            reason: "better on the holdout rows".into(),
-        },
+        evidence: GateEvidence::without_test(1000, 1.0, 0.9, "better on the holdout rows".into()),
     }
 }
 

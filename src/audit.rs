@@ -471,6 +471,31 @@ pub struct GateEvidence {
     pub reason: String,
 }
 
+impl GateEvidence {
+    /// Evidence for a move that no test decided: a state built on purpose
+    /// by a simulation, a benchmark or a test. Compared with the serving
+    /// model on `rows` holdout rows; no statistic, p = 1.
+    pub fn without_test(rows: usize, before: f64, after: f64, reason: String) -> GateEvidence {
+        GateEvidence {
+            compared_with: "serving".into(),
+            rows,
+            mean_loss_compared_with: before,
+            mean_loss_candidate: after,
+            relative_improvement: (before > 0.0).then(|| (before - after) / before),
+            t: None,
+            p: 1.0,
+            batches: None,
+            batches_needed: None,
+            candidates: None,
+            p_unadjusted: None,
+            wilcoxon_p: None,
+            new_rows: 0,
+            old_rows: rows,
+            reason,
+        }
+    }
+}
+
 impl Event {
     /// The kebab-case kind name as written in the log.
     pub fn kind(&self) -> &'static str {

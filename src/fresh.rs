@@ -732,6 +732,15 @@ fn reference_rows(
     Ok((rows, picks.iter().map(|&i| labels[i]).collect()))
 }
 
+/// The text of category code `code` of column `col` ("?" when unknown).
+fn value_name(vocabs: &Vocabularies, col: usize, code: u32) -> String {
+    vocabs
+        .get(&col)
+        .and_then(|v| v.value(code))
+        .unwrap_or("?")
+        .to_string()
+}
+
 /// Per category value: its rows' losses on the batch and on the reference.
 fn groups(
     schema: &Schema,
@@ -780,11 +789,7 @@ fn groups(
             let (rm, rsd) = stats(r);
             out.push(Group {
                 column: schema.columns[col].name.clone(),
-                value: vocabs
-                    .get(&col)
-                    .and_then(|v| v.value(code))
-                    .unwrap_or("?")
-                    .to_string(),
+                value: value_name(vocabs, col, code),
                 rows: acc.n,
                 mean_loss: m,
                 sd_loss: sd,
@@ -845,11 +850,7 @@ pub fn hotspots(
             }
             found.push(Hotspot {
                 column: schema.columns[col].name.clone(),
-                value: vocabs
-                    .get(&col)
-                    .and_then(|v| v.value(code))
-                    .unwrap_or("?")
-                    .to_string(),
+                value: value_name(vocabs, col, code),
                 rows: count,
                 mean_loss: total / count as f64,
                 usual_loss: base,

@@ -276,23 +276,7 @@ pub(crate) mod tests {
             cycle: model,
             model: ModelId(model),
             previous: previous.map(ModelId),
-            evidence: GateEvidence {
-                compared_with: "serving".into(),
-                rows: 100,
-                mean_loss_compared_with: 1.0,
-                mean_loss_candidate: 0.9,
-                relative_improvement: Some(0.1),
-                t: Some(3.0),
-                p: 0.001,
-                batches: None,
-                batches_needed: None,
-                candidates: None,
-                p_unadjusted: None,
-                wilcoxon_p: None,
-                new_rows: 10,
-                old_rows: 90,
-                reason: "better".into(),
-            },
+            evidence: GateEvidence::without_test(100, 1.0, 0.9, "better".into()),
         }
     }
 

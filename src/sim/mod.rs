@@ -321,23 +321,12 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         cycle: 0,
         holdout_loss: mean(&worse.row_losses(&holdout, backend)?),
     };
-    let evidence = crate::audit::GateEvidence {
-        compared_with: "serving".into(),
-        rows: holdout.n_rows(),
-        mean_loss_compared_with: base,
-        mean_loss_candidate: record.holdout_loss,
-        relative_improvement: None,
-        t: None,
-        p: 1.0,
-        batches: None,
-        batches_needed: None,
-        candidates: None,
-        p_unadjusted: None,
-        wilcoxon_p: None,
-        new_rows: 0,
-        old_rows: holdout.n_rows(),
-        reason: format!("simulation: a model made {factor}× worse, promoted on purpose"),
-    };
+    let evidence = crate::audit::GateEvidence::without_test(
+        holdout.n_rows(),
+        base,
+        record.holdout_loss,
+        format!("simulation: a model made {factor}× worse, promoted on purpose"),
+    );
     let entry = owner.store.record_with_meta(
         Event::Promoted {
             cycle: 0,

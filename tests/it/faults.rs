@@ -278,23 +278,12 @@ fn promote_with_evidence_of_regression(env: &Env) -> (u64, u64) {
         cycle: 99,
         model: other,
         previous: Some(serving),
-        evidence: tidegate::audit::GateEvidence {
-            compared_with: "serving".into(),
-            rows: 100,
-            mean_loss_compared_with: 1.0,
-            mean_loss_candidate: 0.9,
-            relative_improvement: Some(0.1),
-            t: Some(3.0),
-            p: 0.001,
-            batches: None,
-            batches_needed: None,
-            candidates: None,
-            p_unadjusted: None,
-            wilcoxon_p: None,
-            new_rows: 0,
-            old_rows: 0,
-            reason: "set up by the test".into(),
-        },
+        evidence: tidegate::audit::GateEvidence::without_test(
+            100,
+            1.0,
+            0.9,
+            "set up by the test".into(),
+        ),
     };
     store
         .record_with_meta(
