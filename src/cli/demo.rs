@@ -188,7 +188,13 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     if let Some(e) = r.decision.evidence() {
                         night.p = format!("{:.2e}", e.p);
                     }
-                    night.decision = r.decision.kind().to_string();
+                    // The candidate's fate: a candidate that does not serve
+                    // is shelved (the serving model is what is kept).
+                    night.decision = match r.decision.kind() {
+                        "keep" => "shelve",
+                        kind => kind,
+                    }
+                    .to_string();
                     if let Some(id) = judged.id {
                         night.decision.push_str(&format!(" {id}"));
                     }

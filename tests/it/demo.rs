@@ -23,7 +23,7 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
             .any(|n| n[field].as_str().unwrap_or("").contains(pat))
     };
     assert!(has("decision", "promote"), "{v}");
-    assert!(has("decision", "keep"), "{v}");
+    assert!(has("decision", "shelve"), "{v}");
     assert!(has("intake", "refused"), "{v}");
     assert!(has("intake", "duplicate of"), "{v}");
     assert!(has("intake", "new shop"), "{v}");
