@@ -214,10 +214,7 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let serving = match store.serving()? {
         Some(id) => {
             let record = model_record(owner, id)?;
-            let ck = Checkpoint::load(
-                &checkpoint::model_dir(&owner.state.models(), id),
-                &fingerprint,
-            )?;
+            let ck = owner.checkpoint(id)?;
             Some((id, record, ck))
         }
         None => None,

@@ -1074,6 +1074,20 @@ impl BatchReport {
             .collect()
     }
 
+    /// The new values as shown to people: "column: a, b (3.2% of rows)".
+    pub fn new_values_text(&self) -> Vec<String> {
+        self.new_values()
+            .into_iter()
+            .map(|(col, values, share)| {
+                format!(
+                    "{col}: {} ({:.1}% of rows)",
+                    values.join(", "),
+                    100.0 * share
+                )
+            })
+            .collect()
+    }
+
     /// One line for `log` and the daemon: flags, the reference being built,
     /// or nothing.
     pub fn summary(&self) -> Option<String> {

@@ -45,7 +45,6 @@ use crate::gate::monitor::{self, Observation, Prior};
 use crate::gate::shift::{self, Group, LEVEL_HISTORY};
 use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
-use crate::model::checkpoint::{self, Checkpoint};
 use crate::model::{Model, ModelError};
 use crate::rng::Rng;
 use crate::sample;
@@ -284,13 +283,7 @@ pub fn check_batch(
     let gate_config = owner.config.gate.clone();
     let alpha = gate_config.alpha;
     let backend = owner.config.training.predict_backend;
-    let fingerprint = owner.config.schema_fingerprint();
-    let load = |id: ModelId| {
-        Checkpoint::load(
-            &checkpoint::model_dir(&owner.state.models(), id),
-            &fingerprint,
-        )
-    };
+    let load = |id: ModelId| owner.checkpoint(id);
 
     // Which pair the monitor compares: kept in the store while the serving
     // model serves, looked up in the log only when it starts.

@@ -9,7 +9,6 @@ use crate::audit::{Entry, Event, FreshEvidence};
 use crate::cycle::META_PENDING;
 use crate::ids::ModelId;
 use crate::model::ModelError;
-use crate::model::checkpoint::{Checkpoint, model_dir};
 use crate::state::{Owner, StateError};
 use crate::store::{META_SERVING, Store, StoreError};
 
@@ -71,12 +70,10 @@ fn check_reason(reason: &str) -> Result<(), DecisionError> {
 
 /// A model may serve only if its checkpoint loads, verifies and matches the schema.
 fn usable(owner: &Owner, id: ModelId) -> Result<(), DecisionError> {
-    Checkpoint::load(
-        &model_dir(&owner.state.models(), id),
-        &owner.config.schema_fingerprint(),
-    )
-    .map(|_| ())
-    .map_err(|source| DecisionError::Unusable { id, source })
+    owner
+        .checkpoint(id)
+        .map(|_| ())
+        .map_err(|source| DecisionError::Unusable { id, source })
 }
 
 fn commit(

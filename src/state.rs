@@ -160,6 +160,20 @@ pub struct Owner {
     _lock: OwnerLock,
 }
 
+impl Owner {
+    /// Model `id`'s checkpoint, loaded, verified and checked against this
+    /// state dir's schema.
+    pub fn checkpoint(
+        &self,
+        id: crate::ids::ModelId,
+    ) -> Result<crate::model::checkpoint::Checkpoint, crate::model::ModelError> {
+        crate::model::checkpoint::Checkpoint::load(
+            &crate::model::checkpoint::model_dir(&self.state.models(), id),
+            &self.config.schema_fingerprint(),
+        )
+    }
+}
+
 /// Creates a state dir (mode 0700) from a config: folders, the config copy,
 /// the store and the first audit entry.
 pub fn create(

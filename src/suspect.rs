@@ -18,7 +18,6 @@ use crate::config::{ColumnKind, Task};
 use crate::gate::suspect::{self, PairingInput};
 use crate::ids::{BatchId, ModelId};
 use crate::ingest::Batch;
-use crate::model::checkpoint::{self, Checkpoint};
 use crate::rng::Rng;
 use crate::schema::{FeatureSpec, RowMatrix};
 use crate::state::Owner;
@@ -146,13 +145,7 @@ pub fn check(owner: &Owner, batch: &Batch) -> Result<Option<SuspectEvidence>, St
     // The references.
     let mut scorers: Vec<(String, Scorer<'_>)> = Vec::new();
     let backend = owner.config.training.predict_backend;
-    let fingerprint = owner.config.schema_fingerprint();
-    let load = |id: ModelId| {
-        Checkpoint::load(
-            &checkpoint::model_dir(&owner.state.models(), id),
-            &fingerprint,
-        )
-    };
+    let load = |id: ModelId| owner.checkpoint(id);
     if let Some(serving) = store.serving()? {
         match load(serving) {
             Ok(ck) => {

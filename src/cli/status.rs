@@ -125,17 +125,7 @@ impl Summary {
                             .map(|c| format!("{}: {}", c.column, c.reason))
                             .collect(),
                         building: d.building_text(),
-                        new_values: d
-                            .new_values()
-                            .into_iter()
-                            .map(|(col, values, share)| {
-                                format!(
-                                    "{col}: {} ({:.1}% of rows)",
-                                    values.join(", "),
-                                    100.0 * share
-                                )
-                            })
-                            .collect(),
+                        new_values: d.new_values_text(),
                         old_rule_flagged: d
                             .old_rule_flagged()
                             .iter()

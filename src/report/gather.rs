@@ -199,18 +199,9 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                         drifted: drift.as_ref().map_or_else(Vec::new, |d| {
                             d.flagged().into_iter().map(str::to_string).collect()
                         }),
-                        new_values: drift.as_ref().map_or_else(Vec::new, |d| {
-                            d.new_values()
-                                .into_iter()
-                                .map(|(col, values, share)| {
-                                    format!(
-                                        "{col}: {} ({:.1}% of rows)",
-                                        values.join(", "),
-                                        100.0 * share
-                                    )
-                                })
-                                .collect()
-                        }),
+                        new_values: drift
+                            .as_ref()
+                            .map_or_else(Vec::new, |d| d.new_values_text()),
                     },
                     rows_stored: stored,
                 });

@@ -31,7 +31,7 @@ use crate::cycle::{self, ModelRecord};
 use crate::fresh;
 use crate::ids::{BatchId, ModelId};
 use crate::intake::{self, Source};
-use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta};
+use crate::model::checkpoint::CheckpointMeta;
 use crate::model::{Model, adam};
 use crate::rng::Rng;
 use crate::state::{self, Owner, StateDir};
@@ -268,11 +268,7 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         .store
         .serving()?
         .ok_or_else(|| anyhow::anyhow!("no model serves"))?;
-    let fingerprint = owner.config.schema_fingerprint();
-    let ck = Checkpoint::load(
-        &checkpoint::model_dir(&owner.state.models(), serving),
-        &fingerprint,
-    )?;
+    let ck = owner.checkpoint(serving)?;
     let holdout = owner.store.rows(Split::Holdout, None, None)?;
     let backend = owner.config.training.predict_backend;
     let base = mean(&ck.model.row_losses(&holdout, backend)?);
@@ -308,7 +304,7 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         id,
         parent: Some(serving),
         created_at: Utc::now(),
-        schema_fingerprint: &fingerprint,
+        schema_fingerprint: &owner.config.schema_fingerprint(),
         vocabularies: &vocabs,
     };
     worse.save(&owner.state.models(), &ck.manifest.summary, &meta)?;
