@@ -10,6 +10,11 @@
 //! `point=action@N` acts only at the Nth time the process reaches the
 //! point (counted from 1), so a test can fail, say, the second store flush
 //! of a command (the fresh-data check's) and not the first (the batch's).
+//!
+//! One setting is not a failure: `store:flush-every=N` makes the store's
+//! background flusher run every N ms (sled's own default is 500), so that a
+//! power-loss test sees it make writes durable between any two of the
+//! process's own steps, as a slow or loaded machine does.
 
 use std::sync::Mutex;
 use std::sync::OnceLock;
@@ -75,6 +80,14 @@ fn armed() -> &'static Vec<Armed> {
             })
             .collect()
     })
+}
+
+/// The store's background flush interval in ms, when a test sets one.
+pub fn store_flush_every_ms() -> Option<u64> {
+    armed()
+        .iter()
+        .find(|a| a.name == "store:flush-every")
+        .and_then(|a| a.action.parse().ok())
 }
 
 /// Passes, or fails the way the environment asks at this point.

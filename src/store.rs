@@ -1207,6 +1207,10 @@ fn split_rows(record: &BatchRecord, split: Split) -> usize {
 /// Bytes of sled's page cache.
 const SLED_CACHE_BYTES: u64 = 64 * 1024 * 1024;
 
+/// sled's background flush interval (its own default). Durability never
+/// rests on it: every commit is flushed and fsynced before it is reported.
+const SLED_FLUSH_MS: u64 = 500;
+
 /// The one place sled's settings are chosen.
 fn open_sled(path: &Path) -> sled::Result<sled::Db> {
     sled::Config::new()
@@ -1216,6 +1220,9 @@ fn open_sled(path: &Path) -> sled::Result<sled::Db> {
         // (a replay sample touches most of them); rows are read once per
         // cycle, so a small cache costs nothing and bounds memory.
         .cache_capacity(SLED_CACHE_BYTES)
+        .flush_every_ms(Some(
+            crate::failpoint::store_flush_every_ms().unwrap_or(SLED_FLUSH_MS),
+        ))
         .open()
 }
 
