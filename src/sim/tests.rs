@@ -163,3 +163,37 @@ fn error_rates_table() {
         "| true 10% gain promoted in ≥ 80% of runs from | {to_promote:?} holdout batches of 30 rows |"
     );
 }
+
+/// Drift flags per night on stationary streams, through the real intake
+/// only (drift is judged at intake, before any model):
+/// `cargo test --release --lib sim::tests::drift_flags_per_night -- --ignored --nocapture`
+#[test]
+#[ignore = "measurement: prints drift flags per night on stationary streams"]
+fn drift_flags_per_night() {
+    let mut flagged = 0;
+    let mut nights = 0;
+    let mut columns: std::collections::BTreeMap<String, Vec<usize>> = Default::default();
+    for seed in 0..20 {
+        let dir = tempfile::tempdir().unwrap();
+        let mut run = Run::new(dir.path()).unwrap();
+        let spec = StreamSpec {
+            day_sd: [0.06, 0.12, 0.2][seed as usize % 3],
+            ..StreamSpec::stationary(500 + seed, 26)
+        };
+        for (i, (name, text)) in stream(&spec).iter().enumerate() {
+            let n = run.night(i + 1, name, text, false).unwrap();
+            nights += 1;
+            flagged += usize::from(!n.drift_flagged.is_empty());
+            for c in n.drift_flagged {
+                columns.entry(c).or_default().push(i + 1);
+            }
+        }
+    }
+    println!(
+        "drift flags: {flagged}/{nights} nights = {:.1}%",
+        100.0 * flagged as f64 / nights as f64
+    );
+    for (c, n) in columns {
+        println!("  {c}: {} {n:?}", n.len());
+    }
+}
