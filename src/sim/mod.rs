@@ -16,9 +16,9 @@
 //! - [`Change::ZoneShift`]: from a given night, one zone's energy use rises
 //!   by a factor (a real change in the world: the inputs still explain the
 //!   target, differently);
-//! - worse models are made by [`make_worse`]: the serving model's output
-//!   spread scaled until its holdout loss is a given factor higher, then
-//!   promoted as if the gate had passed it.
+//! - worse models are made by [`make_worse`]: the serving model's last
+//!   layer shrunk until its holdout loss is a given factor higher,
+//!   then promoted as if the gate had passed it.
 
 use std::fmt::Write;
 use std::path::Path;
@@ -259,8 +259,8 @@ impl Run {
 }
 
 /// Makes the serving model `factor` times worse on the stored holdout rows
-/// (its output shifted up until the mean holdout loss is `factor` times
-/// its own, as an upstream unit slip would), saves it as a new version and
+/// (its last layer shrunk towards a constant until the mean holdout loss
+/// is `factor` times its own), saves it as a new version and
 /// promotes it with the old one as its predecessor, as if the gate had
 /// passed it. Returns the new model's id.
 pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<ModelId> {
@@ -272,22 +272,48 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
     let holdout = owner.store.rows(Split::Holdout, None, None)?;
     let backend = owner.config.training.predict_backend;
     let base = mean(&ck.model.row_losses(&holdout, backend)?);
-    let scaled = |c: f32| -> anyhow::Result<Model> {
-        let mut weights = ck.model.weights();
-        let last = weights.last_mut().expect("a network has layers");
-        for b in &mut last.bias {
-            *b += c;
+    // The last layer's weights are shrunk by a factor 1 − c, the output
+    // pulled towards a constant with its mean on the holdout rows kept:
+    // the model loses part of what it learnt, on any rows. (A shifted, a
+    // stretched or a noisier output was not worse on every night: on nights
+    // a stale model under-predicts, each can beat the model it came from.)
+    let values = |m: &Model| -> anyhow::Result<Vec<f32>> {
+        match m.predict(&holdout, backend)? {
+            crate::model::Predictions::Regression { values } => Ok(values),
+            _ => anyhow::bail!("the simulation is a regression"),
         }
-        Ok(Model::from_parts(
+    };
+    let original = values(&ck.model)?;
+    let build = |weights: &[crate::model::LayerWeights]| {
+        Model::from_parts(
             ck.model.spec().clone(),
             ck.model.config().clone(),
             ck.model.target_scale(),
             ck.model.backend(),
-            &weights,
+            weights,
             adam(),
-        ))
+        )
     };
-    let (mut lo, mut hi) = (0.0f32, 8.0f32);
+    let scaled = |c: f32| -> anyhow::Result<Model> {
+        let mut weights = ck.model.weights();
+        let last = weights.last_mut().expect("a network has layers");
+        for w in &mut last.weight {
+            *w *= 1.0 - c;
+        }
+        // Nor may the mean output move: a shift alone can help on fresh
+        // nights that the model under- or over-predicts.
+        let moved = values(&build(&weights))?;
+        let shift = original
+            .iter()
+            .zip(&moved)
+            .map(|(a, b)| f64::from(b - a))
+            .sum::<f64>()
+            / original.len().max(1) as f64;
+        let last = weights.last_mut().expect("a network has layers");
+        last.bias[0] -= (shift / ck.model.target_scale().std) as f32;
+        Ok(build(&weights))
+    };
+    let (mut lo, mut hi) = (0.0f32, 1.0f32);
     for _ in 0..40 {
         let mid = 0.5 * (lo + hi);
         let loss = mean(&scaled(mid)?.row_losses(&holdout, backend)?);

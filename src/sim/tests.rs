@@ -31,7 +31,11 @@ fn nights_to_rollback(seed: u64, factor: f64, limit: usize) -> Option<usize> {
     for (i, (name, text)) in files.iter().take(14).enumerate() {
         run.night(i + 1, name, text, true).unwrap();
     }
-    make_worse(&mut run.owner, factor, "sim").unwrap();
+    let before = run.owner.store.serving().unwrap();
+    let worse = make_worse(&mut run.owner, factor, "sim").unwrap();
+    if std::env::var_os("SIM_DEBUG").is_some() {
+        eprintln!("made {worse} from {before:?}");
+    }
     for (k, (name, text)) in files.iter().skip(14).enumerate() {
         let n = run.night(15 + k, name, text, false).unwrap();
         if std::env::var_os("SIM_DEBUG").is_some() {
