@@ -201,3 +201,34 @@ fn drift_flags_per_night() {
         println!("  {c}: {} {n:?}", n.len());
     }
 }
+
+/// Flags and rollbacks on stationary streams unlike the table's: fewer
+/// rows a night and larger or smaller day effects, end to end:
+/// `cargo test --release --lib sim::tests::stationary_variants -- --ignored --nocapture`
+#[test]
+#[ignore = "measurement: prints flags on other stationary streams"]
+fn stationary_variants() {
+    for (buildings, meters, day_sd) in [(12, 4, 0.25), (38, 4, 0.05), (20, 2, 0.15)] {
+        let mut t = Tally::default();
+        for seed in 0..5 {
+            let dir = tempfile::tempdir().unwrap();
+            let spec = StreamSpec {
+                buildings,
+                meters,
+                day_sd,
+                ..StreamSpec::stationary(900 + seed, 26)
+            };
+            t.add(&run_stream(dir.path(), &spec).unwrap());
+        }
+        println!(
+            "{} rows a night, day sd {day_sd}: rollbacks {}, fresh flags {}/{}, drift nights {}/{}, promotions {}",
+            buildings * meters,
+            t.rollbacks,
+            t.fresh_flags,
+            t.nights,
+            t.drift_nights,
+            t.nights,
+            t.promotions
+        );
+    }
+}
