@@ -26,6 +26,7 @@ pub mod ingest;
 pub mod intake;
 pub mod lifecycle;
 pub mod model;
+pub mod provenance;
 pub mod refold;
 pub mod report;
 pub mod rng;

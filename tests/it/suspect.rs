@@ -455,3 +455,84 @@ fn a_crash_while_setting_aside_loses_nothing_and_leaves_store_and_log_agreeing()
     let v = env.run(&["verify"]);
     assert_eq!(code(&v), 0, "{}{}", stdout(&v), stderr(&v));
 }
+
+#[test]
+fn models_name_the_batches_they_saw_and_the_models_a_batch_reached() {
+    let env = Env::with_config_text(CONFIG);
+    let files: Vec<PathBuf> = (1..=3)
+        .map(|n| write(&env, &format!("night-{n}.csv"), &night(5, n, Fault::None)))
+        .collect();
+    assert_eq!(code(&env.ingest(&files)), 0);
+    retrain(&env);
+    let out = env.run(&["set-aside", "b000002", "--reason", "export was broken"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let f = write(&env, "night-4.csv", &night(5, 4, Fault::None));
+    assert_eq!(code(&env.ingest(&[f])), 0);
+    retrain(&env);
+
+    let models = |args: &[&str]| -> Vec<serde_json::Value> {
+        let mut all = vec!["--json", "models"];
+        all.extend(args);
+        let out = env.run(&all);
+        assert_eq!(code(&out), 0, "{}", stderr(&out));
+        stdout(&out)
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    };
+    let ids = |v: &serde_json::Value| -> Vec<u64> {
+        v.as_array()
+            .unwrap()
+            .iter()
+            .map(|b| b.as_u64().unwrap())
+            .collect()
+    };
+    let all = models(&[]);
+    assert!(all.len() >= 2, "{all:?}");
+    let by_id: std::collections::BTreeMap<u64, &serde_json::Value> =
+        all.iter().map(|m| (m["id"].as_u64().unwrap(), m)).collect();
+    for m in &all {
+        let direct = ids(&m["batches_direct"]);
+        let seen = ids(&m["batches_seen"]);
+        let first_cycle = m["cycle"] == 1;
+        // The first cycle read batches 1-3; later ones not the batch set
+        // aside before them, and batch 4 as well.
+        if first_cycle {
+            assert_eq!(direct, vec![1, 2, 3], "{m}");
+        } else {
+            assert_eq!(direct, vec![1, 3, 4], "{m}");
+        }
+        // A warm model saw what its parent saw; a cold one only its own.
+        let mut want = direct.clone();
+        if m["kind"] == "warm" {
+            let parent = by_id[&m["parent"].as_u64().unwrap()];
+            want.extend(ids(&parent["batches_seen"]));
+            want.sort_unstable();
+            want.dedup();
+        }
+        assert_eq!(seen, want, "{m}");
+    }
+    // The models batch 2 reached, and how.
+    let reached = models(&["--trained-on", "b000002"]);
+    assert!(!reached.is_empty());
+    for m in &reached {
+        let direct = ids(&m["batches_direct"]).contains(&2);
+        let route = if direct { "directly" } else { "through_parent" };
+        assert_eq!(m["route"], route, "{m}");
+        assert!(ids(&m["batches_seen"]).contains(&2));
+    }
+    let reached_ids: Vec<u64> = reached.iter().map(|m| m["id"].as_u64().unwrap()).collect();
+    let want: Vec<u64> = all
+        .iter()
+        .filter(|m| ids(&m["batches_seen"]).contains(&2))
+        .map(|m| m["id"].as_u64().unwrap())
+        .collect();
+    assert_eq!(reached_ids, want);
+    // The screen says it in words.
+    let out = env.run(&["models", "--trained-on", "b000002"]);
+    assert!(
+        stdout(&out).contains("b000002 was seen by: m000001 directly"),
+        "{}",
+        stdout(&out)
+    );
+}

@@ -1,0 +1,266 @@
+//! Which batches each model saw, and which models saw a batch: read from
+//! the audit log alone, so it answers for any model the log names.
+//!
+//! A candidate's own training could touch every batch that was stored, in
+//! use (not set aside) and no later than its `trained_through` when it was
+//! trained: a cold run reads them all, and a warm run reads the new ones
+//! plus a sample of the older ones, any of which may be drawn. A warm
+//! candidate also carries, through its starting weights, everything its
+//! parent saw. So:
+//!
+//!   saw(m) = in_use(at m's training, ≤ m.trained_through) ∪ saw(parent)  (warm)
+//!   saw(m) = in_use(at m's training, ≤ m.trained_through)                (cold)
+//!
+//! This is the safe side of "saw" for the question it exists for ("which
+//! models trained on the broken file, directly or through their parents?"):
+//! a batch is never left out that a model may have learnt from.
+
+use std::collections::{BTreeMap, BTreeSet};
+
+use serde::Serialize;
+
+use crate::audit::{Entry, Event};
+use crate::ids::{BatchId, ModelId};
+
+/// What the log says about one model's data.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Lineage {
+    pub model: ModelId,
+    pub parent: Option<ModelId>,
+    /// "warm" or "cold".
+    pub run: String,
+    /// Batches its own training could read.
+    pub direct: BTreeSet<BatchId>,
+    /// `direct` and, for a warm model, everything its parent saw.
+    pub saw: BTreeSet<BatchId>,
+}
+
+/// How a model came to have seen a batch.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Route {
+    /// Its own training could read the batch's rows.
+    Directly,
+    /// Only through the weights it started from.
+    ThroughParent,
+}
+
+/// Every model's lineage, replaying the log in order.
+pub fn lineages<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> BTreeMap<ModelId, Lineage> {
+    let mut stored: BTreeSet<BatchId> = BTreeSet::new();
+    let mut aside: BTreeSet<BatchId> = BTreeSet::new();
+    let mut out: BTreeMap<ModelId, Lineage> = BTreeMap::new();
+    for e in entries {
+        match &e.event {
+            Event::BatchAccepted { batch, suspect, .. } => {
+                stored.insert(*batch);
+                if suspect.as_ref().is_some_and(|s| s.suspect) {
+                    aside.insert(*batch);
+                }
+            }
+            Event::BatchSetAside { batch, .. } => {
+                aside.insert(*batch);
+            }
+            Event::BatchBroughtBack { batch, .. } => {
+                aside.remove(batch);
+            }
+            Event::CandidateTrained {
+                model,
+                run,
+                parent,
+                trained_through,
+                ..
+            } => {
+                let direct: BTreeSet<BatchId> = stored
+                    .iter()
+                    .filter(|b| **b <= *trained_through && !aside.contains(b))
+                    .copied()
+                    .collect();
+                let mut saw = direct.clone();
+                if run == "warm"
+                    && let Some(p) = parent.and_then(|p| out.get(&p))
+                {
+                    saw.extend(p.saw.iter().copied());
+                }
+                out.insert(
+                    *model,
+                    Lineage {
+                        model: *model,
+                        parent: *parent,
+                        run: run.clone(),
+                        direct,
+                        saw,
+                    },
+                );
+            }
+            _ => {}
+        }
+    }
+    out
+}
+
+/// The models that saw `batch`, and how.
+pub fn trained_on(lineages: &BTreeMap<ModelId, Lineage>, batch: BatchId) -> Vec<(ModelId, Route)> {
+    lineages
+        .values()
+        .filter(|l| l.saw.contains(&batch))
+        .map(|l| {
+            let route = if l.direct.contains(&batch) {
+                Route::Directly
+            } else {
+                Route::ThroughParent
+            };
+            (l.model, route)
+        })
+        .collect()
+}
+
+/// A set of batches as runs: "b000001–b000005, b000007".
+pub fn ranges_text(batches: &BTreeSet<BatchId>) -> String {
+    let mut runs: Vec<(BatchId, BatchId)> = Vec::new();
+    for &b in batches {
+        match runs.last_mut() {
+            Some((_, hi)) if hi.0 + 1 == b.0 => *hi = b,
+            _ => runs.push((b, b)),
+        }
+    }
+    if runs.is_empty() {
+        return "none".into();
+    }
+    runs.iter()
+        .map(|(lo, hi)| {
+            if lo == hi {
+                lo.to_string()
+            } else {
+                format!("{lo}–{hi}")
+            }
+        })
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::audit::SuspectEvidence;
+
+    fn entry(seq: u64, event: Event) -> Entry {
+        Entry::seal(
+            crate::ids::AuditSeq(seq),
+            chrono::Utc::now(),
+            "ana",
+            event,
+            "",
+        )
+    }
+
+    fn flagged() -> SuspectEvidence {
+        SuspectEvidence {
+            suspect: true,
+            why: vec!["targets unrelated to inputs".into()],
+            rows: 10,
+            references: Vec::new(),
+            target_scale: None,
+            copies_share: 0.1,
+            reason: String::new(),
+        }
+    }
+
+    fn accepted(b: u64, suspect: bool) -> Event {
+        Event::BatchAccepted {
+            batch: BatchId(b),
+            file: format!("night-{b}.csv"),
+            file_hash: String::new(),
+            rows: 10,
+            train_rows: 8,
+            holdout_rows: 2,
+            new_categories: Default::default(),
+            drift: None,
+            suspect: suspect.then(flagged),
+        }
+    }
+
+    fn trained(m: u64, run: &str, parent: Option<u64>, through: u64) -> Event {
+        Event::CandidateTrained {
+            cycle: m,
+            model: ModelId(m),
+            run: run.into(),
+            parent: parent.map(ModelId),
+            trained_through: BatchId(through),
+            epochs: 1,
+            seconds: 0.0,
+            stop: String::new(),
+            holdout_rows: 2,
+            holdout_loss: 1.0,
+            manifest_hash: String::new(),
+            widened: Default::default(),
+            rescaled: Vec::new(),
+        }
+    }
+
+    fn set(v: &[u64]) -> BTreeSet<BatchId> {
+        v.iter().map(|&b| BatchId(b)).collect()
+    }
+
+    #[test]
+    fn a_warm_model_inherits_its_parents_batches_a_cold_one_does_not() {
+        let log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, false)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(4, accepted(3, false)),
+            entry(
+                5,
+                Event::BatchSetAside {
+                    batch: BatchId(2),
+                    reason: "broken export".into(),
+                },
+            ),
+            entry(6, trained(2, "warm", Some(1), 3)),
+            entry(7, trained(3, "cold", None, 3)),
+        ];
+        let l = lineages(&log);
+        assert_eq!(l[&ModelId(1)].saw, set(&[1, 2]));
+        // Batch 2 is aside when m2 trains, but m2 started from m1's weights.
+        assert_eq!(l[&ModelId(2)].direct, set(&[1, 3]));
+        assert_eq!(l[&ModelId(2)].saw, set(&[1, 2, 3]));
+        assert_eq!(l[&ModelId(3)].saw, set(&[1, 3]));
+        assert_eq!(
+            trained_on(&l, BatchId(2)),
+            vec![
+                (ModelId(1), Route::Directly),
+                (ModelId(2), Route::ThroughParent)
+            ]
+        );
+    }
+
+    #[test]
+    fn a_suspect_batch_is_not_seen_until_brought_back() {
+        let log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, true)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(
+                4,
+                Event::BatchBroughtBack {
+                    batch: BatchId(2),
+                    reason: "checked by hand".into(),
+                },
+            ),
+            entry(5, trained(2, "cold", None, 2)),
+        ];
+        let l = lineages(&log);
+        assert_eq!(l[&ModelId(1)].saw, set(&[1]));
+        assert_eq!(l[&ModelId(2)].saw, set(&[1, 2]));
+    }
+
+    #[test]
+    fn ranges_are_written_as_runs() {
+        assert_eq!(ranges_text(&set(&[])), "none");
+        assert_eq!(ranges_text(&set(&[3])), "b000003");
+        assert_eq!(
+            ranges_text(&set(&[1, 2, 3, 5, 7, 8])),
+            "b000001–b000003, b000005, b000007–b000008"
+        );
+    }
+}
