@@ -90,10 +90,6 @@ impl Summary {
         // comparison with ridge.
         let mut cycle_losses: BTreeMap<ModelId, f64> = BTreeMap::new();
         let mut vs_ridge: BTreeMap<ModelId, VersusRidge> = BTreeMap::new();
-        // Batches in use (stored, not set aside), and those in use when the
-        // running cycle started: what its candidates could train on.
-        let mut in_use: BTreeSet<BatchId> = BTreeSet::new();
-        let mut cycle_batches: BTreeSet<BatchId> = BTreeSet::new();
         for e in entries {
             match &e.event {
                 Event::BatchAccepted {
@@ -106,14 +102,9 @@ impl Summary {
                     suspect,
                     ..
                 } => {
-                    match suspect.as_ref().filter(|x| x.suspect) {
-                        Some(x) => {
-                            s.set_aside
-                                .insert(*batch, format!("suspect: {}", x.why.join("; ")));
-                        }
-                        None => {
-                            in_use.insert(*batch);
-                        }
+                    if let Some(x) = suspect.as_ref().filter(|x| x.suspect) {
+                        s.set_aside
+                            .insert(*batch, format!("suspect: {}", x.why.join("; ")));
                     }
                     s.last_drift = drift.as_ref().map(|d| LastDrift {
                         batch: *batch,
@@ -144,13 +135,11 @@ impl Summary {
                     }
                 }
                 Event::BatchSetAside { batch, reason } => {
-                    in_use.remove(batch);
                     s.set_aside
                         .insert(*batch, format!("by {} at {}: {reason}", e.user, e.time));
                 }
                 Event::BatchBroughtBack { batch, .. } => {
                     s.set_aside.remove(batch);
-                    in_use.insert(*batch);
                 }
                 Event::BatchRefused { .. } => s.refused_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
@@ -173,19 +162,8 @@ impl Summary {
                 Event::CandidateTrained {
                     model,
                     holdout_loss,
-                    parent,
-                    trained_through,
                     ..
                 } => {
-                    let mut seen: BTreeSet<BatchId> = cycle_batches
-                        .iter()
-                        .filter(|b| *b <= trained_through)
-                        .copied()
-                        .collect();
-                    if let Some(p) = parent.and_then(|p| s.seen.get(&p)) {
-                        seen.extend(p.iter().copied());
-                    }
-                    s.seen.insert(*model, seen);
                     s.models_trained += 1;
                     cycle_losses.insert(*model, *holdout_loss);
                 }
@@ -214,7 +192,6 @@ impl Summary {
                     }
                 }
                 Event::CycleStarted { .. } => {
-                    cycle_batches = in_use.clone();
                     cycle_losses.clear();
                     s.fresh_check = None;
                 }
@@ -229,6 +206,10 @@ impl Summary {
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
+        s.seen = crate::provenance::lineages(entries)
+            .into_iter()
+            .map(|(m, l)| (m, l.saw))
+            .collect();
         s.serving_saw_set_aside = s
             .serving
             .and_then(|m| s.seen.get(&m))
