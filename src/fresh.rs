@@ -501,13 +501,41 @@ pub fn check_batch(
                 Some(s) if s.previous == Some(*p) => s,
                 _ => {
                     let old_reference = old_model.row_losses(&reference_rows, backend)?;
+                    // The day-to-day variance comes from the same kind of
+                    // rows the monitor will test: those whose category
+                    // values both models know. On rows of a weekday or a
+                    // shop neither has seen, two versions of a model can
+                    // differ wildly, and that spread would hide any real
+                    // regression on the rows that are tested.
+                    let (known_ref, _) = known_rows(&reference_rows, &models, &schema, &vocabs);
+                    let keep = |v: &[f64]| -> Vec<f64> {
+                        v.iter()
+                            .zip(&known_ref)
+                            .filter(|(_, k)| **k)
+                            .map(|(x, _)| *x)
+                            .collect()
+                    };
+                    let known_batches: Vec<u64> = reference_batches
+                        .iter()
+                        .zip(&known_ref)
+                        .filter(|(_, k)| **k)
+                        .map(|(b, _)| *b)
+                        .collect();
+                    let old_known = keep(&old_reference);
                     let per_batch =
-                        batch_differences(&reference, &old_reference, &reference_batches);
+                        batch_differences(&keep(&reference), &old_known, &known_batches);
                     let tau2 = monitor::between_batch_variance(&per_batch).unwrap_or(0.0);
                     MonitorState {
                         serving,
                         previous: Some(*p),
-                        prior: Prior::for_loss(mean(&old_reference), tau2),
+                        prior: Prior::for_loss(
+                            if old_known.is_empty() {
+                                mean(&old_reference)
+                            } else {
+                                mean(&old_known)
+                            },
+                            tau2,
+                        ),
                         observations: Vec::new(),
                     }
                 }
@@ -518,7 +546,7 @@ pub fn check_batch(
             if x.is_finite() && w.is_finite() {
                 let o = monitor::observe(&state.prior, &state.observations, x, w);
                 state.observations.push(o);
-                let reading = monitor::read(&state.observations, alpha);
+                let reading = monitor::read(&state.prior, &state.observations, alpha);
                 evidence.mean_loss_previous = Some(mean(&old));
                 evidence.evidence = Some(reading.evidence).filter(|e| e.is_finite());
                 evidence.evidence_needed = Some(reading.needed);
