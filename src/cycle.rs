@@ -222,17 +222,31 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let through = serving
         .as_ref()
         .map_or(BatchId(0), |(_, r, _)| r.trained_through);
+    // Rows set aside since the serving model learnt from them live on in
+    // its weights: no warm start from it, and a cold candidate even when
+    // nothing new arrived.
+    let tainted = match &serving {
+        Some((id, _, _)) => tainted_batches(store, *id)?,
+        None => Vec::new(),
+    };
+    if !tainted.is_empty() {
+        tracing::info!(
+            "the serving model saw {} (since set aside): this cycle trains cold only",
+            crate::provenance::ranges_text(&tainted.iter().copied().collect())
+        );
+    }
     if let Some((id, _, _)) = &serving
         && through >= last
         && !options.force_cold
+        && tainted.is_empty()
     {
         return Ok(Planned::NothingNew(*id));
     }
     let cycle = store.cycles()? + 1;
     let cold_due =
         owner.config.gate.cold_every > 0 && cycle % owner.config.gate.cold_every as u64 == 0;
-    let want_warm = serving.is_some();
-    let want_cold = serving.is_none() || options.force_cold || cold_due;
+    let want_warm = serving.is_some() && tainted.is_empty();
+    let want_cold = serving.is_none() || options.force_cold || cold_due || !tainted.is_empty();
     Ok(Planned::Run(Box::new(Plan {
         cycle,
         last,
@@ -243,6 +257,27 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
         serving,
         fingerprint,
     })))
+}
+
+/// Batches now set aside that `model` saw, directly or through the models
+/// it was warm-started from (read from the log).
+pub fn tainted_batches(
+    store: &crate::store::Store,
+    model: ModelId,
+) -> Result<Vec<BatchId>, StoreError> {
+    let aside = store.set_aside_batches();
+    if aside.is_empty() {
+        return Ok(Vec::new());
+    }
+    let entries: Vec<crate::audit::Entry> = store
+        .audit_entries()?
+        .iter()
+        .filter_map(|(_, line)| crate::audit::Entry::from_line(line).ok())
+        .collect();
+    Ok(crate::provenance::lineages(&entries)
+        .get(&model)
+        .map(|l| l.saw.intersection(aside).copied().collect())
+        .unwrap_or_default())
 }
 
 fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleError> {

@@ -357,7 +357,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             .collect();
         out.push_str(&format!(
             "WARNING     the serving model trained on {} (since set aside), directly or through \
-             its parents\n",
+             its parents; the next retrain trains a cold candidate without it\n",
             list.join(", ")
         ));
     }

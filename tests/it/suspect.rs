@@ -536,3 +536,52 @@ fn models_name_the_batches_they_saw_and_the_models_a_batch_reached() {
         stdout(&out)
     );
 }
+
+#[test]
+fn a_serving_model_that_saw_a_batch_now_set_aside_is_replaced_by_a_cold_run_only() {
+    let env = Env::with_config_text(CONFIG);
+    let files: Vec<PathBuf> = (1..=4)
+        .map(|n| write(&env, &format!("night-{n}.csv"), &night(7, n, Fault::None)))
+        .collect();
+    assert_eq!(code(&env.ingest(&files)), 0);
+    retrain(&env);
+    let serving = env.status_json()["summary"]["serving"].clone();
+    assert!(
+        serving.is_u64(),
+        "the first cycle promotes a model: {serving}"
+    );
+    // Nothing new: a cycle has nothing to do.
+    let before = env.log_json(&["--kind", "candidate-trained"]).len();
+    retrain(&env);
+    assert_eq!(env.log_json(&["--kind", "candidate-trained"]).len(), before);
+
+    let out = env.run(&["set-aside", "b000002", "--reason", "export was broken"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let status = env.status_json();
+    assert_eq!(
+        status["summary"]["serving_saw_set_aside"],
+        serde_json::json!([2]),
+        "{status}"
+    );
+    // Still nothing new, but the serving model carries the batch: a cold
+    // candidate trains without it, and no warm one starts from its weights.
+    retrain(&env);
+    let trained = env.log_json(&["--kind", "candidate-trained"]);
+    let new: Vec<&serde_json::Value> = trained[before..].iter().collect();
+    assert_eq!(new.len(), 1, "{new:?}");
+    assert_eq!(new[0]["run"], "cold");
+    let out = env.run(&["--json", "models"]);
+    let cold = stdout(&out)
+        .lines()
+        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap())
+        .find(|m| m["id"] == new[0]["model"])
+        .unwrap();
+    assert!(
+        !cold["batches_seen"]
+            .as_array()
+            .unwrap()
+            .contains(&serde_json::json!(2)),
+        "{cold}"
+    );
+    assert_eq!(code(&env.run(&["verify"])), 0);
+}
