@@ -754,49 +754,77 @@ fn power_loss_while_accepting_a_batch_loses_and_doubles_no_row() {
 }
 
 fn accepting_a_batch(flush_ms: Option<u64>) {
+    let file = |env: &Env| env.state().parent().unwrap().join("rows-1.csv");
+    crash_states_of(
+        "accepting a batch",
+        flush_ms,
+        |env| {
+            let first = env.state().parent().unwrap().join("rows-0.csv");
+            fs::write(&first, tiny_rows(0, 200)).unwrap();
+            assert_eq!(code(&env.ingest(std::slice::from_ref(&first))), 0);
+            fs::write(file(env), tiny_rows(200, 150)).unwrap();
+            vec!["ingest".into(), file(env).to_str().unwrap().into()]
+        },
+        |_| {},
+        |env, crashed| {
+            // The owner's start recovers; taking the file again is the
+            // producer's retry. Then every row is there once.
+            let out = crashed.ingest(&[file(env)]);
+            let rows = (code(&out) == 0).then(|| crashed.status_json()["summary"]["rows"].clone());
+            let check = crashed.run(&["verify"]);
+            let verified = code(&check) == 0;
+            (rows != Some(serde_json::json!(350)) || !verified).then(|| {
+                format!(
+                    "ingest exit {} ({}), rows {rows:?}, verify {verified} ({})",
+                    code(&out),
+                    stderr(&out).trim(),
+                    stderr(&check).trim()
+                )
+            })
+        },
+    );
+}
+
+/// Records `tidegate ARGS` (what `setup` returns, on the state dir it
+/// prepared) under strace, asks `after` about the real run, records again
+/// when the replay does not end where the run did; then opens each crash
+/// state and asks `check` (given
+/// the recorded env and the crashed one) what is wrong with it, if
+/// anything. Prints the figures and fails on any violation.
+fn crash_states_of(
+    what: &str,
+    flush_ms: Option<u64>,
+    setup: impl Fn(&Env) -> Vec<String>,
+    after: impl Fn(&Env),
+    check: impl Fn(&Env, &Env) -> Option<String>,
+) {
     let mut attempt = 0;
-    let (env, file, root, before, steps, states, distinct) = loop {
+    // The recorded env lives to the end: the input files are in it.
+    let (env, before, steps, states, distinct) = loop {
         attempt += 1;
         let env = Env::with_config_text(crate::support::TINY_CONFIG);
-        let first = env.state().parent().unwrap().join("rows-0.csv");
-        fs::write(&first, tiny_rows(0, 200)).unwrap();
-        assert_eq!(code(&env.ingest(std::slice::from_ref(&first))), 0);
-        let file = env.state().parent().unwrap().join("rows-1.csv");
-        fs::write(&file, tiny_rows(200, 150)).unwrap();
-        let root = env.state();
-        let before = Model::load(&root);
-        let steps = traced(&env, &["ingest", file.to_str().unwrap()], flush_ms);
+        let args = setup(&env);
+        let before = Model::load(&env.state());
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let steps = traced(&env, &args, flush_ms);
+        after(&env);
         match explore(&before, &steps) {
-            Some((states, distinct)) => break (env, file, root, before, steps, states, distinct),
+            Some((states, distinct)) => break (env, before, steps, states, distinct),
             None => assert!(attempt < 3, "the replay never matched the real run"),
         }
     };
-    let _ = &env;
+    let root = env.state();
     let mut violations = Vec::new();
     for (n, (kind, files)) in states.iter().enumerate() {
         let dir = tempfile::tempdir().unwrap();
         materialise(&before, files, &root, &dir.path().join("state"));
         let crashed = env_at(dir);
-        // The owner's start recovers; taking the file again is the
-        // producer's retry. Then every row is there once.
-        let out = crashed.ingest(std::slice::from_ref(&file));
-        let rows = (code(&out) == 0).then(|| crashed.status_json()["summary"]["rows"].clone());
-        let check = crashed.run(&["verify"]);
-        let verified = code(&check) == 0;
-        if rows != Some(serde_json::json!(350)) || !verified {
-            violations.push((
-                *kind,
-                format!(
-                    "state {n} ({kind:?}): ingest exit {} ({}), rows {rows:?}, verify {verified} ({})",
-                    code(&out),
-                    stderr(&out).trim(),
-                    stderr(&check).trim()
-                ),
-            ));
+        if let Some(problem) = check(&env, &crashed) {
+            violations.push((*kind, format!("state {n} ({kind:?}): {problem}")));
         }
     }
     eprintln!(
-        "power loss while accepting a batch (store flush every {flush_ms:?} ms): {} recorded steps, {distinct} distinct states, {} explored, {} violations",
+        "power loss while {what} (store flush every {flush_ms:?} ms): {} recorded steps, {distinct} distinct states, {} explored, {} violations",
         steps.len(),
         states.len(),
         violations.len()
@@ -815,67 +843,48 @@ fn power_loss_while_promoting_a_model_leaves_the_old_or_the_new_one_serving() {
 }
 
 fn promoting_a_model(flush_ms: Option<u64>) {
-    let mut attempt = 0;
-    let (files, root, before, steps, states, distinct) = loop {
-        attempt += 1;
-        let env = Env::with_config_text(crate::support::TINY_CONFIG);
-        let files: Vec<_> = (0..3)
-            .map(|i| {
-                let f = env.state().parent().unwrap().join(format!("rows-{i}.csv"));
-                fs::write(&f, tiny_rows(i * 200, 200)).unwrap();
-                f
-            })
-            .collect();
-        assert_eq!(code(&env.ingest(&files)), 0);
-        let root = env.state();
-        let before = Model::load(&root);
-        let steps = traced(&env, &["retrain"], flush_ms);
-        assert_eq!(
-            env.status_json()["summary"]["serving"],
-            1,
-            "the cycle promoted"
-        );
-        if let Some((states, distinct)) = explore(&before, &steps) {
-            // Keep the temp dir: the input files live there.
-            std::mem::forget(env);
-            break (files, root, before, steps, states, distinct);
-        }
-        assert!(attempt < 3, "the replay never matched the real run");
-    };
-    let mut violations = Vec::new();
-    for (n, (kind, state)) in states.iter().enumerate() {
-        let dir = tempfile::tempdir().unwrap();
-        materialise(&before, state, &root, &dir.path().join("state"));
-        let crashed = env_at(dir);
-        // Any owner's start recovers (here: a file already stored).
-        let out = crashed.ingest(&files[..1]);
-        let status = (code(&out) == 0).then(|| crashed.status_json());
-        let verify = crashed.run(&["verify"]);
-        let ok = status.as_ref().is_some_and(|s| {
-            s["summary"]["rows"] == 600
-                && (s["summary"]["serving"].is_null() || s["summary"]["serving"] == 1)
-        }) && code(&verify) == 0;
-        if !ok {
-            violations.push((
-                *kind,
+    let file = |env: &Env, i: usize| env.state().parent().unwrap().join(format!("rows-{i}.csv"));
+    crash_states_of(
+        "promoting a model",
+        flush_ms,
+        |env| {
+            let files: Vec<_> = (0..3)
+                .map(|i| {
+                    fs::write(file(env, i), tiny_rows(i * 200, 200)).unwrap();
+                    file(env, i)
+                })
+                .collect();
+            assert_eq!(code(&env.ingest(&files)), 0);
+            vec!["retrain".into()]
+        },
+        |env| {
+            assert_eq!(
+                env.status_json()["summary"]["serving"],
+                1,
+                "the cycle promoted"
+            )
+        },
+        |env, crashed| {
+            // Any owner's start recovers (here: a file already stored).
+            let out = crashed.ingest(&[file(env, 0)]);
+            let status = (code(&out) == 0).then(|| crashed.status_json());
+            let verify = crashed.run(&["verify"]);
+            let ok = status.as_ref().is_some_and(|s| {
+                s["summary"]["rows"] == 600
+                    && (s["summary"]["serving"].is_null() || s["summary"]["serving"] == 1)
+            }) && code(&verify) == 0;
+            (!ok).then(|| {
                 format!(
-                    "state {n} ({kind:?}): start exit {} ({}), status {:?}, verify {}: {}",
+                    "start exit {} ({}), status {:?}, verify {}: {}",
                     code(&out),
                     stderr(&out).trim(),
                     status.map(|s| s["summary"].clone()),
                     code(&verify),
                     stdout(&verify).trim()
-                ),
-            ));
-        }
-    }
-    eprintln!(
-        "power loss while promoting a model (store flush every {flush_ms:?} ms): {} recorded steps, {distinct} distinct states, {} explored, {} violations",
-        steps.len(),
-        states.len(),
-        violations.len()
+                )
+            })
+        },
     );
-    judge(&violations);
 }
 
 #[test]
