@@ -257,6 +257,32 @@ fn known_rows(
     (known, named)
 }
 
+/// The monitor the store keeps for `serving` (`None` when the kept one
+/// belongs to another model, or none is kept yet).
+pub fn stored_monitor(
+    store: &crate::store::Store,
+    serving: ModelId,
+) -> Result<Option<MonitorState>, StoreError> {
+    Ok(store
+        .meta_value(META_MONITOR)?
+        .and_then(|v| MonitorState::decode(&v))
+        .filter(|m| m.serving == serving))
+}
+
+/// The model `serving` is compared with: the pair of its monitor, kept in
+/// the store while it serves, or when the monitor starts the model it
+/// replaced by promotion or approval.
+pub fn compared_with(
+    owner: &Owner,
+    serving: ModelId,
+    stored: Option<&MonitorState>,
+) -> Result<Option<ModelId>, DecisionError> {
+    match stored {
+        Some(m) => Ok(m.previous),
+        None => lifecycle::replaced_by_promotion(owner, serving),
+    }
+}
+
 /// Runs the check on `batch` (just accepted). `None` when no model serves,
 /// the serving model has already trained on the batch, or the batch is set
 /// aside.
@@ -285,17 +311,8 @@ pub fn check_batch(
     let backend = owner.config.training.predict_backend;
     let load = |id: ModelId| owner.checkpoint(id);
 
-    // Which pair the monitor compares: kept in the store while the serving
-    // model serves, looked up in the log only when it starts.
-    let stored = owner
-        .store
-        .meta_value(META_MONITOR)?
-        .and_then(|v| MonitorState::decode(&v))
-        .filter(|m| m.serving == serving);
-    let previous = match &stored {
-        Some(m) => m.previous,
-        None => lifecycle::replaced_by_promotion(owner, serving)?,
-    };
+    let stored = stored_monitor(&owner.store, serving)?;
+    let previous = compared_with(owner, serving, stored.as_ref())?;
     let serving_model = load(serving)?.model;
     // A predecessor whose checkpoint is gone or damaged cannot be compared
     // (nor rolled back to); say so rather than fail intake.

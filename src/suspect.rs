@@ -146,36 +146,18 @@ pub fn check(owner: &Owner, batch: &Batch) -> Result<Option<SuspectEvidence>, St
     let mut scorers: Vec<(String, Scorer<'_>)> = Vec::new();
     let backend = owner.config.training.predict_backend;
     let load = |id: ModelId| owner.checkpoint(id);
+    let scorer = |model: crate::model::Model| -> Scorer<'_> {
+        Box::new(move |r: &RowMatrix| model.row_losses(r, backend).map_err(|e| e.to_string()))
+    };
     if let Some(serving) = store.serving()? {
         match load(serving) {
-            Ok(ck) => {
-                let model = ck.model;
-                scorers.push((
-                    format!("serving {serving}"),
-                    Box::new(move |r: &RowMatrix| {
-                        model.row_losses(r, backend).map_err(|e| e.to_string())
-                    }),
-                ));
-            }
+            Ok(ck) => scorers.push((format!("serving {serving}"), scorer(ck.model))),
             Err(e) => notes.push(format!("serving {serving} not used: {e}")),
         }
-        let previous = store
-            .meta_value(crate::fresh::META_MONITOR)?
-            .and_then(|v| crate::fresh::MonitorState::decode(&v))
-            .filter(|m| m.serving == serving)
-            .map(|m| Ok(m.previous))
-            .unwrap_or_else(|| crate::lifecycle::replaced_by_promotion(owner, serving));
-        match previous {
+        let stored = crate::fresh::stored_monitor(store, serving)?;
+        match crate::fresh::compared_with(owner, serving, stored.as_ref()) {
             Ok(Some(p)) => match load(p) {
-                Ok(ck) => {
-                    let model = ck.model;
-                    scorers.push((
-                        format!("predecessor {p}"),
-                        Box::new(move |r: &RowMatrix| {
-                            model.row_losses(r, backend).map_err(|e| e.to_string())
-                        }),
-                    ));
-                }
+                Ok(ck) => scorers.push((format!("predecessor {p}"), scorer(ck.model))),
                 Err(e) => notes.push(format!("predecessor {p} not used: {e}")),
             },
             Ok(None) => {}
