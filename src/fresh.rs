@@ -748,6 +748,7 @@ fn reference_rows(
         .iter()
         .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
         .collect();
+    let skip: std::collections::BTreeSet<u64> = skip.iter().copied().collect();
     let kept: Vec<usize> = (0..labels.len())
         .filter(|&i| !skip.contains(&labels[i]))
         .collect();

@@ -329,6 +329,28 @@ mod tests {
         None
     }
 
+    /// When the monitor (alpha 0.05, the prior knowing the day variance)
+    /// stops in each of `runs` streams of `n` batches.
+    fn stopping_times(
+        rng: &mut Rng,
+        runs: usize,
+        n: usize,
+        theta: f64,
+        tau: f64,
+        within_sd: f64,
+    ) -> Vec<Option<usize>> {
+        (0..runs)
+            .map(|_| {
+                let batches = stream(rng, n, theta, tau, within_sd);
+                run(&Prior::for_loss(1.0, tau * tau), &batches, 0.05)
+            })
+            .collect()
+    }
+
+    fn within(caught: &[Option<usize>], k: usize) -> usize {
+        caught.iter().filter(|c| c.is_some_and(|n| n <= k)).count()
+    }
+
     #[test]
     fn no_worse_model_is_rolled_back_at_most_alpha_over_a_long_service_life() {
         // Ville's inequality: the chance of ever crossing 1/alpha under the
@@ -357,19 +379,8 @@ mod tests {
         // 25% higher loss: x ≈ 0.25 L per batch with within sd 0.09 L
         // (150 rows) and small day effects, as in the simulation suite.
         let mut rng = Rng::new(12);
-        let (mut in3, mut in6) = (0, 0);
-        for _ in 0..500 {
-            let batches = stream(&mut rng, 6, 0.25, 0.03, 0.09);
-            let prior = Prior::for_loss(1.0, 0.03f64.powi(2));
-            match run(&prior, &batches, 0.05) {
-                Some(n) if n <= 3 => {
-                    in3 += 1;
-                    in6 += 1;
-                }
-                Some(_) => in6 += 1,
-                None => {}
-            }
-        }
+        let caught = stopping_times(&mut rng, 500, 6, 0.25, 0.03, 0.09);
+        let (in3, in6) = (within(&caught, 3), within(&caught, 6));
         println!("caught within 3 batches: {in3}/500, within 6: {in6}/500");
         assert!(
             in3 >= 200 && in6 >= 420,
@@ -384,19 +395,8 @@ mod tests {
         // 0.05 L: a regression far beyond the guess must not go unseen.
         let mut rng = Rng::new(13);
         for theta in [1.0, 2.0, 3.0] {
-            let (mut in3, mut in4) = (0, 0);
-            for _ in 0..200 {
-                let batches = stream(&mut rng, 4, theta, 0.05, 0.1);
-                let prior = Prior::for_loss(1.0, 0.05f64.powi(2));
-                match run(&prior, &batches, 0.05) {
-                    Some(n) if n <= 3 => {
-                        in3 += 1;
-                        in4 += 1;
-                    }
-                    Some(_) => in4 += 1,
-                    None => {}
-                }
-            }
+            let caught = stopping_times(&mut rng, 200, 4, theta, 0.05, 0.1);
+            let (in3, in4) = (within(&caught, 3), within(&caught, 4));
             println!("{theta}: within 3 batches {in3}, within 4 {in4} of 200");
             assert!(
                 in4 >= 140,
