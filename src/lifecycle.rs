@@ -259,8 +259,16 @@ pub(crate) mod tests {
     }
 
     pub(crate) fn store_in(dir: &std::path::Path) -> Store {
+        store_at(dir, Store::create)
+    }
+
+    /// The small schema's store under `dir`, made or opened by `how`.
+    fn store_at(
+        dir: &std::path::Path,
+        how: fn(&std::path::Path, &Schema, &str) -> Result<Store, StoreError>,
+    ) -> Store {
         let config = small_config();
-        Store::create(
+        how(
             &dir.join("store"),
             &Schema::from_config(&config),
             &config.schema_fingerprint(),
@@ -336,20 +344,10 @@ pub(crate) mod tests {
         );
         // And they survive a reopen, as the log does.
         drop(store);
-        let store = store_in_reopen(dir.path());
+        let store = store_at(dir.path(), Store::open);
         assert_eq!(
             store.arrival(ModelId(2)).unwrap(),
             Some((Some(ModelId(5)), true))
         );
-    }
-
-    fn store_in_reopen(dir: &std::path::Path) -> Store {
-        let config = small_config();
-        Store::open(
-            &dir.join("store"),
-            &Schema::from_config(&config),
-            &config.schema_fingerprint(),
-        )
-        .unwrap()
     }
 }
