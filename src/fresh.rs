@@ -23,8 +23,9 @@
 //! What the checks remember between batches lives in the store's meta tree,
 //! written in the same transaction as the `fresh-checked` entry: the
 //! serving model's monitor ([`META_MONITOR`], removed whenever the serving
-//! model changes), the recent loss levels ([`META_LEVELS`]) and the last
-//! batch checked ([`META_CHECKED`]). A batch stored after that one which the
+//! model changes), the recent loss levels ([`META_LEVELS`]), the recent
+//! excesses of each value of a small category column
+//! ([`META_VALUE_LEVELS`]) and the last batch checked ([`META_CHECKED`]). A batch stored after that one which the
 //! serving model has not trained on missed its check (a crash between the
 //! commit and the check, or a failure in between); every owner's start runs
 //! the missing checks ([`run_missing`]).
@@ -39,13 +40,13 @@ use chrono::Utc;
 use std::collections::BTreeMap;
 
 use crate::audit::{Entry, Event, FreshEvidence, Hotspot};
-use crate::config::ColumnKind;
+use crate::config::{ColumnKind, Task};
 use crate::cycle::{CycleError, model_record};
 use crate::gate::monitor::{self, Observation, Prior};
 use crate::gate::shift::{self, Group, LEVEL_HISTORY};
 use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
-use crate::model::{Model, ModelError};
+use crate::model::{Model, ModelError, Predictions};
 use crate::rng::Rng;
 use crate::sample;
 use crate::schema::{InputEncoding, RowMatrix, Schema, Vocabularies};
@@ -91,6 +92,13 @@ impl FreshError {
 pub const META_MONITOR: &[u8] = b"fresh/monitor";
 /// Meta key of the recent loss levels of batches that were not flagged.
 pub const META_LEVELS: &[u8] = b"fresh/levels";
+/// Meta key of the recent excesses of each value of a small category
+/// column over the rest of its column (see [`shift::group_check`]), kept
+/// when the value was not flagged.
+pub const META_VALUE_LEVELS: &[u8] = b"fresh/value-levels";
+/// The encoded [`META_VALUE_LEVELS`] stays under this many bytes (older
+/// excesses are dropped first), far below sled's blob threshold.
+pub const VALUE_LEVELS_MAX_BYTES: usize = 48 * 1024;
 /// Meta key of the batches the check flagged as shifted: their holdout
 /// rows stay out of later checks' reference, so a change is compared with
 /// how things were before it, not with itself.
@@ -185,6 +193,69 @@ fn encode_levels(levels: &[f64]) -> Vec<u8> {
         .iter()
         .flat_map(|v| v.to_le_bytes())
         .collect()
+}
+
+/// Encodes each value's recent excesses: per entry, the column and value
+/// names (u16 length + UTF-8) and the excesses (u16 count + f32 each),
+/// keeping the newest [`LEVEL_HISTORY`] per value, fewer if the whole
+/// would pass `max_bytes`.
+fn encode_value_levels(history: &shift::ValueHistory, max_bytes: usize) -> Vec<u8> {
+    let mut keep = LEVEL_HISTORY;
+    loop {
+        let mut out = Vec::new();
+        for ((column, value), excesses) in history {
+            let (c, v) = (column.as_bytes(), value.as_bytes());
+            if c.len() > usize::from(u16::MAX) || v.len() > usize::from(u16::MAX) {
+                continue;
+            }
+            let skip = excesses.len().saturating_sub(keep);
+            let kept = &excesses[skip..];
+            out.extend((c.len() as u16).to_le_bytes());
+            out.extend(c);
+            out.extend((v.len() as u16).to_le_bytes());
+            out.extend(v);
+            out.extend((kept.len() as u16).to_le_bytes());
+            for x in kept {
+                out.extend((*x as f32).to_le_bytes());
+            }
+        }
+        if out.len() <= max_bytes || keep <= shift::LEVEL_MIN_HISTORY {
+            return out;
+        }
+        keep -= 1;
+    }
+}
+
+/// Reads what [`encode_value_levels`] wrote; a damaged tail is dropped.
+fn decode_value_levels(bytes: &[u8]) -> shift::ValueHistory {
+    let mut out = shift::ValueHistory::new();
+    let mut at = 0usize;
+    let take = |at: &mut usize, n: usize| -> Option<&[u8]> {
+        let s = bytes.get(*at..at.checked_add(n)?)?;
+        *at += n;
+        Some(s)
+    };
+    let len = |at: &mut usize| -> Option<usize> {
+        take(at, 2).map(|b| usize::from(u16::from_le_bytes([b[0], b[1]])))
+    };
+    while at < bytes.len() {
+        let Some(entry) = (|| {
+            let n = len(&mut at)?;
+            let column = String::from_utf8(take(&mut at, n)?.to_vec()).ok()?;
+            let n = len(&mut at)?;
+            let value = String::from_utf8(take(&mut at, n)?.to_vec()).ok()?;
+            let n = len(&mut at)?;
+            let excesses: Vec<f64> = take(&mut at, 4 * n)?
+                .chunks_exact(4)
+                .map(|b| f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]])))
+                .collect();
+            Some(((column, value), excesses))
+        })() else {
+            break;
+        };
+        out.insert(entry.0, entry.1);
+    }
+    out
 }
 
 fn encode_batches(batches: &[u64]) -> Vec<u8> {
@@ -458,13 +529,56 @@ pub fn check_batch(
             )),
         }
         // Shift, in part: values out of line with the rest of their column.
+        // Regression: the signed errors of the batch's rows, for the small
+        // columns' test (one more pass over the batch only).
+        let errors = match schema.task {
+            Task::Regression => match serving_model.predict(&rows, backend)? {
+                Predictions::Regression { values } => Some(
+                    values
+                        .iter()
+                        .enumerate()
+                        .map(|(r, p)| {
+                            rows.number(r, schema.target)
+                                .map_or(f64::NAN, |y| f64::from(y) - f64::from(*p))
+                        })
+                        .collect::<Vec<f64>>(),
+                ),
+                Predictions::Classification { .. } => None,
+            },
+            Task::Classification => None,
+        };
         let groups = groups(
             &schema,
             &vocabs,
-            (&rows, &fresh),
+            (&rows, &fresh, errors.as_deref()),
             (&reference_rows, &reference),
         );
-        let group_check = shift::group_check(&groups, gate_config.shift_alpha);
+        let mut value_history = owner
+            .store
+            .meta_value(META_VALUE_LEVELS)?
+            .map(|v| decode_value_levels(&v))
+            .unwrap_or_default();
+        let group_check = shift::group_check(&groups, &value_history, gate_config.shift_alpha);
+        let mut remembered = false;
+        for e in &group_check.excesses {
+            let flagged = group_check
+                .flagged
+                .iter()
+                .any(|f| f.column == e.column && f.value == e.value);
+            if !flagged && e.excess.is_finite() {
+                value_history
+                    .entry((e.column.clone(), e.value.clone()))
+                    .or_default()
+                    .push(e.excess);
+                remembered = true;
+            }
+        }
+        if remembered {
+            meta.push((
+                META_VALUE_LEVELS.to_vec(),
+                Some(encode_value_levels(&value_history, VALUE_LEVELS_MAX_BYTES)),
+            ));
+        }
         if !group_check.flagged.is_empty() {
             shifted = true;
             evidence.shifted_values = group_check
@@ -480,13 +594,7 @@ pub fn check_batch(
                 group_check
                     .flagged
                     .iter()
-                    .map(|f| format!(
-                        "{} = {} (z {} ≥ {})",
-                        f.column,
-                        f.value,
-                        crate::gate::show(f.z),
-                        crate::gate::show(f.z_needed)
-                    ))
+                    .map(shift::GroupFlag::reason)
                     .collect::<Vec<_>>()
                     .join(", ")
             ));
@@ -784,7 +892,7 @@ fn value_name(vocabs: &Vocabularies, col: usize, code: u32) -> String {
 fn groups(
     schema: &Schema,
     vocabs: &Vocabularies,
-    fresh: (&RowMatrix, &[f64]),
+    fresh: (&RowMatrix, &[f64], Option<&[f64]>),
     reference: (&RowMatrix, &[f64]),
 ) -> Vec<Group> {
     #[derive(Default)]
@@ -805,6 +913,8 @@ fn groups(
         }
         by_code
     };
+    let (fresh_rows, fresh_losses, errors) = fresh;
+    let fresh = (fresh_rows, fresh_losses);
     let stats = |a: &Acc| {
         let m = a.sum / a.n as f64;
         let var = if a.n > 1 {
@@ -820,12 +930,27 @@ fn groups(
             continue;
         }
         let usual = collect(reference, col);
+        let signed_sums = errors
+            .filter(|e| e.iter().all(|x| x.is_finite()))
+            .map(|e| collect((fresh_rows, e), col));
         for (code, acc) in collect(fresh, col) {
             let Some(r) = usual.get(&code) else {
                 continue;
             };
             let (m, sd) = stats(&acc);
             let (rm, rsd) = stats(r);
+            let signed = signed_sums
+                .as_ref()
+                .and_then(|s| s.get(&code))
+                .filter(|_| rm > 0.0)
+                .map(|e| {
+                    let (mean, sd) = stats(e);
+                    let rmse = rm.sqrt();
+                    shift::Signed {
+                        mean: mean / rmse,
+                        sd: sd / rmse,
+                    }
+                });
             out.push(Group {
                 column: schema.columns[col].name.clone(),
                 value: value_name(vocabs, col, code),
@@ -835,6 +960,7 @@ fn groups(
                 reference_rows: r.n,
                 reference_mean: rm,
                 reference_sd: rsd,
+                signed,
             });
         }
     }
@@ -913,6 +1039,35 @@ fn mean(v: &[f64]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn value_levels_round_trip_and_stay_small() {
+        let mut h = shift::ValueHistory::new();
+        h.insert(("zone".into(), "north".into()), vec![0.5, -0.25, 1.0]);
+        h.insert(("promo".into(), "tasting, free".into()), vec![]);
+        assert_eq!(decode_value_levels(&encode_value_levels(&h, 1 << 20)), h);
+        // A damaged tail loses only the entry it cuts.
+        let bytes = encode_value_levels(&h, 1 << 20);
+        let cut = decode_value_levels(&bytes[..bytes.len() - 3]);
+        assert_eq!(cut.len(), 1);
+        // Many values with long histories: older excesses go first, never
+        // below the history a test needs.
+        let mut big = shift::ValueHistory::new();
+        for c in 0..40 {
+            for v in 0..7 {
+                big.insert((format!("col{c}"), format!("value{v}")), vec![0.1; 100]);
+            }
+        }
+        let bytes = encode_value_levels(&big, VALUE_LEVELS_MAX_BYTES);
+        assert!(bytes.len() <= VALUE_LEVELS_MAX_BYTES, "{}", bytes.len());
+        let back = decode_value_levels(&bytes);
+        assert_eq!(back.len(), 280);
+        let kept = back.values().next().unwrap().len();
+        assert!(
+            (shift::LEVEL_MIN_HISTORY..LEVEL_HISTORY).contains(&kept),
+            "{kept}"
+        );
+    }
 
     #[test]
     fn monitor_state_round_trips_and_stays_under_the_value_limit() {

@@ -82,7 +82,6 @@ fn nights_to_shift_flag(seed: u64, factor: f64) -> Option<usize> {
 }
 
 #[test]
-#[ignore = "measurement: a zone of six is not judged by the group check yet (see README)"]
 fn a_zone_whose_demand_rises_by_45_percent_is_flagged() {
     let n = nights_to_shift_flag(3, 1.45);
     println!("flagged after {n:?} batches");
