@@ -45,8 +45,33 @@ pub enum Route {
     ThroughParent,
 }
 
+/// What replaying the whole log gives: every model's lineage and the
+/// batches set aside at its end.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Replay {
+    pub lineages: BTreeMap<ModelId, Lineage>,
+    /// Batches set aside now (suspect at intake or by hand, not brought back).
+    pub aside: BTreeSet<BatchId>,
+}
+
+impl Replay {
+    /// The batches now set aside that `model` saw (empty for a model the
+    /// log has no training entry of).
+    pub fn saw_aside(&self, model: ModelId) -> BTreeSet<BatchId> {
+        self.lineages
+            .get(&model)
+            .map(|l| l.saw.intersection(&self.aside).copied().collect())
+            .unwrap_or_default()
+    }
+}
+
 /// Every model's lineage, replaying the log in order.
 pub fn lineages<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> BTreeMap<ModelId, Lineage> {
+    replay(entries).lineages
+}
+
+/// Replays the log in order: lineages, and which batches are set aside.
+pub fn replay<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> Replay {
     let mut stored: BTreeSet<BatchId> = BTreeSet::new();
     let mut aside: BTreeSet<BatchId> = BTreeSet::new();
     let mut out: BTreeMap<ModelId, Lineage> = BTreeMap::new();
@@ -96,7 +121,10 @@ pub fn lineages<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> BTreeMap<Mo
             _ => {}
         }
     }
-    out
+    Replay {
+        lineages: out,
+        aside,
+    }
 }
 
 /// The models that saw `batch`, and how.
@@ -252,6 +280,32 @@ mod tests {
         let l = lineages(&log);
         assert_eq!(l[&ModelId(1)].saw, set(&[1]));
         assert_eq!(l[&ModelId(2)].saw, set(&[1, 2]));
+        assert!(replay(&log).aside.is_empty());
+        assert_eq!(replay(&log[..3]).aside, set(&[2]));
+    }
+
+    #[test]
+    fn the_replay_names_the_set_aside_batches_each_model_saw() {
+        let log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, false)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(4, accepted(3, true)),
+            entry(5, trained(2, "warm", Some(1), 3)),
+            entry(
+                6,
+                Event::BatchSetAside {
+                    batch: BatchId(1),
+                    reason: "wrong shop codes".into(),
+                },
+            ),
+        ];
+        let r = replay(&log);
+        assert_eq!(r.aside, set(&[1, 3]));
+        assert_eq!(r.saw_aside(ModelId(1)), set(&[1]));
+        // Batch 3 was suspect at intake, so no model read it.
+        assert_eq!(r.saw_aside(ModelId(2)), set(&[1]));
+        assert_eq!(r.saw_aside(ModelId(9)), set(&[]));
     }
 
     #[test]
