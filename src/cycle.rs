@@ -1,5 +1,7 @@
 //! One retrain cycle: train candidates (warm from the serving model, cold
-//! on schedule or on request), score them and the serving model on the same
+//! on schedule or on request; when the serving model saw rows since set
+//! aside, cold and warm from the newest model that passed the gate and
+//! never saw them), score them and the serving model on the same
 //! holdout rows, let the gate decide, then promote or keep. Every step is an
 //! audit entry; promotion moves the store's serving pointer in the same
 //! transaction as its entry. The cycle is a sequence of stages, each a
@@ -172,6 +174,10 @@ pub struct Plan {
     /// The last batch the serving model was trained on (0 with none).
     pub through: BatchId,
     pub serving: Option<(ModelId, ModelRecord, Checkpoint)>,
+    /// When the serving model saw batches since set aside: the newest model
+    /// that passed the gate and never saw them, which the warm candidate
+    /// starts from instead (`provenance::newest_clean`).
+    pub clean_parent: Option<(ModelId, ModelRecord, Checkpoint)>,
     pub want_warm: bool,
     pub want_cold: bool,
     pub new_batches: Vec<BatchId>,
@@ -181,6 +187,26 @@ pub struct Plan {
 impl Plan {
     pub fn serving_id(&self) -> Option<ModelId> {
         self.serving.as_ref().map(|(id, _, _)| *id)
+    }
+
+    /// The model the warm candidate starts from: the serving model, or the
+    /// clean parent when there is one.
+    pub fn warm_parent(&self) -> Option<(ModelId, &ModelRecord, &Checkpoint)> {
+        if !self.want_warm {
+            return None;
+        }
+        self.clean_parent
+            .as_ref()
+            .or(self.serving.as_ref())
+            .map(|(id, r, ck)| (*id, r, ck))
+    }
+
+    /// The last batch the warm parent was trained through: the training
+    /// rows after it are the warm candidate's new rows (the serving model's
+    /// own `through` when nothing warms).
+    pub fn warm_through(&self) -> BatchId {
+        self.warm_parent()
+            .map_or(self.through, |(_, r, _)| r.trained_through)
     }
 }
 
@@ -224,15 +250,35 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
         .map_or(BatchId(0), |(_, r, _)| r.trained_through);
     // Rows set aside since the serving model learnt from them live on in
     // its weights: no warm start from it, and a cold candidate even when
-    // nothing new arrived.
-    let tainted = match &serving {
-        Some((id, _, _)) => tainted_batches(store, *id)?,
-        None => Vec::new(),
+    // nothing new arrived. A warm one starts from the newest model that
+    // passed the gate and never saw them, if there is one.
+    let taint = match &serving {
+        Some((id, _, _)) => taint(store, *id)?,
+        None => Taint::default(),
+    };
+    let tainted = taint.batches;
+    let clean_parent = match taint.clean {
+        Some(id) => match (model_record(owner, id), owner.checkpoint(id)) {
+            (Ok(record), Ok(ck)) => Some((id, record, ck)),
+            (Err(e), _) => {
+                tracing::warn!("{id} cannot be a warm start: {e}");
+                None
+            }
+            (_, Err(e)) => {
+                tracing::warn!("{id} cannot be a warm start: {e}");
+                None
+            }
+        },
+        None => None,
     };
     if !tainted.is_empty() {
         tracing::info!(
-            "the serving model saw {} (since set aside): this cycle trains cold only",
-            crate::provenance::ranges_text(&tainted.iter().copied().collect())
+            "the serving model saw {} (since set aside): this cycle trains {}",
+            crate::provenance::ranges_text(&tainted.iter().copied().collect()),
+            match &clean_parent {
+                Some((id, _, _)) => format!("cold and warm from {id}, which never saw them"),
+                None => "cold only (no model that passed the gate never saw them)".into(),
+            }
         );
     }
     if let Some((id, _, _)) = &serving
@@ -245,7 +291,7 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let cycle = store.cycles()? + 1;
     let cold_due =
         owner.config.gate.cold_every > 0 && cycle % owner.config.gate.cold_every as u64 == 0;
-    let want_warm = serving.is_some() && tainted.is_empty();
+    let want_warm = serving.is_some() && (tainted.is_empty() || clean_parent.is_some());
     let want_cold = serving.is_none() || options.force_cold || cold_due || !tainted.is_empty();
     Ok(Planned::Run(Box::new(Plan {
         cycle,
@@ -255,29 +301,46 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
         want_cold,
         new_batches: in_use.iter().filter(|b| **b > through).copied().collect(),
         serving,
+        clean_parent,
         fingerprint,
     })))
 }
 
+/// What batches now set aside mean for a cycle.
+#[derive(Debug, Default)]
+pub struct Taint {
+    /// Batches now set aside that the serving model saw.
+    pub batches: Vec<BatchId>,
+    /// When there are such batches: the newest model that passed the gate
+    /// and never saw any batch set aside.
+    pub clean: Option<ModelId>,
+}
+
 /// Batches now set aside that `model` saw, directly or through the models
-/// it was warm-started from (read from the log).
-pub fn tainted_batches(
-    store: &crate::store::Store,
-    model: ModelId,
-) -> Result<Vec<BatchId>, StoreError> {
+/// it was warm-started from, and the model a warm start may begin from
+/// instead (both read from the log; the set aside batches from the store).
+pub fn taint(store: &crate::store::Store, model: ModelId) -> Result<Taint, StoreError> {
     let aside = store.set_aside_batches();
     if aside.is_empty() {
-        return Ok(Vec::new());
+        return Ok(Taint::default());
     }
     let entries: Vec<crate::audit::Entry> = store
         .audit_entries()?
         .iter()
         .filter_map(|(_, line)| crate::audit::Entry::from_line(line).ok())
         .collect();
-    Ok(crate::provenance::lineages(&entries)
+    let replay = crate::provenance::replay(&entries);
+    let batches: Vec<BatchId> = replay
+        .lineages
         .get(&model)
         .map(|l| l.saw.intersection(aside).copied().collect())
-        .unwrap_or_default())
+        .unwrap_or_default();
+    let clean = if batches.is_empty() {
+        None
+    } else {
+        crate::provenance::newest_clean(&replay, aside)
+    };
+    Ok(Taint { batches, clean })
 }
 
 fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleError> {
@@ -309,7 +372,7 @@ fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleE
 
 /// The rows a cycle works on.
 pub struct Data {
-    /// Training rows of the batches the serving model has not seen.
+    /// Training rows of the batches the warm parent has not seen.
     pub new_train: RowMatrix,
     /// A uniform sample of older training rows (see `older_sample_size`).
     pub older_train: RowMatrix,
@@ -324,14 +387,17 @@ pub struct Data {
     pub holdout_batches: Vec<u64>,
 }
 
-/// Stage 2: the data, read once. Training rows split at the serving model's
-/// last batch: the new ones all, the older ones as a uniform sample read
+/// Stage 2: the data, read once. Training rows split at the warm parent's
+/// last batch (the serving model's, unless it saw rows since set aside): the new ones all, the older ones as a uniform sample read
 /// chunk by chunk, unless a cold candidate needs them all anyway. Holdout
 /// rows all, in store order, with a new/older flag and a batch each.
 pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
     let step = std::time::Instant::now();
     let store = &owner.store;
-    let through = plan.through;
+    // Training rows split where the warm parent stopped; holdout rows are
+    // new or older relative to the serving model, which the gate compares
+    // with.
+    let through = plan.warm_through();
     let new_train = store.rows(Split::Train, Some(through.next()), None)?;
     let older_n = store.row_count(Split::Train, None, Some(through))?;
     let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
@@ -358,9 +424,9 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
             None,
         )
     };
-    let mut holdout = store.rows(Split::Holdout, None, Some(through))?;
+    let mut holdout = store.rows(Split::Holdout, None, Some(plan.through))?;
     let older_rows = holdout.n_rows();
-    holdout.extend(&store.rows(Split::Holdout, Some(through.next()), None)?);
+    holdout.extend(&store.rows(Split::Holdout, Some(plan.through.next()), None)?);
     let new_flags: Vec<bool> = (0..holdout.n_rows()).map(|i| i >= older_rows).collect();
     let holdout_batches: Vec<u64> = store
         .split_counts(Split::Holdout, None, None)?
@@ -424,7 +490,7 @@ pub fn train(
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
     // Number columns whose stats moved far are restandardised the same way.
-    let warm_parent = match plan.serving.as_ref().filter(|_| plan.want_warm) {
+    let warm_parent = match plan.warm_parent() {
         Some((_, _, ck)) => {
             let (wide, added) = ck.model.widened(store.vocabularies())?;
             let (parent, rescaled) =
@@ -659,7 +725,7 @@ pub fn record(
             let id = next;
             next = next.next();
             let parent = if c.run == RunKind::Warm {
-                serving_id
+                plan.warm_parent().map(|(id, _, _)| id)
             } else {
                 None
             };

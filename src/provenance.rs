@@ -45,13 +45,49 @@ pub enum Route {
     ThroughParent,
 }
 
+/// What replaying the whole log gives: every model's lineage and the
+/// batches set aside at its end.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Replay {
+    pub lineages: BTreeMap<ModelId, Lineage>,
+    /// Batches set aside now (suspect at intake or by hand, not brought back).
+    pub aside: BTreeSet<BatchId>,
+    /// Models that became the serving one by passing the gate (promoted or
+    /// approved) and were never rolled back from.
+    pub served: BTreeSet<ModelId>,
+}
+
+impl Replay {
+    /// The batches now set aside that `model` saw (empty for a model the
+    /// log has no training entry of).
+    pub fn saw_aside(&self, model: ModelId) -> BTreeSet<BatchId> {
+        self.lineages
+            .get(&model)
+            .map(|l| l.saw.intersection(&self.aside).copied().collect())
+            .unwrap_or_default()
+    }
+}
+
 /// Every model's lineage, replaying the log in order.
 pub fn lineages<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> BTreeMap<ModelId, Lineage> {
+    replay(entries).lineages
+}
+
+/// Replays the log in order: lineages, and which batches are set aside.
+pub fn replay<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> Replay {
     let mut stored: BTreeSet<BatchId> = BTreeSet::new();
     let mut aside: BTreeSet<BatchId> = BTreeSet::new();
     let mut out: BTreeMap<ModelId, Lineage> = BTreeMap::new();
+    let mut served: BTreeSet<ModelId> = BTreeSet::new();
     for e in entries {
         match &e.event {
+            Event::Promoted { model, .. } | Event::Approved { model, .. } => {
+                served.insert(*model);
+            }
+            // A rollback says the model did worse on fresh data.
+            Event::RolledBack { from, .. } => {
+                served.remove(from);
+            }
             Event::BatchAccepted { batch, suspect, .. } => {
                 stored.insert(*batch);
                 if suspect.as_ref().is_some_and(|s| s.suspect) {
@@ -96,7 +132,29 @@ pub fn lineages<'a>(entries: impl IntoIterator<Item = &'a Entry>) -> BTreeMap<Mo
             _ => {}
         }
     }
-    out
+    Replay {
+        lineages: out,
+        aside,
+        served,
+    }
+}
+
+/// The newest model that passed the gate, was never rolled back from, and
+/// never saw any batch of `aside`, directly or through its parents: where a
+/// warm start may begin when the serving model saw batches since set aside.
+/// Model ids grow with time, so the newest is the highest.
+pub fn newest_clean(replay: &Replay, aside: &BTreeSet<BatchId>) -> Option<ModelId> {
+    replay
+        .served
+        .iter()
+        .rev()
+        .find(|m| {
+            replay
+                .lineages
+                .get(m)
+                .is_some_and(|l| l.saw.is_disjoint(aside))
+        })
+        .copied()
 }
 
 /// The models that saw `batch`, and how.
@@ -252,6 +310,96 @@ mod tests {
         let l = lineages(&log);
         assert_eq!(l[&ModelId(1)].saw, set(&[1]));
         assert_eq!(l[&ModelId(2)].saw, set(&[1, 2]));
+        assert!(replay(&log).aside.is_empty());
+        assert_eq!(replay(&log[..3]).aside, set(&[2]));
+    }
+
+    #[test]
+    fn the_replay_names_the_set_aside_batches_each_model_saw() {
+        let log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, false)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(4, accepted(3, true)),
+            entry(5, trained(2, "warm", Some(1), 3)),
+            entry(
+                6,
+                Event::BatchSetAside {
+                    batch: BatchId(1),
+                    reason: "wrong shop codes".into(),
+                },
+            ),
+        ];
+        let r = replay(&log);
+        assert_eq!(r.aside, set(&[1, 3]));
+        assert_eq!(r.saw_aside(ModelId(1)), set(&[1]));
+        // Batch 3 was suspect at intake, so no model read it.
+        assert_eq!(r.saw_aside(ModelId(2)), set(&[1]));
+        assert_eq!(r.saw_aside(ModelId(9)), set(&[]));
+    }
+
+    fn promoted(m: u64) -> Event {
+        Event::Promoted {
+            cycle: m,
+            model: ModelId(m),
+            previous: None,
+            evidence: crate::audit::GateEvidence {
+                compared_with: "serving".into(),
+                rows: 10,
+                mean_loss_compared_with: 2.0,
+                mean_loss_candidate: 1.0,
+                relative_improvement: Some(0.5),
+                t: Some(3.0),
+                p: 0.01,
+                batches: None,
+                batches_needed: None,
+                candidates: None,
+                p_unadjusted: None,
+                wilcoxon_p: None,
+                new_rows: 5,
+                old_rows: 5,
+                reason: "better".into(),
+            },
+        }
+    }
+
+    #[test]
+    fn the_newest_clean_model_passed_the_gate_and_never_saw_the_batches_set_aside() {
+        let mut log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, false)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(4, promoted(1)),
+            entry(5, accepted(3, false)),
+            entry(6, trained(2, "warm", Some(1), 3)),
+            entry(7, promoted(2)),
+            entry(8, accepted(4, false)),
+            // m3 never served: shelved candidates are no starting point.
+            entry(9, trained(3, "warm", Some(2), 4)),
+            entry(10, accepted(5, false)),
+            entry(11, trained(4, "warm", Some(2), 5)),
+            entry(12, promoted(4)),
+        ];
+        let r = replay(&log);
+        assert_eq!(r.served, [1, 2, 4].map(ModelId).into());
+        // Batch 4: m4 saw it; m2 did not, and served.
+        assert_eq!(newest_clean(&r, &set(&[4])), Some(ModelId(2)));
+        // Batch 3: m2 and m4 (through m2) saw it; m1 did not.
+        assert_eq!(newest_clean(&r, &set(&[3])), Some(ModelId(1)));
+        // Batch 1: every model saw it.
+        assert_eq!(newest_clean(&r, &set(&[1])), None);
+        // A model rolled back from is no starting point either.
+        log.push(entry(
+            13,
+            Event::RolledBack {
+                from: ModelId(2),
+                to: ModelId(1),
+                how: "manual".into(),
+                reason: "worse on fresh nights".into(),
+                evidence: None,
+            },
+        ));
+        assert_eq!(newest_clean(&replay(&log), &set(&[4])), Some(ModelId(1)));
     }
 
     #[test]

@@ -301,11 +301,13 @@ pub struct StoredRows {
 /// function of each row's content) and encoded with `vocabs`, which grows
 /// by the values each file brings in the order the store gave them codes
 /// (so codes match the store's when `vocabs` starts as a model's
-/// vocabularies). Batches whose file is missing or unreadable are named in
-/// the notes and left out.
+/// vocabularies). The rows of batches in `aside` are parsed for their
+/// values but not kept. Batches whose file is missing or unreadable are
+/// named in the notes and left out.
 pub fn stored_rows(
     state: &StateDir,
     batches: &[BatchId],
+    aside: &std::collections::BTreeSet<BatchId>,
     schema: &Schema,
     vocabs: &mut Vocabularies,
     limits: &Limits,
@@ -330,11 +332,13 @@ pub fn stored_rows(
         };
         match ingest::parse(&raw.bytes, schema, vocabs, limits) {
             Ok(batch) => {
-                out.rows.extend(&batch.train);
-                out.rows.extend(&batch.holdout);
-                out.holdout.extend(&batch.holdout);
-                out.holdout_batches
-                    .extend(std::iter::repeat_n(b.0, batch.holdout.n_rows()));
+                if !aside.contains(&b) {
+                    out.rows.extend(&batch.train);
+                    out.rows.extend(&batch.holdout);
+                    out.holdout.extend(&batch.holdout);
+                    out.holdout_batches
+                        .extend(std::iter::repeat_n(b.0, batch.holdout.n_rows()));
+                }
                 for (col, values) in batch.new_categories {
                     let vocab = vocabs.entry(col).or_default();
                     for v in values {

@@ -22,3 +22,4 @@ mod support;
 mod suspect;
 mod tamper;
 mod training;
+mod wine_stream;

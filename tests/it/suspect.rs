@@ -538,6 +538,8 @@ fn models_name_the_batches_they_saw_and_the_models_a_batch_reached() {
 }
 
 #[test]
+/// The only model that passed the gate saw the batch: no clean model to
+/// start from, so the next cycle trains cold only.
 fn a_serving_model_that_saw_a_batch_now_set_aside_is_replaced_by_a_cold_run_only() {
     let env = Env::with_config_text(CONFIG);
     let files: Vec<PathBuf> = (1..=4)
@@ -583,5 +585,118 @@ fn a_serving_model_that_saw_a_batch_now_set_aside_is_replaced_by_a_cold_run_only
             .contains(&serde_json::json!(2)),
         "{cold}"
     );
+    assert_eq!(code(&env.run(&["verify"])), 0);
+}
+
+fn models_json(env: &Env) -> Vec<serde_json::Value> {
+    let out = env.run(&["--json", "models"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    stdout(&out)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+fn seen(m: &serde_json::Value) -> Vec<u64> {
+    m["batches_seen"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|b| b.as_u64().unwrap())
+        .collect()
+}
+
+#[test]
+fn a_serving_model_that_saw_a_batch_now_set_aside_is_replaced_warm_from_the_newest_clean_model() {
+    let env = Env::with_config_text(CONFIG);
+    // Nights, a cycle after each from the third, until a second model has
+    // replaced the first: it learnt its last night, which the first never
+    // saw.
+    let mut n = 0;
+    let mut first = None;
+    let serving = loop {
+        n += 1;
+        assert!(n <= 20, "no second model was promoted in 20 nights");
+        let f = write(&env, &format!("night-{n}.csv"), &night(7, n, Fault::None));
+        assert_eq!(code(&env.ingest(&[f])), 0);
+        if n < 3 {
+            continue;
+        }
+        retrain(&env);
+        let id = env.status_json()["summary"]["serving"].clone();
+        if first.is_none() {
+            first = Some(id.clone());
+        }
+        if first.as_ref() != Some(&id) {
+            break models_json(&env)
+                .into_iter()
+                .find(|m| m["id"] == id)
+                .unwrap();
+        }
+    };
+    let b = *seen(&serving).last().unwrap();
+    let out = env.run(&[
+        "set-aside",
+        &format!("b{b:06}"),
+        "--reason",
+        "export was broken",
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert_eq!(
+        env.status_json()["summary"]["serving_saw_set_aside"],
+        serde_json::json!([b])
+    );
+    // The model to start from: the newest that passed the gate and never
+    // saw the batch (the serving model's parent is one).
+    let before = models_json(&env);
+    let passed = |m: &serde_json::Value| {
+        let d = m["decisions"].as_array().unwrap();
+        d.iter().any(|k| k == "promoted" || k == "approved")
+            && !d.iter().any(|k| k == "rolled-back")
+    };
+    let clean: Vec<u64> = before
+        .iter()
+        .filter(|m| passed(m) && !seen(m).contains(&b))
+        .map(|m| m["id"].as_u64().unwrap())
+        .collect();
+    assert!(
+        clean.contains(&serving["parent"].as_u64().unwrap()),
+        "{before:?}"
+    );
+    let start = *clean.last().unwrap();
+
+    // Nothing new, but the serving model carries the batch: a cold
+    // candidate and a warm one from the clean model, neither of which saw
+    // it, judged on the holdout rows without it.
+    let out = env.run(&["--json", "retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let r: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    assert_eq!(
+        r["holdout_rows"].as_u64().unwrap(),
+        holdout_rows_in_use(&env, &[b]),
+        "{r}"
+    );
+    let after = models_json(&env);
+    let new: Vec<&serde_json::Value> = after[before.len()..].iter().collect();
+    let mut runs: Vec<&str> = new.iter().map(|m| m["kind"].as_str().unwrap()).collect();
+    runs.sort_unstable();
+    assert_eq!(runs, ["cold", "warm"], "{new:?}");
+    for m in &new {
+        assert!(!seen(m).contains(&b), "{m}");
+        if m["kind"] == "warm" {
+            assert_eq!(m["parent"].as_u64(), Some(start), "{m}");
+            // Its own training read every batch in use, its parent's
+            // included: the rows after the parent's last batch are new.
+            let mut all: Vec<u64> = (1..=n as u64).filter(|x| *x != b).collect();
+            all.sort_unstable();
+            let direct: Vec<u64> = m["batches_direct"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_u64().unwrap())
+                .collect();
+            assert_eq!(direct, all, "{m}");
+        }
+    }
     assert_eq!(code(&env.run(&["verify"])), 0);
 }
