@@ -960,18 +960,26 @@ pub(crate) fn row_losses(
 /// few enough to read and encode in well under a second.
 pub const OLDER_SAMPLE_MIN: usize = 50_000;
 
+/// Epochs of a warm run whose replayed older rows are all fresh; later
+/// epochs draw again from the same sample (each epoch's replay is a uniform
+/// draw from it), so a long warm run does not read a cold run's worth of
+/// rows into memory.
+pub const REPLAY_FRESH_EPOCHS: usize = 10;
+
 /// How many older training rows a cycle reads: a warm run replays
-/// `replay_ratio` older rows per new row in each of at most `warm_epochs`
-/// epochs, plus its validation share, so `(warm_epochs + 1)` times one
-/// epoch's replay lets every epoch draw rows it has not seen, and the
-/// baselines get at least `OLDER_SAMPLE_MIN`. Capped at the rows stored.
+/// `replay_ratio` older rows per new row in each epoch, plus its
+/// validation share, so `(min(warm_epochs, REPLAY_FRESH_EPOCHS) + 1)` times
+/// one epoch's replay lets the first epochs draw rows they have not seen,
+/// and the baselines get at least `OLDER_SAMPLE_MIN`. Capped at the rows
+/// stored.
 pub fn older_sample_size(
     new_rows: usize,
     older_rows: usize,
     training: &crate::config::TrainingConfig,
 ) -> usize {
     let per_epoch = (new_rows as f64 * training.replay_ratio).ceil();
-    let replay = per_epoch * (training.warm_epochs as f64 + 1.0);
+    let epochs = training.warm_epochs.min(REPLAY_FRESH_EPOCHS);
+    let replay = per_epoch * (epochs as f64 + 1.0);
     let want = if replay.is_finite() && replay < usize::MAX as f64 {
         (replay as usize).max(OLDER_SAMPLE_MIN)
     } else {
@@ -1056,15 +1064,25 @@ mod tests {
         assert_eq!(older_sample_size(1_000, 30_000, &t), 30_000);
         // Few new rows: the baselines' floor.
         assert_eq!(older_sample_size(1_000, 5_000_000, &t), OLDER_SAMPLE_MIN);
-        // Many new rows: a fresh replay sample for each epoch and validation.
-        let want = 8_000 * (t.warm_epochs + 1);
+        // Many new rows: a fresh replay sample for each of the first epochs
+        // and validation, never one for every epoch of a long warm run.
+        let epochs = t.warm_epochs.min(REPLAY_FRESH_EPOCHS);
+        let want = (8_000.0 * t.replay_ratio) as usize * (epochs + 1);
         assert!(want > OLDER_SAMPLE_MIN);
         assert_eq!(older_sample_size(8_000, 5_000_000, &t), want);
+        let long = TrainingConfig {
+            warm_epochs: 500,
+            ..t.clone()
+        };
+        assert_eq!(older_sample_size(8_000, 5_000_000, &long), want);
         let half = TrainingConfig {
             replay_ratio: 0.5,
             ..t.clone()
         };
-        assert_eq!(older_sample_size(20_000, 5_000_000, &half), want * 10 / 8);
+        assert_eq!(
+            older_sample_size(20_000, 5_000_000, &half),
+            10_000 * (epochs + 1)
+        );
         let none = TrainingConfig {
             replay_ratio: 0.0,
             ..t
