@@ -27,6 +27,10 @@ pub enum DecisionError {
     NoPrevious(ModelId),
     #[error("a reason is required (--reason TEXT): it goes into the audit log")]
     NoReason,
+    #[error(
+        "{id} trained on {batches}, set aside since (directly or through the model it started from), and the gate judged it with their holdout rows; decline it (the next cycle trains without them) or bring them back first"
+    )]
+    SawSetAside { id: ModelId, batches: String },
     #[error("model {id} cannot serve: {source}")]
     Unusable {
         id: ModelId,
@@ -117,6 +121,16 @@ pub fn approve(
 ) -> Result<Entry, DecisionError> {
     check_reason(reason)?;
     ensure_pending(owner, id)?;
+    // A batch set aside after the candidate's cycle (while it waited, or
+    // queued behind that cycle in the daemon) is in its weights and in the
+    // evidence it waits with: approving it would serve what was set aside.
+    let saw = crate::cycle::taint(&owner.store, id)?.batches;
+    if !saw.is_empty() {
+        return Err(DecisionError::SawSetAside {
+            id,
+            batches: crate::provenance::ranges_text(&saw.into_iter().collect()),
+        });
+    }
     usable(owner, id)?;
     let previous = owner.store.serving()?;
     let event = Event::Approved {

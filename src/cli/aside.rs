@@ -1,8 +1,10 @@
 //! `tidegate set-aside BATCH --reason TEXT` and `tidegate bring-back BATCH
 //! --reason TEXT`: take a stored batch out of use, or put it back; recorded
-//! with the acting user.
+//! with the acting user. A running daemon does it in its loop (between
+//! cycles, like every decision); otherwise the command opens the store.
 
-use super::{Cli, Exit, emit, render_decision};
+use super::{Cli, Exit};
+use crate::daemon::Request;
 use crate::ids::BatchId;
 use crate::state::StateDir;
 
@@ -17,15 +19,13 @@ pub struct Args {
 }
 
 pub fn run(cli: &Cli, state: &StateDir, args: &Args, aside: bool) -> anyhow::Result<Exit> {
-    let config = super::load_config(cli, state)?;
-    let (mut owner, _) = crate::state::open(state, &config)?;
-    let entry = crate::aside::change(
-        &mut owner,
-        args.batch,
-        aside,
-        &args.reason,
-        &crate::state::current_user(),
-    )?;
-    emit(&render_decision(&entry, cli.json))?;
-    Ok(Exit::Ok)
+    let (batch, reason) = (args.batch, args.reason.clone());
+    let request = if aside {
+        Request::SetAside { batch, reason }
+    } else {
+        Request::BringBack { batch, reason }
+    };
+    super::run_decision(cli, state, request, |owner, user| {
+        crate::aside::change(owner, args.batch, aside, &args.reason, user)
+    })
 }

@@ -228,17 +228,18 @@ pub(crate) fn load_config(cli: &Cli, state: &StateDir) -> anyhow::Result<Config>
     Ok(Config::load(&path)?)
 }
 
-/// Opens the state dir as owner, takes one decision about model versions
-/// (approve, decline, rollback) and prints its audit entry.
-pub(crate) fn run_decision(
+/// Takes one decision recorded as a single audit entry (approve, decline,
+/// rollback, set-aside, bring-back) and prints that entry: through the
+/// running daemon when there is one, else as the owner of the state dir.
+pub(crate) fn run_decision<E>(
     cli: &Cli,
     state: &StateDir,
     request: crate::daemon::Request,
-    decide: impl FnOnce(
-        &mut crate::state::Owner,
-        &str,
-    ) -> Result<crate::audit::Entry, crate::lifecycle::DecisionError>,
-) -> anyhow::Result<Exit> {
+    decide: impl FnOnce(&mut crate::state::Owner, &str) -> Result<crate::audit::Entry, E>,
+) -> anyhow::Result<Exit>
+where
+    E: std::error::Error + Send + Sync + 'static,
+{
     // A running daemon owns the state dir: it takes the decision in its loop.
     if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
         return Ok(exit);

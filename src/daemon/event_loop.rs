@@ -21,6 +21,7 @@ use super::inbox::{self, Settler, Signature};
 use super::metrics::Shared;
 use super::protocol::{Answer, DaemonStatus, Envelope, Request};
 use super::trigger::{self, Why};
+use crate::aside::AsideError;
 use crate::cli::{self, Exit};
 use crate::config::Config;
 use crate::cycle::{self, CycleError, ModelRecord};
@@ -553,6 +554,22 @@ impl<C: Clock> Daemon<C> {
                 json,
                 &mut fatal,
             ),
+            // Here, not on the worker: a cycle that was running when this
+            // arrived has ended and decided (on the rows in use when it
+            // began), and the next cycle, started from this loop after the
+            // queue is empty, reads the batch's new state. A candidate of
+            // the ended cycle left waiting for approval is refused by
+            // `approve` while it saw a batch set aside.
+            Request::SetAside { batch, reason } => set_aside_answer(
+                crate::aside::change(owner, batch, true, &reason, &user),
+                json,
+                &mut fatal,
+            ),
+            Request::BringBack { batch, reason } => set_aside_answer(
+                crate::aside::change(owner, batch, false, &reason, &user),
+                json,
+                &mut fatal,
+            ),
         };
         reply.send(answer);
         // A command may have added rows or settled a waiting candidate.
@@ -846,19 +863,47 @@ fn decide(
     json: bool,
     fatal: &mut Option<anyhow::Error>,
 ) -> Answer {
+    let machine = |e: &DecisionError| {
+        matches!(
+            e,
+            DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
+        )
+    };
+    entry_answer(result, machine, json, fatal)
+}
+
+fn set_aside_answer(
+    result: Result<crate::audit::Entry, AsideError>,
+    json: bool,
+    fatal: &mut Option<anyhow::Error>,
+) -> Answer {
+    let machine = |e: &AsideError| matches!(e, AsideError::Store(_) | AsideError::Audit(_));
+    entry_answer(result, machine, json, fatal)
+}
+
+/// The answer to a command recorded as one audit entry, printed as the
+/// command prints it when run directly. A failure of the store or the log
+/// (`machine`) also ends the daemon, as it ends a direct command; the
+/// command's own refusals (no such batch, no reason) are only answered.
+fn entry_answer<E>(
+    result: Result<crate::audit::Entry, E>,
+    machine: impl Fn(&E) -> bool,
+    json: bool,
+    fatal: &mut Option<anyhow::Error>,
+) -> Answer
+where
+    E: std::error::Error + Send + Sync + 'static,
+{
     match result {
         Ok(entry) => Answer {
             stdout: cli::render_decision(&entry, json),
             ..Answer::default()
         },
         Err(e) => {
-            let machine = matches!(
-                e,
-                DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
-            );
+            let is_machine = machine(&e);
             let e = anyhow::Error::from(e);
             let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
-            if machine {
+            if is_machine {
                 *fatal = Some(e);
             }
             answer

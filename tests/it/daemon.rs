@@ -143,7 +143,7 @@ fn daemon_status(env: &Env) -> Option<serde_json::Value> {
 fn raw_ping(env: &Env) -> serde_json::Value {
     use std::io::{BufRead, Write};
     let mut s = std::os::unix::net::UnixStream::connect(env.state().join("control.sock")).unwrap();
-    s.write_all(b"{\"v\":1,\"user\":\"tester\",\"json\":true,\"request\":{\"op\":\"ping\"}}\n")
+    s.write_all(b"{\"v\":2,\"user\":\"tester\",\"json\":true,\"request\":{\"op\":\"ping\"}}\n")
         .unwrap();
     let mut line = String::new();
     std::io::BufReader::new(s).read_line(&mut line).unwrap();
@@ -377,6 +377,148 @@ fn cli_commands_go_through_the_daemon_and_read_only_ones_read_files() {
         "{}",
         stdout(&out)
     );
+}
+
+/// The account name of this process's uid (what the daemon records).
+fn me() -> String {
+    let id = std::process::Command::new("id")
+        .arg("-un")
+        .output()
+        .unwrap();
+    String::from_utf8(id.stdout).unwrap().trim().to_string()
+}
+
+#[test]
+fn set_aside_and_bring_back_go_through_the_daemon_and_a_waiting_candidate_that_saw_the_batch_is_not_approved()
+ {
+    // The tiny linear state (its first candidate beats the trivial
+    // predictor), in approval mode, with a daemon that never trains by itself.
+    let config = format!(
+        "{}require_approval = true\n\n[daemon]\nsettle_seconds = 0.2\nmin_new_rows = 100000\n",
+        crate::support::TINY_CONFIG
+    );
+    let env = Env::with_config_text(&config);
+    let files: Vec<PathBuf> = (0..3)
+        .map(|i| {
+            let file = env.dir.path().join(format!("rows-{i}.csv"));
+            fs::write(&file, crate::support::tiny_rows(i * 200, 200)).unwrap();
+            file
+        })
+        .collect();
+    let watch = Watch::start(&env);
+    let out = env.ingest(&files);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+
+    // Done by the daemon (the direct path would find the store locked,
+    // exit 75), printed as the direct command prints it.
+    let out = env.run(&["set-aside", "b000002", "--reason", "export was broken"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    assert_eq!(
+        stdout(&out),
+        "b000002 set aside by hand: export was broken\n"
+    );
+    let entries = env.log_json(&["--kind", "batch-set-aside"]);
+    assert_eq!(entries.len(), 1, "{entries:?}");
+    // The client says USER=tester; the log names the peer's account.
+    assert_eq!(entries[0]["user"], me().as_str());
+    assert_eq!(entries[0]["reason"], "export was broken");
+    assert_eq!(entries[0]["batch"], 2);
+    let status = env.status_json();
+    assert!(status["summary"]["set_aside"]["2"].is_string(), "{status}");
+    assert!(!status["daemon"].is_null(), "{status}");
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+    // The command's own refusals come back as they would directly, and
+    // the daemon goes on.
+    let out = env.run(&["set-aside", "b000002", "--reason", "again"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("b000002 is already set aside"),
+        "{}",
+        stderr(&out)
+    );
+    let out = env.run(&["set-aside", "b000009", "--reason", "x"]);
+    assert_eq!(code(&out), 1);
+    assert!(
+        stderr(&out).contains("no batch b000009"),
+        "{}",
+        stderr(&out)
+    );
+    let out = env.run(&["bring-back", "b000001", "--reason", "x"]);
+    assert_eq!(code(&out), 1);
+    assert!(stderr(&out).contains("not set aside"), "{}", stderr(&out));
+
+    // --json prints the audit entry, as directly.
+    let out = env.run(&[
+        "--json",
+        "bring-back",
+        "b000002",
+        "--reason",
+        "the file was fine",
+    ]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    assert_eq!(v["kind"], "batch-brought-back");
+    assert_eq!(v["user"], me().as_str());
+    assert_eq!(v["reason"], "the file was fine");
+    assert_eq!(
+        env.log_json(&["--kind", "batch-brought-back"]),
+        vec![v.clone()]
+    );
+    assert!(
+        env.status_json()["summary"]["set_aside"]
+            .as_object()
+            .unwrap()
+            .is_empty()
+    );
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
+
+    // A candidate that trained on a batch and waits for approval when that
+    // batch is set aside (as when the set-aside waited for its cycle):
+    // judged on the batch's holdout rows, so it cannot be approved.
+    let out = env.run(&["--json", "retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let r: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
+    assert_eq!(r["outcome"], "await-approval", "{r}");
+    let out = env.run(&["set-aside", "b000002", "--reason", "late doubt"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let out = env.run(&["approve", "m000001", "--reason", "looks fine"]);
+    assert_eq!(code(&out), 1, "{}", stdout(&out));
+    assert!(
+        stderr(&out).contains("m000001 trained on b000002"),
+        "{}",
+        stderr(&out)
+    );
+    assert_eq!(count_kind(&env, "approved"), 0);
+    assert!(env.status_json()["summary"]["serving"].is_null());
+    let out = env.run(&["decline", "m000001", "--reason", "saw the broken export"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    // The next cycle neither trains on nor scores the batch.
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let holdout_in_use: u64 = env
+        .log_json(&["--kind", "batch-accepted"])
+        .iter()
+        .filter(|e| e["batch"] != 2)
+        .map(|e| e["holdout_rows"].as_u64().unwrap())
+        .sum();
+    let trained = env.log_json(&["--kind", "candidate-trained"]);
+    let last = trained.last().unwrap();
+    assert_eq!(last["cycle"], 2, "{trained:?}");
+    assert_eq!(last["holdout_rows"].as_u64().unwrap(), holdout_in_use);
+    let out = env.run(&["--json", "models"]);
+    let m2: serde_json::Value = stdout(&out)
+        .lines()
+        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap())
+        .find(|m| m["id"] == 2)
+        .unwrap_or_else(|| panic!("no m000002: {}", stdout(&out)));
+    assert_eq!(m2["batches_seen"], serde_json::json!([1, 3]), "{m2}");
+
+    let (code_at_stop, _) = watch.stop();
+    assert_eq!(code_at_stop, 0, "{}", watch_log(&env));
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
 }
 
 #[test]
