@@ -197,22 +197,13 @@ pub fn ranges_text(batches: &BTreeSet<BatchId>) -> String {
         .join(", ")
 }
 
+/// Log events for tests of what reads the log (here and in the report).
 #[cfg(test)]
-mod tests {
+pub(crate) mod fixtures {
     use super::*;
     use crate::audit::SuspectEvidence;
 
-    fn entry(seq: u64, event: Event) -> Entry {
-        Entry::seal(
-            crate::ids::AuditSeq(seq),
-            chrono::Utc::now(),
-            "ana",
-            event,
-            "",
-        )
-    }
-
-    fn flagged() -> SuspectEvidence {
+    pub(crate) fn flagged() -> SuspectEvidence {
         SuspectEvidence {
             suspect: true,
             why: vec!["targets unrelated to inputs".into()],
@@ -224,7 +215,7 @@ mod tests {
         }
     }
 
-    fn accepted(b: u64, suspect: bool) -> Event {
+    pub(crate) fn accepted(b: u64, suspect: bool) -> Event {
         Event::BatchAccepted {
             batch: BatchId(b),
             file: format!("night-{b}.csv"),
@@ -238,7 +229,7 @@ mod tests {
         }
     }
 
-    fn trained(m: u64, run: &str, parent: Option<u64>, through: u64) -> Event {
+    pub(crate) fn trained(m: u64, run: &str, parent: Option<u64>, through: u64) -> Event {
         Event::CandidateTrained {
             cycle: m,
             model: ModelId(m),
@@ -254,6 +245,66 @@ mod tests {
             widened: Default::default(),
             rescaled: Vec::new(),
         }
+    }
+    /// A gate's evidence for a clear win on `rows` holdout rows.
+    pub(crate) fn gate_evidence(rows: usize) -> crate::audit::GateEvidence {
+        crate::audit::GateEvidence {
+            compared_with: "serving".into(),
+            rows,
+            mean_loss_compared_with: 2.0,
+            mean_loss_candidate: 1.0,
+            relative_improvement: Some(0.5),
+            t: Some(3.0),
+            p: 0.01,
+            batches: None,
+            batches_needed: None,
+            candidates: None,
+            p_unadjusted: None,
+            wilcoxon_p: None,
+            new_rows: rows / 2,
+            old_rows: rows - rows / 2,
+            reason: "better".into(),
+        }
+    }
+
+    /// A hash-chained log of `(user, event)`, one minute apart from
+    /// 2026-12-01 00:00 UTC.
+    pub(crate) fn chained(events: Vec<(&str, Event)>) -> Vec<Entry> {
+        let t0 = chrono::DateTime::parse_from_rfc3339("2026-12-01T00:00:00Z")
+            .expect("a valid time")
+            .with_timezone(&chrono::Utc);
+        let mut prev = crate::audit::GENESIS.to_string();
+        events
+            .into_iter()
+            .enumerate()
+            .map(|(i, (user, ev))| {
+                let e = Entry::seal(
+                    crate::ids::AuditSeq(i as u64 + 1),
+                    t0 + chrono::TimeDelta::minutes(i as i64),
+                    user,
+                    ev,
+                    &prev,
+                );
+                prev = e.hash.clone();
+                e
+            })
+            .collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::fixtures::{accepted, trained};
+    use super::*;
+
+    fn entry(seq: u64, event: Event) -> Entry {
+        Entry::seal(
+            crate::ids::AuditSeq(seq),
+            chrono::Utc::now(),
+            "ana",
+            event,
+            "",
+        )
     }
 
     fn set(v: &[u64]) -> BTreeSet<BatchId> {
@@ -343,23 +394,7 @@ mod tests {
             cycle: m,
             model: ModelId(m),
             previous: None,
-            evidence: crate::audit::GateEvidence {
-                compared_with: "serving".into(),
-                rows: 10,
-                mean_loss_compared_with: 2.0,
-                mean_loss_candidate: 1.0,
-                relative_improvement: Some(0.5),
-                t: Some(3.0),
-                p: 0.01,
-                batches: None,
-                batches_needed: None,
-                candidates: None,
-                p_unadjusted: None,
-                wilcoxon_p: None,
-                new_rows: 5,
-                old_rows: 5,
-                reason: "better".into(),
-            },
+            evidence: super::fixtures::gate_evidence(10),
         }
     }
 

@@ -359,29 +359,11 @@ pub fn stored_rows(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::audit::{Entry, GENESIS};
-    use crate::ids::AuditSeq;
+    use crate::audit::Entry;
+    use crate::provenance::fixtures::{chained, gate_evidence};
 
     fn entries(events: Vec<Event>) -> Vec<Entry> {
-        let t0 = chrono::DateTime::parse_from_rfc3339("2026-12-01T00:00:00Z")
-            .unwrap()
-            .with_timezone(&chrono::Utc);
-        let mut prev = GENESIS.to_string();
-        events
-            .into_iter()
-            .enumerate()
-            .map(|(i, ev)| {
-                let e = Entry::seal(
-                    AuditSeq(i as u64 + 1),
-                    t0 + chrono::TimeDelta::minutes(i as i64),
-                    "ana",
-                    ev,
-                    &prev,
-                );
-                prev = e.hash.clone();
-                e
-            })
-            .collect()
+        chained(events.into_iter().map(|e| ("ana", e)).collect())
     }
 
     fn trained(cycle: u64, model: u64, loss: f64) -> Event {
@@ -417,23 +399,7 @@ mod tests {
     }
 
     fn evidence() -> crate::audit::GateEvidence {
-        crate::audit::GateEvidence {
-            compared_with: "serving".into(),
-            rows: 100,
-            mean_loss_compared_with: 2.0,
-            mean_loss_candidate: 1.0,
-            relative_improvement: Some(0.5),
-            t: Some(3.0),
-            p: 0.01,
-            batches: None,
-            batches_needed: None,
-            candidates: None,
-            p_unadjusted: None,
-            wilcoxon_p: None,
-            new_rows: 50,
-            old_rows: 50,
-            reason: "better".into(),
-        }
+        gate_evidence(100)
     }
 
     #[test]

@@ -128,73 +128,13 @@ impl Seen {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::audit::{GENESIS, SuspectEvidence};
     use crate::ids::AuditSeq;
+    use crate::provenance::fixtures::{accepted, chained, trained};
 
     fn log(events: Vec<(&str, Event)>) -> Vec<Entry> {
-        let t0 = chrono::DateTime::parse_from_rfc3339("2026-12-01T00:00:00Z")
-            .unwrap()
-            .with_timezone(&chrono::Utc);
-        let mut prev = GENESIS.to_string();
-        events
-            .into_iter()
-            .enumerate()
-            .map(|(i, (user, ev))| {
-                let e = Entry::seal(
-                    AuditSeq(i as u64 + 1),
-                    t0 + chrono::TimeDelta::minutes(i as i64),
-                    user,
-                    ev,
-                    &prev,
-                );
-                prev = e.hash.clone();
-                e
-            })
-            .collect()
+        chained(events)
     }
 
-    fn accepted(b: u64, suspect: bool) -> Event {
-        Event::BatchAccepted {
-            batch: BatchId(b),
-            file: format!("night-{b}.csv"),
-            file_hash: String::new(),
-            rows: 10,
-            train_rows: 8,
-            holdout_rows: 2,
-            new_categories: Default::default(),
-            drift: None,
-            suspect: suspect.then(|| SuspectEvidence {
-                suspect: true,
-                why: vec!["targets unrelated to inputs".into()],
-                rows: 10,
-                references: Vec::new(),
-                target_scale: None,
-                copies_share: 0.1,
-                reason: String::new(),
-            }),
-        }
-    }
-
-    fn trained(m: u64, run: &str, parent: Option<u64>, through: u64) -> Event {
-        Event::CandidateTrained {
-            cycle: m,
-            model: ModelId(m),
-            run: run.into(),
-            parent: parent.map(ModelId),
-            trained_through: BatchId(through),
-            epochs: 1,
-            seconds: 0.0,
-            stop: String::new(),
-            holdout_rows: 2,
-            holdout_loss: 1.0,
-            manifest_hash: String::new(),
-            widened: Default::default(),
-            rescaled: Vec::new(),
-        }
-    }
-
-    /// Six nights; m1 cold on 1–3; night 4 suspect; m2 warm from m1 on
-    /// 1–3 and 5; night 2 set aside by hand; m3 cold on 1, 3, 5, 6.
     fn story() -> Vec<Entry> {
         let mut ev = vec![("daemon", accepted(1, false))];
         ev.push(("daemon", accepted(2, false)));
