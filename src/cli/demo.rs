@@ -116,11 +116,16 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     // first value never seen, or the value carrying most loss.
                     let about = match ev.verdict.as_str() {
                         "shifted" => ev.shifted_values.first().cloned(),
-                        "new-conditions" => ev
-                            .new_conditions
-                            .iter()
-                            .next()
-                            .and_then(|(c, v)| v.first().map(|v| format!("{c} = {v}"))),
+                        // Every column with a value a model has not met
+                        // (the first Thursday and a new shop can coincide).
+                        "new-conditions" => Some(
+                            ev.new_conditions
+                                .iter()
+                                .filter_map(|(c, v)| v.first().map(|v| format!("{c} = {v}")))
+                                .collect::<Vec<_>>()
+                                .join("; "),
+                        )
+                        .filter(|s| !s.is_empty()),
                         "regressed" => ev
                             .hotspots
                             .first()
