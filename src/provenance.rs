@@ -173,6 +173,63 @@ pub fn trained_on(lineages: &BTreeMap<ModelId, Lineage>, batch: BatchId) -> Vec<
         .collect()
 }
 
+/// What `log --lineage` follows, and a line saying so.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Related {
+    /// The batch asked about and every batch the model asked about saw.
+    pub batches: BTreeSet<BatchId>,
+    /// The model asked about and every model that saw the batch asked about.
+    pub models: BTreeSet<ModelId>,
+    pub summary: Vec<String>,
+}
+
+/// For a batch: itself and every model that saw it, directly or through
+/// its parents. For a model: itself and every batch it saw.
+pub fn related(
+    lineages: &BTreeMap<ModelId, Lineage>,
+    batch: Option<BatchId>,
+    model: Option<ModelId>,
+) -> Related {
+    let mut r = Related::default();
+    if let Some(b) = batch {
+        r.batches.insert(b);
+        let reached = trained_on(lineages, b);
+        r.summary.push(if reached.is_empty() {
+            format!("{b} reached no model")
+        } else {
+            format!(
+                "{b} reached {}",
+                reached
+                    .iter()
+                    .map(|(m, route)| match route {
+                        Route::Directly => format!("{m} (directly)"),
+                        Route::ThroughParent => format!("{m} (through its parents)"),
+                    })
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            )
+        });
+        r.models.extend(reached.into_iter().map(|(m, _)| m));
+    }
+    if let Some(m) = model {
+        r.models.insert(m);
+        match lineages.get(&m) {
+            Some(l) => {
+                r.summary.push(format!(
+                    "{m} saw {} (its own training: {})",
+                    ranges_text(&l.saw),
+                    ranges_text(&l.direct)
+                ));
+                r.batches.extend(l.saw.iter().copied());
+            }
+            None => r
+                .summary
+                .push(format!("the log has no training entry of {m}")),
+        }
+    }
+    r
+}
+
 /// A set of batches as runs: "b000001–b000005, b000007".
 pub fn ranges_text(batches: &BTreeSet<BatchId>) -> String {
     let mut runs: Vec<(BatchId, BatchId)> = Vec::new();
@@ -445,5 +502,34 @@ mod tests {
             ranges_text(&set(&[1, 2, 3, 5, 7, 8])),
             "b000001–b000003, b000005, b000007–b000008"
         );
+    }
+
+    #[test]
+    fn related_follows_a_batch_to_its_models_and_a_model_to_its_batches() {
+        let log = vec![
+            entry(1, accepted(1, false)),
+            entry(2, accepted(2, false)),
+            entry(3, trained(1, "cold", None, 2)),
+            entry(4, accepted(3, false)),
+            entry(5, trained(2, "warm", Some(1), 3)),
+            entry(6, trained(3, "cold", None, 1)),
+        ];
+        let l = lineages(&log);
+        let r = related(&l, Some(BatchId(2)), None);
+        assert_eq!(r.batches, set(&[2]));
+        assert_eq!(r.models, [ModelId(1), ModelId(2)].into_iter().collect());
+        assert_eq!(
+            r.summary,
+            vec!["b000002 reached m000001 (directly), m000002 (directly)"]
+        );
+        let r = related(&l, None, Some(ModelId(3)));
+        assert_eq!(r.batches, set(&[1]));
+        assert_eq!(
+            r.summary,
+            vec!["m000003 saw b000001 (its own training: b000001)"]
+        );
+        let r = related(&l, None, Some(ModelId(9)));
+        assert_eq!(r.batches, set(&[]));
+        assert_eq!(r.summary, vec!["the log has no training entry of m000009"]);
     }
 }

@@ -535,6 +535,50 @@ fn models_name_the_batches_they_saw_and_the_models_a_batch_reached() {
         "{}",
         stdout(&out)
     );
+    // The log follows the batch to the models that saw it: their entries
+    // are shown beside the batch's own, and no other model's.
+    let out = env.run(&["log", "--batch", "b000002", "--lineage"]);
+    let text = stdout(&out);
+    assert!(out.status.success(), "{text}");
+    assert!(
+        text.starts_with("b000002 reached m000001 (directly)"),
+        "{text}"
+    );
+    for m in &all {
+        let id = format!("m{:06}", m["id"].as_u64().unwrap());
+        let saw = ids(&m["batches_seen"]).contains(&2);
+        // The "what" column of an entry about a model starts with its id.
+        let shown = text
+            .lines()
+            .skip(2)
+            .filter_map(|l| {
+                l.split("  ")
+                    .map(str::trim)
+                    .filter(|c| !c.is_empty())
+                    .last()
+            })
+            .any(|what| what.starts_with(&format!("{id} ")));
+        assert_eq!(shown, saw, "{id} in\n{text}");
+    }
+    assert!(text.contains("b000002 from"), "{text}");
+    // And a model to the batches it saw.
+    let out = env.run(&[
+        "log",
+        "--model",
+        "m000001",
+        "--lineage",
+        "--kind",
+        "batch-accepted",
+    ]);
+    let text = stdout(&out);
+    assert!(text.starts_with("m000001 saw b000001–b000003"), "{text}");
+    assert_eq!(
+        text.lines()
+            .filter(|l| l.contains("batch-accepted"))
+            .count(),
+        3,
+        "{text}"
+    );
 }
 
 #[test]
