@@ -40,13 +40,13 @@ use chrono::Utc;
 use std::collections::BTreeMap;
 
 use crate::audit::{Entry, Event, FreshEvidence, Hotspot};
-use crate::config::{ColumnKind, Task};
+use crate::config::ColumnKind;
 use crate::cycle::{CycleError, model_record};
 use crate::gate::monitor::{self, Observation, Prior};
 use crate::gate::shift::{self, Group, LEVEL_HISTORY};
 use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
-use crate::model::{Model, ModelError, Predictions};
+use crate::model::{Model, ModelError};
 use crate::rng::Rng;
 use crate::sample;
 use crate::schema::{InputEncoding, RowMatrix, Schema, Vocabularies};
@@ -477,7 +477,13 @@ pub fn check_batch(
         }
         .into();
     } else {
-        let fresh = serving_model.row_losses(&rows, backend)?;
+        // Regression: the signed errors too, for the small columns' shift
+        // test; the losses are their squares (one pass over the batch).
+        let errors = serving_model.row_errors(&rows, backend)?;
+        let fresh = match &errors {
+            Some(e) => e.iter().map(|x| x * x).collect(),
+            None => serving_model.row_losses(&rows, backend)?,
+        };
         let fresh_mean = mean(&fresh);
         evidence.mean_loss_serving = Some(fresh_mean);
         let step = std::time::Instant::now();
@@ -529,24 +535,6 @@ pub fn check_batch(
             )),
         }
         // Shift, in part: values out of line with the rest of their column.
-        // Regression: the signed errors of the batch's rows, for the small
-        // columns' test (one more pass over the batch only).
-        let errors = match schema.task {
-            Task::Regression => match serving_model.predict(&rows, backend)? {
-                Predictions::Regression { values } => Some(
-                    values
-                        .iter()
-                        .enumerate()
-                        .map(|(r, p)| {
-                            rows.number(r, schema.target)
-                                .map_or(f64::NAN, |y| f64::from(y) - f64::from(*p))
-                        })
-                        .collect::<Vec<f64>>(),
-                ),
-                Predictions::Classification { .. } => None,
-            },
-            Task::Classification => None,
-        };
         let groups = groups(
             &schema,
             &vocabs,
@@ -559,21 +547,7 @@ pub fn check_batch(
             .map(|v| decode_value_levels(&v))
             .unwrap_or_default();
         let group_check = shift::group_check(&groups, &value_history, gate_config.shift_alpha);
-        let mut remembered = false;
-        for e in &group_check.excesses {
-            let flagged = group_check
-                .flagged
-                .iter()
-                .any(|f| f.column == e.column && f.value == e.value);
-            if !flagged && e.excess.is_finite() {
-                value_history
-                    .entry((e.column.clone(), e.value.clone()))
-                    .or_default()
-                    .push(e.excess);
-                remembered = true;
-            }
-        }
-        if remembered {
+        if group_check.remember(&mut value_history) {
             meta.push((
                 META_VALUE_LEVELS.to_vec(),
                 Some(encode_value_levels(&value_history, VALUE_LEVELS_MAX_BYTES)),
