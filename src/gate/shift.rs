@@ -33,7 +33,7 @@
 //!   loss level, one-sided. These columns share the same alpha / C, so the
 //!   bound per batch still holds.
 
-use super::cluster::{normal_quantile, t_quantile};
+use super::cluster::{normal_quantile, normal_upper_quantile, t_quantile};
 use super::dist::{normal_sf, t_sf};
 use super::show;
 
@@ -199,6 +199,29 @@ pub struct GroupCheck {
     /// Every value of a small column on this batch with its excess, tested
     /// or not yet (its history is still short).
     pub excesses: Vec<ValueExcess>,
+}
+
+impl GroupCheck {
+    /// Adds this batch's excess of every small-column value that was not
+    /// flagged to `history` (a flagged value's excess would widen its own
+    /// yardstick). Whether anything was added.
+    pub fn remember(&self, history: &mut ValueHistory) -> bool {
+        let mut added = false;
+        for e in &self.excesses {
+            let flagged = self
+                .flagged
+                .iter()
+                .any(|f| f.column == e.column && f.value == e.value);
+            if !flagged && e.excess.is_finite() {
+                history
+                    .entry((e.column.clone(), e.value.clone()))
+                    .or_default()
+                    .push(e.excess);
+                added = true;
+            }
+        }
+        added
+    }
 }
 
 fn median(v: &mut [f64]) -> f64 {
@@ -395,7 +418,7 @@ pub fn group_check(groups: &[Group], history: &ValueHistory, alpha: f64) -> Grou
                     value: v.s.g.value.clone(),
                     rows: v.s.g.rows,
                     excess_level: v.loss_excess,
-                    z: z_of(p),
+                    z: normal_upper_quantile(p),
                     z_needed,
                     p,
                     history: Some(n),
@@ -410,24 +433,6 @@ pub fn group_check(groups: &[Group], history: &ValueHistory, alpha: f64) -> Grou
         flagged,
         excesses,
     }
-}
-
-/// The z whose upper tail is `p` (the normal equivalent of a p-value),
-/// by bisection on the tail itself so that tiny p keep their precision.
-fn z_of(p: f64) -> f64 {
-    if p.is_nan() {
-        return f64::NAN;
-    }
-    let (mut lo, mut hi) = (-40.0f64, 40.0f64);
-    for _ in 0..200 {
-        let mid = 0.5 * (lo + hi);
-        if normal_sf(mid) > p {
-            lo = mid;
-        } else {
-            hi = mid;
-        }
-    }
-    0.5 * (lo + hi)
 }
 
 /// The t value a level must reach with `history` earlier batches (for
@@ -619,14 +624,7 @@ mod tests {
             if !check.flagged.is_empty() {
                 early_flags += 1;
             }
-            for e in check.excesses {
-                if !check.flagged.iter().any(|f| f.value == e.value) {
-                    history
-                        .entry((e.column, e.value))
-                        .or_default()
-                        .push(e.excess);
-                }
-            }
+            check.remember(&mut history);
         }
         unreachable!("the loop returns on the last batch")
     }
@@ -720,12 +718,7 @@ mod tests {
             for _ in 0..8 {
                 let check = group_check(&batch(&mut rng, 0.0), &history, 0.01);
                 null_flags += usize::from(!check.flagged.is_empty());
-                for e in check.excesses {
-                    history
-                        .entry((e.column, e.value))
-                        .or_default()
-                        .push(e.excess);
-                }
+                check.remember(&mut history);
             }
             let moved = if trial % 2 == 0 { 2.0 } else { -2.0 };
             let check = group_check(&batch(&mut rng, moved), &history, 0.01);
