@@ -45,6 +45,16 @@ pub enum Route {
     ThroughParent,
 }
 
+impl Route {
+    /// How the route reads on screens and the page.
+    pub fn words(self) -> &'static str {
+        match self {
+            Route::Directly => "directly",
+            Route::ThroughParent => "through its parents",
+        }
+    }
+}
+
 /// What replaying the whole log gives: every model's lineage and the
 /// batches set aside at its end.
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -201,10 +211,7 @@ pub fn related(
                 "{b} reached {}",
                 reached
                     .iter()
-                    .map(|(m, route)| match route {
-                        Route::Directly => format!("{m} (directly)"),
-                        Route::ThroughParent => format!("{m} (through its parents)"),
-                    })
+                    .map(|(m, route)| format!("{m} ({})", route.words()))
                     .collect::<Vec<_>>()
                     .join(", ")
             )

@@ -195,10 +195,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         let mut by: Vec<String> = rows
             .values()
             .filter_map(|r| Some((r.id?, r.route?)))
-            .map(|(id, route)| match route {
-                crate::provenance::Route::Directly => format!("{id} directly"),
-                crate::provenance::Route::ThroughParent => format!("{id} through its parent"),
-            })
+            .map(|(id, route)| format!("{id} {}", route.words()))
             .collect();
         if by.is_empty() {
             by.push("no model".into());

@@ -8,7 +8,7 @@ use std::collections::{BTreeMap, BTreeSet};
 
 use crate::audit::{Entry, Event};
 use crate::ids::{BatchId, ModelId};
-use crate::provenance::{self, Replay, Route};
+use crate::provenance::{self, Replay};
 
 /// The row attribute that marks a model which saw a batch now set aside.
 pub const MARK: &str = " class=\"saw-aside\"";
@@ -105,10 +105,7 @@ impl Seen {
             .map(|b| {
                 let reached: Vec<String> = provenance::trained_on(&self.replay.lineages, *b)
                     .into_iter()
-                    .map(|(m, route)| match route {
-                        Route::Directly => format!("{m} directly"),
-                        Route::ThroughParent => format!("{m} through its parents"),
-                    })
+                    .map(|(m, route)| format!("{m} {}", route.words()))
                     .collect();
                 vec![
                     b.to_string(),
