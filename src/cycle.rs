@@ -258,17 +258,17 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     };
     let tainted = taint.batches;
     let clean_parent = match taint.clean {
-        Some(id) => match (model_record(owner, id), owner.checkpoint(id)) {
-            (Ok(record), Ok(ck)) => Some((id, record, ck)),
-            (Err(e), _) => {
-                tracing::warn!("{id} cannot be a warm start: {e}");
-                None
-            }
-            (_, Err(e)) => {
-                tracing::warn!("{id} cannot be a warm start: {e}");
-                None
-            }
-        },
+        Some(id) => {
+            let loaded = model_record(owner, id)
+                .map_err(|e| e.to_string())
+                .and_then(|record| {
+                    let ck = owner.checkpoint(id).map_err(|e| e.to_string())?;
+                    Ok((id, record, ck))
+                });
+            loaded
+                .inspect_err(|e| tracing::warn!("{id} cannot be a warm start: {e}"))
+                .ok()
+        }
         None => None,
     };
     if !tainted.is_empty() {
