@@ -31,11 +31,7 @@ fn nights_to_rollback(seed: u64, factor: f64, limit: usize) -> Option<usize> {
     for (i, (name, text)) in files.iter().take(14).enumerate() {
         run.night(i + 1, name, text, true).unwrap();
     }
-    let before = run.owner.store.serving().unwrap();
-    let worse = make_worse(&mut run.owner, factor, "sim").unwrap();
-    if std::env::var_os("SIM_DEBUG").is_some() {
-        eprintln!("made {worse} from {before:?}");
-    }
+    make_worse(&mut run.owner, factor, "sim").unwrap();
     for (k, (name, text)) in files.iter().skip(14).enumerate() {
         let n = run.night(15 + k, name, text, false).unwrap();
         if std::env::var_os("SIM_DEBUG").is_some() {
@@ -81,11 +77,17 @@ fn nights_to_shift_flag(seed: u64, factor: f64) -> Option<usize> {
         .map(|p| p + 1)
 }
 
+/// A short version of the table's power row: most of a few streams flag
+/// the zone within 2 nights (18 of 20 in the table; at least 3 of 5 here,
+/// a property that a better default does not break).
 #[test]
 fn a_zone_whose_demand_rises_by_45_percent_is_flagged() {
-    let n = nights_to_shift_flag(3, 1.45);
-    println!("flagged after {n:?} batches");
-    assert!(n.is_some());
+    let nights: Vec<Option<usize>> = (0..5)
+        .map(|s| nights_to_shift_flag(300 + s, 1.45))
+        .collect();
+    println!("flagged after {nights:?} batches");
+    let within2 = nights.iter().filter(|n| n.is_some_and(|n| n <= 2)).count();
+    assert!(within2 >= 3, "{nights:?}");
 }
 
 #[test]
