@@ -627,21 +627,15 @@ pub fn check_batch(
                     MonitorState {
                         serving,
                         previous: Some(*p),
-                        prior: Prior::for_loss(
-                            if old_known.is_empty() {
-                                mean(&old_reference)
-                            } else {
-                                mean(&old_known)
-                            },
-                            tau2,
-                        ),
+                        // Log loss ratios: the guess is on their own
+                        // scale (a fifth: about 22% more loss).
+                        prior: Prior::for_loss(1.0, tau2),
                         observations: Vec::new(),
                     }
                 }
             };
             let old = old_model.row_losses(&rows, backend)?;
-            let d: Vec<f64> = fresh.iter().zip(&old).map(|(s, o)| s - o).collect();
-            let (x, w) = mean_and_variance_of_mean(&d);
+            let (x, w) = log_ratio_and_variance(&fresh, &old);
             if x.is_finite() && w.is_finite() {
                 let o = monitor::observe(&state.prior, &state.observations, x, w);
                 state.observations.push(o);
@@ -796,16 +790,34 @@ fn mean_and_variance_of_mean(d: &[f64]) -> (f64, f64) {
     (m, s2 / n as f64)
 }
 
-/// (mean, variance of the mean) of serving − previous losses per batch.
+/// ln(mean serving loss / mean previous loss) over paired rows, and the
+/// variance of that log ratio from the rows (delta method: the variance of
+/// the mean of s_i/S − p_i/P). NaN when either mean loss is not positive.
+fn log_ratio_and_variance(serving: &[f64], previous: &[f64]) -> (f64, f64) {
+    let (s, p) = (mean(serving), mean(previous));
+    if !(s > 0.0 && p > 0.0 && s.is_finite() && p.is_finite()) {
+        return (f64::NAN, f64::NAN);
+    }
+    let u: Vec<f64> = serving
+        .iter()
+        .zip(previous)
+        .map(|(a, b)| a / s - b / p)
+        .collect();
+    ((s / p).ln(), mean_and_variance_of_mean(&u).1)
+}
+
+/// (log loss ratio, its variance) of serving against previous per batch.
 fn batch_differences(serving: &[f64], previous: &[f64], batches: &[u64]) -> Vec<(f64, f64)> {
-    let mut by_batch: BTreeMap<u64, Vec<f64>> = BTreeMap::new();
+    let mut by_batch: BTreeMap<u64, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
     for ((s, p), b) in serving.iter().zip(previous).zip(batches) {
-        by_batch.entry(*b).or_default().push(s - p);
+        let e = by_batch.entry(*b).or_default();
+        e.0.push(*s);
+        e.1.push(*p);
     }
     by_batch
         .values()
-        .filter(|d| d.len() >= 2)
-        .map(|d| mean_and_variance_of_mean(d))
+        .filter(|(s, _)| s.len() >= 2)
+        .map(|(s, p)| log_ratio_and_variance(s, p))
         .filter(|(m, w)| m.is_finite() && w.is_finite())
         .collect()
 }
@@ -1013,6 +1025,7 @@ fn mean(v: &[f64]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::gate::near;
 
     #[test]
     fn value_levels_round_trip_and_stay_small() {
@@ -1091,7 +1104,13 @@ mod tests {
         );
         // Batch 3 has one row: no within variance, left out.
         assert_eq!(d.len(), 2);
-        assert_eq!(d[0], (3.0, 1.0));
-        assert_eq!(d[1], (0.5, 0.25));
+        // Batch 1: losses 4 against 1, s_i/S − p_i/P = ∓0.25.
+        near(d[0].0, 4f64.ln(), 1e-12);
+        near(d[0].1, 0.0625, 1e-12);
+        // Batch 2: 1 against 0.5, s_i/S − p_i/P = ∓1.
+        near(d[1].0, 2f64.ln(), 1e-12);
+        near(d[1].1, 1.0, 1e-12);
+        // No positive mean loss: no ratio.
+        assert!(log_ratio_and_variance(&[0.0, 0.0], &[1.0, 2.0]).0.is_nan());
     }
 }
