@@ -1,10 +1,16 @@
 //! The bundled demo scenario, invented from scratch: a regional bakery
 //! chain that uploads each night's sales per shop and bread line.
 //!
-//! A chain of 108 shops sells twelve bread lines. Twelve nights are generated from one seed. Night 5 carries a few bad
-//! rows (the file is refused whole), night 7 is the first night of a new
-//! shop, from night 10 on demand for everything in the harbour town shifts
-//! up after a competitor closes, and the upload of night 9 is sent twice.
+//! A chain of 108 shops sells twelve bread lines. Twenty-four nights are
+//! generated from one seed. Night 5 carries a few bad rows (the file is
+//! refused whole), night 7 is the first night of a new shop, from night 10
+//! on demand in the town of Corrin shifts up after a competitor closes, and
+//! the upload of night 9 is sent twice. From night 13 a heatwave lifts every
+//! shop's temperature by 18 °C for eleven nights; for its first five nights
+//! a strike at the flour mill halves what the shops can bake, so sales fall
+//! by half for a reason no column records. A model that learns "heat halves
+//! sales" from those nights is genuinely worse once the flour is back
+//! (night 18) while the heat goes on: the designed regression.
 //! `examples/gen_demo_data.rs` writes these files to `demo-data/`; a test
 //! checks the committed files are exactly what this module generates.
 
@@ -59,11 +65,17 @@ const WEEKDAYS: [&str; 7] = ["Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun"];
 const WEEKDAY_FACTOR: [f64; 7] = [0.92, 0.88, 0.93, 0.97, 1.08, 1.32, 0.84];
 const NEW_SHOP: &str = "Harwick Harbour";
 const SHIFT_TOWN: &str = "Corrin";
-pub const NIGHTS: usize = 12;
+pub const NIGHTS: usize = 24;
 /// First night of the new shop, 1-based.
 pub const NEW_SHOP_NIGHT: usize = 7;
 /// First night with shifted demand, 1-based.
 pub const SHIFT_NIGHT: usize = 10;
+/// First night of the heatwave, 1-based.
+pub const HEAT_NIGHT: usize = 13;
+/// First night after the heatwave, 1-based.
+pub const HEAT_END_NIGHT: usize = 24;
+/// First night after the flour shortage (which starts with the heat), 1-based.
+pub const SHORTAGE_END_NIGHT: usize = 18;
 /// Night whose file has bad rows, 1-based.
 pub const BAD_NIGHT: usize = 5;
 /// Night whose file is sent twice, 1-based.
@@ -121,7 +133,15 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
         let day = night - 1;
         let weekday = day % 7;
         let season = (day as f64 / 40.0).sin();
-        let temp = 9.0 + 6.0 * season + 3.0 * rng.normal();
+        let hot = (HEAT_NIGHT..HEAT_END_NIGHT).contains(&night);
+        // The mill's strike: shops bake half their usual loaves, and
+        // nothing in the file says so.
+        let supply = if (HEAT_NIGHT..SHORTAGE_END_NIGHT).contains(&night) {
+            0.5
+        } else {
+            1.0
+        };
+        let temp = 9.0 + 6.0 * season + 3.0 * rng.normal() + if hot { 18.0 } else { 0.0 };
         let mut csv = String::from(
             "shop,town,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n",
         );
@@ -160,8 +180,14 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                 } else {
                     1.0
                 };
-                let mean =
-                    base * s.scale * WEEKDAY_FACTOR[weekday] * heat * wet * promo_factor * shift;
+                let mean = base
+                    * s.scale
+                    * WEEKDAY_FACTOR[weekday]
+                    * heat
+                    * wet
+                    * promo_factor
+                    * shift
+                    * supply;
                 let sold = (mean + (mean.sqrt() + 1.0) * rng.normal()).round().max(0.0);
                 let prev = s.prev[bi];
                 s.prev[bi] = Some(sold);
