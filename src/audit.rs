@@ -21,6 +21,11 @@ use crate::ids::{AuditSeq, BatchId, ModelId};
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
 /// What happened.
+/// Most new category values one `batch-accepted` entry lists per column:
+/// an entry must stay far below sled's blob threshold (a batch with 20,000
+/// new values listed them in 300 KiB), and the rest are in the vocabulary.
+pub const NEW_VALUES_LISTED: usize = 100;
+
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case")]
 pub enum Event {
@@ -40,9 +45,17 @@ pub enum Event {
         rows: u64,
         train_rows: u64,
         holdout_rows: u64,
-        /// Category values seen for the first time, per column.
+        /// Category values seen for the first time, per column, in the
+        /// order first seen: all of them, or the first
+        /// [`NEW_VALUES_LISTED`] when there are more.
         #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
         new_categories: BTreeMap<String, Vec<String>>,
+        /// How many values were new, for each column whose list above was
+        /// cut. The full list is the column's vocabulary: its codes from
+        /// (vocabulary size before the batch) on, written in the same
+        /// transaction as this entry.
+        #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+        new_category_counts: BTreeMap<String, u64>,
         /// Each column against the stored training rows (absent for the
         /// first batch).
         #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -620,6 +633,7 @@ impl Event {
                 train_rows,
                 holdout_rows,
                 new_categories,
+                new_category_counts,
                 drift,
                 suspect,
                 ..
@@ -629,6 +643,10 @@ impl Event {
                 );
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
+                    if let Some(n) = new_category_counts.get(col) {
+                        let more = n.saturating_sub(values.len() as u64);
+                        s.push_str(&format!(" and {more} more ({n} new values)"));
+                    }
                 }
                 if let Some(line) = drift.as_ref().and_then(|d| d.summary()) {
                     s.push_str(&format!("; {line}"));

@@ -288,6 +288,7 @@ pub(crate) mod fixtures {
             train_rows: 8,
             holdout_rows: 2,
             new_categories: Default::default(),
+            new_category_counts: Default::default(),
             drift: None,
             suspect: suspect.then(flagged),
         }

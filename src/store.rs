@@ -837,7 +837,18 @@ impl Store {
         let new_categories: BTreeMap<String, Vec<String>> = batch
             .new_categories
             .iter()
-            .map(|(c, v)| (names(c), v.clone()))
+            .map(|(c, v)| {
+                (
+                    names(c),
+                    v[..v.len().min(audit::NEW_VALUES_LISTED)].to_vec(),
+                )
+            })
+            .collect();
+        let new_category_counts: BTreeMap<String, u64> = batch
+            .new_categories
+            .iter()
+            .filter(|(_, v)| v.len() > audit::NEW_VALUES_LISTED)
+            .map(|(c, v)| (names(c), v.len() as u64))
             .collect();
         let event = Event::BatchAccepted {
             batch: id,
@@ -847,6 +858,7 @@ impl Store {
             train_rows: batch.train.n_rows() as u64,
             holdout_rows: batch.holdout.n_rows() as u64,
             new_categories,
+            new_category_counts,
             drift,
             suspect: suspect.clone(),
         };

@@ -26,8 +26,12 @@ pub struct Summary {
     pub holdout_rows: u64,
     pub refused_files: u64,
     pub duplicate_files: u64,
-    /// Category values per column, in order of first appearance.
+    /// Category values per column, in order of first appearance, as the
+    /// log lists them (a `batch-accepted` entry lists at most
+    /// `audit::NEW_VALUES_LISTED` per column).
     pub vocabularies: BTreeMap<String, Vec<String>>,
+    /// How many values each column has.
+    pub vocabulary_sizes: BTreeMap<String, u64>,
     pub audit_entries: u64,
     /// The serving model according to the log.
     pub serving: Option<crate::ids::ModelId>,
@@ -98,6 +102,7 @@ impl Summary {
                     train_rows,
                     holdout_rows,
                     new_categories,
+                    new_category_counts,
                     drift,
                     suspect,
                     ..
@@ -132,6 +137,10 @@ impl Summary {
                             .entry(col.clone())
                             .or_default()
                             .extend(values.iter().cloned());
+                        *s.vocabulary_sizes.entry(col.clone()).or_default() += new_category_counts
+                            .get(col)
+                            .copied()
+                            .unwrap_or(values.len() as u64);
                     }
                 }
                 Event::BatchSetAside { batch, reason } => {
@@ -385,13 +394,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             .cloned()
             .collect::<Vec<_>>()
             .join(", ");
-        if values.len() > SHOWN {
-            list.push_str(&format!(", … {} more", values.len() - SHOWN));
+        let size = summary
+            .vocabulary_sizes
+            .get(col)
+            .copied()
+            .unwrap_or(values.len() as u64);
+        if size > SHOWN as u64 {
+            list.push_str(&format!(", … {} more", size - SHOWN as u64));
         }
-        out.push_str(&format!(
-            "vocabulary  {col}: {} values ({list})\n",
-            values.len()
-        ));
+        out.push_str(&format!("vocabulary  {col}: {size} values ({list})\n"));
     }
     out.push_str("\nrecent events\n");
     let rows: Vec<Vec<String>> = recent
@@ -468,6 +479,7 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: cats.clone(),
+                new_category_counts: BTreeMap::new(),
                 drift: None,
                 suspect: None,
             },
@@ -490,7 +502,9 @@ mod tests {
                 rows: 5,
                 train_rows: 4,
                 holdout_rows: 1,
-                new_categories: BTreeMap::new(),
+                // A list cut at the cap: 250 new values, one listed.
+                new_categories: [("shop".to_string(), vec!["Harbour".to_string()])].into(),
+                new_category_counts: [("shop".to_string(), 250)].into(),
                 drift: None,
                 suspect: None,
             },
@@ -506,6 +520,7 @@ mod tests {
             (2, 15, 12, 3)
         );
         assert_eq!((s.refused_files, s.duplicate_files), (1, 1));
-        assert_eq!(s.vocabularies, cats);
+        assert_eq!(s.vocabularies["shop"], ["Quay", "Harbour"]);
+        assert_eq!(s.vocabulary_sizes["shop"], 251);
     }
 }

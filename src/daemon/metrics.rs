@@ -404,6 +404,7 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: Default::default(),
+                new_category_counts: Default::default(),
                 drift: None,
                 suspect: None,
             },

@@ -393,6 +393,7 @@ mod tests {
             train_rows: rows - 1,
             holdout_rows: 1,
             new_categories: BTreeMap::new(),
+            new_category_counts: Default::default(),
             drift: None,
             suspect: None,
         }

@@ -697,3 +697,41 @@ fn a_bad_row_deep_in_a_large_file_is_reported_at_its_own_line() {
     assert!(message.contains("warm"), "{message}");
     assert_eq!(stored_rows(&env), 0);
 }
+
+#[test]
+fn twenty_thousand_new_category_values_leave_sled_no_blob_files() {
+    // Every value sled keeps must stay under its blob threshold, or sled
+    // writes it to a blob file it never fsyncs: the audit entry of a batch
+    // that brings 20,000 new values must not carry them all.
+    let (dir, env) = large_files();
+    let mut text = String::from("id,city,temp,flag,y\n");
+    for i in 0..20_000 {
+        text.push_str(&format!(
+            "{i},a-rather-long-city-name-{i:05},{}.5,,{}.25\n",
+            i % 30,
+            i % 13
+        ));
+    }
+    let file = dir.path().join("many-cities.csv");
+    fs::write(&file, &text).unwrap();
+    let out = env.ingest(std::slice::from_ref(&file));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let blobs = env.state().join("store/blobs");
+    let count = fs::read_dir(&blobs).map(|d| d.count()).unwrap_or(0);
+    assert_eq!(count, 0, "sled wrote {count} blob files");
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    let e = &accepted[0];
+    assert_eq!(e["new_category_counts"]["city"], 20_000, "{e}");
+    // The entry lists the first values in the order first seen; the full
+    // list is the vocabulary, written in the same transaction.
+    let listed = e["new_categories"]["city"].as_array().unwrap();
+    assert_eq!(listed.len(), tidegate::audit::NEW_VALUES_LISTED);
+    assert_eq!(listed[0], "a-rather-long-city-name-00000");
+    assert_eq!(listed[99], "a-rather-long-city-name-00099");
+    let log = stdout(&env.run(&["log", "--kind", "batch-accepted"]));
+    assert!(log.contains("and 19900 more (20000 new values)"), "{log}");
+    let status = stdout(&env.run(&["status"]));
+    assert!(status.contains("city: 20000 values"), "{status}");
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+}
