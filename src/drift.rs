@@ -595,8 +595,12 @@ pub fn category_drift<K: Ord>(
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Measure {
-    /// Two-sample Kolmogorov–Smirnov D of a number column.
+    /// Two-sample Kolmogorov–Smirnov D of a number column (entries and
+    /// histories written before the Wasserstein distance).
     KsD,
+    /// Wasserstein-1 distance of a number column in units of the stored
+    /// rows' standard deviation.
+    W1,
     /// Total variation distance ½·Σ|p_ref − p_batch| of a category column,
     /// over the values the store knew before the batch.
     Tv,
@@ -606,6 +610,7 @@ impl Measure {
     pub fn label(self) -> &'static str {
         match self {
             Measure::KsD => "KS D",
+            Measure::W1 => "W1/sd",
             Measure::Tv => "TV",
         }
     }
@@ -630,16 +635,58 @@ pub struct Measured {
     pub day_level: bool,
 }
 
-/// KS D and PSI of a number column (missing values removed by the caller).
+/// The Wasserstein-1 distance between two samples: the area between their
+/// empirical distribution functions, ∫|F_a − F_b| dx (Vallender 1973, for
+/// the one-dimensional case).
+///
+/// Errors: an empty sample or a non-finite value.
+pub fn wasserstein_1(a: &[f64], b: &[f64]) -> Result<f64, DriftError> {
+    check_sample("reference", a)?;
+    check_sample("batch", b)?;
+    let (a, b) = (sorted_copy(a), sorted_copy(b));
+    let (n, m) = (a.len() as f64, b.len() as f64);
+    let (mut i, mut j) = (0, 0);
+    let mut total = 0.0;
+    let mut previous = a[0].min(b[0]);
+    while i < a.len() || j < b.len() {
+        let x = if j >= b.len() || (i < a.len() && a[i] <= b[j]) {
+            a[i]
+        } else {
+            b[j]
+        };
+        // Both distribution functions are flat on [previous, x).
+        total += (i as f64 / n - j as f64 / m).abs() * (x - previous);
+        while i < a.len() && a[i] == x {
+            i += 1;
+        }
+        while j < b.len() && b[j] == x {
+            j += 1;
+        }
+        previous = x;
+    }
+    Ok(total)
+}
+
+/// The judged distance of a number column and its PSI (missing values
+/// removed by the caller): the Wasserstein-1 distance in units of the
+/// stored rows' standard deviation.
+///
+/// Not the KS D it replaced: KS D cannot exceed 1, and a day-level column
+/// (the day's temperature) already sits near 1 on ordinary nights (the
+/// demo: usual 0.56, highest 0.96), so a heatwave 18 °C above anything
+/// stored could not stand out. W1 grows with the size of the move.
 ///
 /// Errors: an empty reference or batch, or a non-finite value.
 pub fn measure_numbers(reference: &[f64], batch: &[f64]) -> Result<Measured, DriftError> {
-    let ks = ks_two_sample(reference, batch)?;
+    let w1 = wasserstein_1(reference, batch)?;
     let psi = psi_samples(reference, batch, PSI_DEFAULT_BINS)?;
+    let n = reference.len() as f64;
+    let mean = reference.iter().sum::<f64>() / n;
+    let sd = (reference.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / n).sqrt();
     let day_level = batch.windows(2).all(|w| w[0] == w[1]);
     Ok(Measured {
-        measure: Measure::KsD,
-        distance: Some(ks.d),
+        measure: Measure::W1,
+        distance: Some(if sd > 1e-12 { w1 / sd } else { w1 }),
         psi: Some(psi.value),
         new_share: 0.0,
         day_level,
@@ -1208,6 +1255,12 @@ pub fn batch_report(
             ColumnKind::Number => "number",
             ColumnKind::Category => "category",
         };
+        // A history of one measure only: number columns' distances were KS
+        // D under the kind "number", and start afresh as "number-w1".
+        let history_kind = match col.kind {
+            ColumnKind::Number => "number-w1",
+            ColumnKind::Category => "category",
+        };
         let mut report = ColumnReport {
             column: col.name.clone(),
             kind: kind.into(),
@@ -1263,10 +1316,10 @@ pub fn batch_report(
             Ok(m) => {
                 let mut mine = past
                     .get(&col.name)
-                    .filter(|p| p.kind == kind)
+                    .filter(|p| p.kind == history_kind)
                     .cloned()
                     .unwrap_or_else(|| PastDistances {
-                        kind: kind.into(),
+                        kind: history_kind.into(),
                         d: Vec::new(),
                     });
                 let j = judge(&mine.d, m.distance, m.measure, rule);
@@ -1741,11 +1794,49 @@ mod tests {
         let reference: Vec<f64> = (0..100).map(f64::from).collect();
         let m = measure_numbers(&reference, &[42.0; 30]).unwrap();
         assert!(m.day_level);
-        assert_eq!(m.measure, Measure::KsD);
-        // ECDF gap at 42: reference 43/100 at or below, batch 1 -> 0.57.
-        assert!(close(m.distance.unwrap(), 0.57, 1e-12));
+        assert_eq!(m.measure, Measure::W1);
+        // W1 to a point mass at 42 is the mean |k − 42| over 0..99:
+        // (42·43/2 + 57·58/2)/100 = 25.56, over the population sd
+        // sqrt((100² − 1)/12).
+        let sd = ((100.0f64 * 100.0 - 1.0) / 12.0).sqrt();
+        assert!(close(m.distance.unwrap(), 25.56 / sd, 1e-12));
         let m = measure_numbers(&reference, &[1.0, 2.0]).unwrap();
         assert!(!m.day_level);
+    }
+
+    #[test]
+    fn wasserstein_distance_by_hand() {
+        // A shift by c moves every quantile by c: W1 = c.
+        assert!(close(
+            wasserstein_1(&[0.0, 1.0, 2.0, 3.0], &[1.0, 2.0, 3.0, 4.0]).unwrap(),
+            1.0,
+            1e-12
+        ));
+        // {0} against {0, 1}: the distribution functions differ by 1/2 on
+        // [0, 1).
+        assert!(close(
+            wasserstein_1(&[0.0], &[0.0, 1.0]).unwrap(),
+            0.5,
+            1e-12
+        ));
+        assert!(close(
+            wasserstein_1(&[0.0, 1.0], &[0.0]).unwrap(),
+            0.5,
+            1e-12
+        ));
+        assert_eq!(wasserstein_1(&[2.0, 5.0], &[5.0, 2.0]).unwrap(), 0.0);
+        assert!(wasserstein_1(&[], &[1.0]).is_err());
+        assert!(wasserstein_1(&[f64::NAN], &[1.0]).is_err());
+        // Unbounded, unlike KS D: a far larger move gives a far larger
+        // distance.
+        let base: Vec<f64> = (0..50).map(f64::from).collect();
+        let near: Vec<f64> = base.iter().map(|x| x + 60.0).collect();
+        let far: Vec<f64> = base.iter().map(|x| x + 600.0).collect();
+        let (dn, df) = (
+            wasserstein_1(&base, &near).unwrap(),
+            wasserstein_1(&base, &far).unwrap(),
+        );
+        assert!(close(dn, 60.0, 1e-9) && close(df, 600.0, 1e-9), "{dn} {df}");
     }
 
     // --- the rule ---------------------------------------------------------
@@ -2229,13 +2320,15 @@ mod tests {
                 .filter(|s| s.night <= rule.min_batches)
                 .all(|s| s.verdict != Verdict::Drift)
         );
-        // The day-level columns are not flagged night after night.
+        // The day-level columns are not flagged night after night: at most
+        // 2% of nights each (measured: temp_c on 5 of 390 with W1/sd, 4
+        // with KS D).
         for col in ["weekday", "temp_c"] {
             let n = all
                 .iter()
                 .filter(|s| s.column == col && s.verdict == Verdict::Drift)
                 .count();
-            assert!(n <= 4, "{col} flagged on {n} of 390 nights");
+            assert!(n * 50 <= 390, "{col} flagged on {n} of 390 nights");
         }
     }
 
