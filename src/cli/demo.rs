@@ -108,6 +108,21 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                         shops.join(", ")
                     ));
                 }
+                if let crate::audit::Event::BatchAccepted {
+                    drift: Some(report),
+                    ..
+                } = &entry.event
+                {
+                    let flagged = report.flagged();
+                    if !flagged.is_empty() {
+                        events.push(format!(
+                            "{}: drift in {}: far from the stored rows, by more than any past \
+                             night; reported, no model is blamed",
+                            night.file,
+                            flagged.join(", ")
+                        ));
+                    }
+                }
                 waiting_rows += batch.rows();
                 if let Some(found) = fresh::check_batch(&mut owner, batch.id, &user)? {
                     let ev = &found.evidence;
