@@ -20,12 +20,12 @@ use crate::ids::{AuditSeq, BatchId, ModelId};
 /// `prev` of the first entry.
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
-/// What happened.
 /// Most new category values one `batch-accepted` entry lists per column:
 /// an entry must stay far below sled's blob threshold (a batch with 20,000
 /// new values listed them in 300 KiB), and the rest are in the vocabulary.
 pub const NEW_VALUES_LISTED: usize = 100;
 
+/// What happened.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case")]
 pub enum Event {

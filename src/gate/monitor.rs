@@ -45,9 +45,10 @@
 //!   first batch and 0.3/((s−1)s) after it (Σ π_s = 1). Each E_{s,n} is
 //!   bounded by a test martingale that is 1 before s, so the mixture is
 //!   too, and Ville's bound still holds (the sum runs over the first and
-//!   the 30 most recent starts; fewer terms only lower it). A model that was fine on its first
-//!   nights and turns worse later (the world changed under it) is judged on
-//!   the batches since the change, at a price of ln(1/π_s).
+//!   the 30 most recent starts; fewer terms only lower it). A model that
+//!   was fine on its first nights and turns worse later (the world changed
+//!   under it) is judged on the batches since the change, at a price of
+//!   ln(1/π_s).
 //!
 //! Assumptions (stated in the README): batch means are close to normal
 //! (each is a mean of many rows), w_b is known (estimated from the batch's
@@ -246,7 +247,7 @@ pub fn ln_numerator(prior: &Prior, obs: &[Observation]) -> f64 {
 /// the first).
 const RECENT_STARTS: usize = 30;
 
-/// Weight of the evidence that starts at batch `s` (1-based): 1/2 for the
+/// Weight of the evidence that starts at batch `s` (1-based): 0.7 for the
 /// first, 0.3/((s−1)s) after it; they sum to 1.
 fn start_weight(s: usize) -> f64 {
     if s <= 1 {

@@ -777,10 +777,6 @@ impl Model {
         }
     }
 
-    /// Loss of every row: squared error in the target's units for
-    /// regression, cross-entropy −ln p(true class) for classification (at
-    /// most `MAX_ROW_LOG_LOSS`, also for a class the model has no output
-    /// for). The gate compares these row by row between two models.
     /// Regression: target − prediction of every row, in the target's units,
     /// from the same pass `row_losses` makes (each loss is the square);
     /// `None` for classification.
@@ -805,6 +801,10 @@ impl Model {
         ))
     }
 
+    /// Loss of every row: squared error in the target's units for
+    /// regression, cross-entropy −ln p(true class) for classification (at
+    /// most `MAX_ROW_LOG_LOSS`, also for a class the model has no output
+    /// for). The gate compares these row by row between two models.
     pub fn row_losses(&self, rows: &RowMatrix, backend: Backend) -> Result<Vec<f64>, ModelError> {
         let targets = self.spec.encode_targets(rows);
         if let Some(row) = targets.iter().position(|t| t.is_nan()) {

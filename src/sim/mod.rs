@@ -260,10 +260,9 @@ impl Run {
 
 /// Makes the serving model `factor` times worse on the stored holdout rows
 /// (a seeded random perturbation of how it reads the first category
-/// column, grown until the mean
-/// holdout loss is `factor` times its own), saves it as a new version and
-/// promotes it with the old one as its predecessor, as if the gate had
-/// passed it. Returns the new model's id.
+/// column, grown until the mean holdout loss is `factor` times its own),
+/// saves it as a new version and promotes it with the old one as its
+/// predecessor, as if the gate had passed it. Returns the new model's id.
 pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<ModelId> {
     let serving = owner
         .store
