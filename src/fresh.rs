@@ -138,15 +138,15 @@ pub struct MonitorState {
 }
 
 impl MonitorState {
-    /// Binary layout: serving id (8), previous id (8, 0 = none), θ, floor,
-    /// τ² (f64 each), then x, w, ln numerator per observation.
+    /// Binary layout: serving id (8), previous id (8, 0 = none), τ² (f64),
+    /// the layout's version ([`MONITOR_LAYOUT`], u64), then x, w, ln
+    /// numerator per observation (f64 each).
     pub fn encode(&self) -> Vec<u8> {
-        let mut out = Vec::with_capacity(40 + 24 * self.observations.len());
+        let mut out = Vec::with_capacity(MONITOR_HEADER + 24 * self.observations.len());
         out.extend_from_slice(&self.serving.key());
         out.extend_from_slice(&self.previous.map_or([0; 8], |p| p.key()));
-        for v in [self.prior.theta, self.prior.floor, self.prior.tau2] {
-            out.extend_from_slice(&v.to_le_bytes());
-        }
+        out.extend_from_slice(&self.prior.tau2.to_le_bytes());
+        out.extend_from_slice(&MONITOR_LAYOUT.to_le_bytes());
         let skip = self.observations.len().saturating_sub(MONITOR_MAX_BATCHES);
         for o in &self.observations[skip..] {
             for v in [o.x, o.w, o.log_numerator] {
@@ -156,21 +156,25 @@ impl MonitorState {
         out
     }
 
+    /// `None` for bytes of another layout. A state written before the
+    /// monitor observed log loss ratios (a 40-byte header: θ, floor and τ²
+    /// of loss differences) does not decode: its observations are in other
+    /// units, so the monitor starts afresh from the log
+    /// ([`compared_with`]), which also knows a model back by a rollback.
     pub fn decode(bytes: &[u8]) -> Option<MonitorState> {
-        if bytes.len() < 40 || !(bytes.len() - 40).is_multiple_of(24) {
+        if bytes.len() < MONITOR_HEADER || !(bytes.len() - MONITOR_HEADER).is_multiple_of(24) {
             return None;
         }
         let f = |at: usize| -> f64 {
             f64::from_le_bytes(bytes[at..at + 8].try_into().expect("8 bytes"))
         };
+        let layout = u64::from_le_bytes(bytes[24..32].try_into().expect("8 bytes"));
+        if layout != MONITOR_LAYOUT {
+            return None;
+        }
         let serving = ModelId::from_key(&bytes[0..8])?;
         let previous = ModelId::from_key(&bytes[8..16]).filter(|p| p.0 != 0);
-        let prior = Prior {
-            theta: f(16),
-            floor: f(24),
-            tau2: f(32),
-        };
-        let observations = (40..bytes.len())
+        let observations = (MONITOR_HEADER..bytes.len())
             .step_by(24)
             .map(|at| Observation {
                 x: f(at),
@@ -181,11 +185,17 @@ impl MonitorState {
         Some(MonitorState {
             serving,
             previous,
-            prior,
+            prior: Prior { tau2: f(16) },
             observations,
         })
     }
 }
+
+/// Version of the monitor's stored layout: 2 since the monitor observes
+/// log loss ratios.
+const MONITOR_LAYOUT: u64 = 2;
+/// Bytes before the observations.
+const MONITOR_HEADER: usize = 32;
 
 fn encode_levels(levels: &[f64]) -> Vec<u8> {
     let skip = levels.len().saturating_sub(LEVEL_HISTORY);
@@ -627,9 +637,7 @@ pub fn check_batch(
                     MonitorState {
                         serving,
                         previous: Some(*p),
-                        // Log loss ratios: the guess is on their own
-                        // scale (a fifth: about 22% more loss).
-                        prior: Prior::for_loss(1.0, tau2),
+                        prior: Prior::new(tau2),
                         observations: Vec::new(),
                     }
                 }
@@ -656,7 +664,7 @@ pub fn check_batch(
             let state = MonitorState {
                 serving,
                 previous: None,
-                prior: Prior::for_loss(1.0, 0.0),
+                prior: Prior::new(0.0),
                 observations: Vec::new(),
             };
             meta.push((META_MONITOR.to_vec(), Some(state.encode())));
@@ -1061,11 +1069,7 @@ mod tests {
         let mut state = MonitorState {
             serving: ModelId(7),
             previous: Some(ModelId(3)),
-            prior: Prior {
-                theta: 0.2,
-                floor: 0.02,
-                tau2: 0.001,
-            },
+            prior: Prior::new(0.001),
             observations: (0..10)
                 .map(|i| Observation {
                     x: i as f64 * 0.1,
@@ -1085,6 +1089,17 @@ mod tests {
             MONITOR_MAX_BATCHES
         );
         assert_eq!(MonitorState::decode(&bytes[..30]), None);
+        // The layout before log ratios (θ, floor, τ² after the ids; no
+        // version): its observations are differences of losses, so it
+        // does not decode and the monitor starts afresh.
+        let mut old = Vec::new();
+        old.extend_from_slice(&ModelId(7).key());
+        old.extend_from_slice(&ModelId(3).key());
+        for v in [9.0f64, 0.9, 4.0, 12.0, 1.0, -2.0] {
+            old.extend_from_slice(&v.to_le_bytes());
+        }
+        assert_eq!(old.len(), 40 + 24);
+        assert_eq!(MonitorState::decode(&old), None);
     }
 
     #[test]

@@ -28,12 +28,12 @@
 //! how fast a true regression is caught, so it is built to be robust:
 //!
 //! - **q is a Bayesian marginal likelihood**, a mixture over the day-to-day
-//!   variance τ² and over the scale of a normal prior on θ (mean a fifth of
-//!   the reference loss). Most weight goes to the plug-in τ̂² from how the
-//!   two models' differences varied across the stored holdout batches
-//!   ([`PLUGIN_COMPONENTS`]); the rest is spread over a log grid of τ from
-//!   0.03 to 1 times the reference scale, each with a prior sd of θ of
-//!   once that scale ([`TAU_GRID`], [`THETA_SDS`]). A mixture of joint
+//!   variance τ² and over the scale of a normal prior on θ (mean
+//!   [`GUESS`], a log ratio of 0.2). Most weight goes to the plug-in τ̂²
+//!   from how the two models' log ratios varied across the stored holdout
+//!   batches ([`PLUGIN_COMPONENTS`]); the rest is spread over a log grid of
+//!   τ from 0.03 to 1, each with a prior sd of θ of 1 ([`TAU_GRID`],
+//!   [`THETA_SDS`]). A mixture of joint
 //!   densities is a joint density, so the argument above holds. The plug-in
 //!   alone was not robust: when the day-to-day spread of the differences
 //!   turned out far larger than on the holdout batches, every batch cost
@@ -60,41 +60,34 @@ use super::show;
 /// One fresh batch as the monitor keeps it.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Observation {
-    /// Mean of loss(serving) − loss(previous) over the batch's tested rows.
+    /// ln(mean loss of the serving model / mean loss of the previous one)
+    /// over the batch's tested rows.
     pub x: f64,
-    /// Variance of that mean from the rows of the batch (s² / n).
+    /// Variance of that log ratio from the rows of the batch (delta method).
     pub w: f64,
-    /// ln N(x; θ̂, w + τ̂²) with the plug-ins fixed before x was seen.
+    /// The batch's factor of the numerator q given the batches before it.
     pub log_numerator: f64,
 }
 
-/// The plug-ins chosen when a model's monitoring starts.
+/// The regression the monitor bets on first: a log loss ratio of 0.2,
+/// about 22% more loss (common practice, no source: a size worth acting
+/// on).
+pub const GUESS: f64 = 0.2;
+
+/// The plug-in chosen when a model's monitoring starts.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Prior {
-    /// Size of regression the first batch is compared against (> 0).
-    pub theta: f64,
-    /// A tenth of `theta`; kept in the stored layout of the monitor, no
-    /// longer used by the evidence.
-    pub floor: f64,
-    /// Day-to-day variance of batch mean differences (≥ 0).
+    /// Day-to-day variance of the batch log ratios, measured on the stored
+    /// holdout batches (≥ 0).
     pub tau2: f64,
 }
 
 impl Prior {
-    /// The prior for a pair of models whose predecessor has mean loss
-    /// `reference_loss` on stored holdout rows, and whose per-batch mean
-    /// differences there varied with day-to-day variance `tau2`.
-    /// Regressions of about a fifth of the loss are the ones to catch
-    /// quickly (common practice, no source: a size worth acting on).
-    pub fn for_loss(reference_loss: f64, tau2: f64) -> Prior {
-        let scale = if reference_loss.is_finite() && reference_loss > 0.0 {
-            reference_loss
-        } else {
-            1.0
-        };
+    /// The prior for a pair of models whose per-batch log loss ratios on
+    /// the stored holdout batches varied with day-to-day variance `tau2`
+    /// (a value that is not finite counts as 0).
+    pub fn new(tau2: f64) -> Prior {
         Prior {
-            theta: 0.2 * scale,
-            floor: 0.02 * scale,
             tau2: if tau2.is_finite() { tau2.max(0.0) } else { 0.0 },
         }
     }
@@ -176,9 +169,9 @@ fn ln_null_max(obs: &[Observation]) -> f64 {
 }
 
 /// The numerator's components that use the plug-in τ̂² from the stored
-/// holdout batches: (sd of the normal prior on θ in units of the reference
-/// loss, weight). The narrow one bets on a regression near the guess (a
-/// fifth of the loss), the wide one on any size up to about twice the loss.
+/// holdout batches: (sd of the normal prior on θ around [`GUESS`], weight),
+/// on the log-ratio scale. The narrow one bets on a regression near the
+/// guess, the wide one on any size up to a loss several times higher.
 pub const PLUGIN_COMPONENTS: [(f64, f64); 2] = [(0.05, 0.5), (1.0, 0.1)];
 /// The robust components share the remaining weight equally: every
 /// day-to-day sd of [`TAU_GRID`] with every prior scale of [`THETA_SDS`].
@@ -186,7 +179,7 @@ pub const PLUGIN_COMPONENTS: [(f64, f64); 2] = [(0.05, 0.5), (1.0, 0.1)];
 /// ln 2 of evidence, and a grid of 45 cost a model four times worse its
 /// rollback (common practice, no source: a coarse scale mixture).
 pub const THETA_SDS: [f64; 1] = [1.0];
-/// Day-to-day sd of the differences in units of the reference loss.
+/// Day-to-day sd of the log ratios.
 pub const TAU_GRID: [f64; 4] = [0.03, 0.1, 0.3, 1.0];
 
 /// ln Σ e^{v}, without overflow; −∞ for an empty list.
@@ -221,23 +214,16 @@ pub fn ln_numerator(prior: &Prior, obs: &[Observation]) -> f64 {
     if obs.is_empty() {
         return 0.0;
     }
-    // The prior's θ is a fifth of the reference loss.
-    let scale = if prior.theta.is_finite() && prior.theta > 0.0 {
-        prior.theta / 0.2
-    } else {
-        1.0
-    };
     let tau2 = prior.tau2.max(0.0);
     let robust_weight = (1.0 - PLUGIN_COMPONENTS.iter().map(|c| c.1).sum::<f64>())
         / (TAU_GRID.len() * THETA_SDS.len()) as f64;
     let plugin = PLUGIN_COMPONENTS
         .iter()
-        .map(|(sd, wt)| wt.ln() + ln_marginal(obs, tau2, prior.theta, sd * scale));
+        .map(|(sd, wt)| wt.ln() + ln_marginal(obs, tau2, GUESS, *sd));
     let robust = TAU_GRID.iter().flat_map(|t| {
-        let tau2 = (t * scale) * (t * scale);
         THETA_SDS
             .iter()
-            .map(move |sd| robust_weight.ln() + ln_marginal(obs, tau2, prior.theta, sd * scale))
+            .map(move |sd| robust_weight.ln() + ln_marginal(obs, t * t, GUESS, *sd))
     });
     let terms: Vec<f64> = plugin.chain(robust).collect();
     ln_sum_exp(terms.into_iter())
@@ -423,7 +409,7 @@ mod tests {
         (0..runs)
             .map(|_| {
                 let batches = stream(rng, n, theta, tau, within_sd);
-                run(&Prior::for_loss(1.0, tau * tau), &batches, 0.05)
+                run(&Prior::new(tau * tau), &batches, 0.05)
             })
             .collect()
     }
@@ -445,7 +431,7 @@ mod tests {
         for life in 0..lives {
             let theta = if life % 2 == 0 { 0.0 } else { -0.05 };
             let batches = stream(&mut rng, 60, theta, 0.1, 0.1);
-            let prior = Prior::for_loss(1.0, 0.0025);
+            let prior = Prior::new(0.0025);
             if run(&prior, &batches, alpha).is_some() {
                 false_rollbacks += 1;
             }
@@ -480,7 +466,7 @@ mod tests {
         let mut rng = Rng::new(14);
         let mut caught = Vec::new();
         for _ in 0..200 {
-            let prior = Prior::for_loss(1.0, 0.0004);
+            let prior = Prior::new(0.0004);
             let mut batches = vec![(-2.0, 0.002)];
             batches.extend((0..8).map(|_| (1.4 + 0.2 * rng.normal(), 0.002)));
             caught.push(run(&prior, &batches, 0.05).map(|n| n - 1));
@@ -509,7 +495,7 @@ mod tests {
 
     #[test]
     fn evidence_is_bounded_by_its_null_fit_and_needs_a_positive_mean() {
-        let prior = Prior::for_loss(1.0, 0.0);
+        let prior = Prior::new(0.0);
         let mut obs = Vec::new();
         for x in [-0.3, -0.2, -0.4] {
             let o = observe(&prior, &obs, x, 0.01);

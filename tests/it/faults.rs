@@ -261,9 +261,9 @@ fn promote_with_evidence_of_regression(env: &Env) -> (u64, u64) {
     .unwrap();
     let serving = store.serving().unwrap().unwrap();
     let other = ModelId(if serving.0 == 1 { 2 } else { 1 });
-    // A day-to-day variance of 0.05, so that one ordinary batch (a
-    // difference near 0) does not outweigh thirty bad ones.
-    let prior = Prior::for_loss(1.0, 0.05);
+    // A day-to-day variance of 0.05, so that one ordinary batch (a log
+    // ratio near 0) does not outweigh thirty bad ones (e times the loss).
+    let prior = Prior::new(0.05);
     let mut observations = Vec::new();
     for _ in 0..30 {
         observations.push(monitor::observe(&prior, &observations, 1.0, 1e-4));

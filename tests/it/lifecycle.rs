@@ -649,8 +649,8 @@ fn worse_serving(env: &Env, factor: f64) -> u64 {
 
 /// Promotes a copy of the serving model made `factor` times worse (as
 /// [`worse_serving`]) and records, in the same transaction, a fresh-data
-/// monitor that has already seen 30 batches on which it did half the
-/// reference loss worse than its predecessor: the evidence is far past
+/// monitor that has already seen 30 batches on which its loss was half
+/// again its predecessor's: the evidence is far past
 /// 1 / alpha, so the next fresh check decides on it. The monitor's power
 /// (how many nights real evidence takes) is measured in `gate::monitor` and
 /// `sim`; this sets up what the check must then do. Returns (worse, before).
@@ -663,11 +663,11 @@ fn worse_with_evidence(env: &Env, factor: f64) -> (u64, u64) {
     let (mut owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
     let before = owner.store.serving().unwrap().unwrap();
     let worse = tidegate::sim::make_worse(&mut owner, factor, "tester").unwrap();
-    let loss = 50.0;
-    let prior = Prior::for_loss(loss, 1.0);
+    // Half the loss again: a log loss ratio of ln 1.5 on every batch.
+    let prior = Prior::new(0.01);
     let mut observations = Vec::new();
     for _ in 0..30 {
-        observations.push(monitor::observe(&prior, &observations, 0.5 * loss, 1.0));
+        observations.push(monitor::observe(&prior, &observations, 1.5f64.ln(), 1e-4));
     }
     let state = MonitorState {
         serving: worse,
