@@ -680,9 +680,11 @@ pub fn wasserstein_1(a: &[f64], b: &[f64]) -> Result<f64, DriftError> {
 pub fn measure_numbers(reference: &[f64], batch: &[f64]) -> Result<Measured, DriftError> {
     let w1 = wasserstein_1(reference, batch)?;
     let psi = psi_samples(reference, batch, PSI_DEFAULT_BINS)?;
-    let n = reference.len() as f64;
-    let mean = reference.iter().sum::<f64>() / n;
-    let sd = (reference.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / n).sqrt();
+    let mut stats = crate::schema::RunningStats::default();
+    for &x in reference {
+        stats.push(x);
+    }
+    let sd = stats.population_variance().sqrt();
     let day_level = batch.windows(2).all(|w| w[0] == w[1]);
     Ok(Measured {
         measure: Measure::W1,
