@@ -430,23 +430,21 @@ fn set_aside_and_bring_back_go_through_the_daemon_and_a_waiting_candidate_that_s
     assert_eq!(code(&out), 0, "{}{}", stdout(&out), stderr(&out));
     // The command's own refusals come back as they would directly, and
     // the daemon goes on.
-    let out = env.run(&["set-aside", "b000002", "--reason", "again"]);
-    assert_eq!(code(&out), 1);
-    assert!(
-        stderr(&out).contains("b000002 is already set aside"),
-        "{}",
-        stderr(&out)
+    env.refused(
+        &["set-aside", "b000002", "--reason", "again"],
+        1,
+        "b000002 is already set aside",
     );
-    let out = env.run(&["set-aside", "b000009", "--reason", "x"]);
-    assert_eq!(code(&out), 1);
-    assert!(
-        stderr(&out).contains("no batch b000009"),
-        "{}",
-        stderr(&out)
+    env.refused(
+        &["set-aside", "b000009", "--reason", "x"],
+        1,
+        "no batch b000009",
     );
-    let out = env.run(&["bring-back", "b000001", "--reason", "x"]);
-    assert_eq!(code(&out), 1);
-    assert!(stderr(&out).contains("not set aside"), "{}", stderr(&out));
+    env.refused(
+        &["bring-back", "b000001", "--reason", "x"],
+        1,
+        "not set aside",
+    );
 
     // --json prints the audit entry, as directly.
     let out = env.run(&[
@@ -483,12 +481,10 @@ fn set_aside_and_bring_back_go_through_the_daemon_and_a_waiting_candidate_that_s
     assert_eq!(r["outcome"], "await-approval", "{r}");
     let out = env.run(&["set-aside", "b000002", "--reason", "late doubt"]);
     assert_eq!(code(&out), 0, "{}", stderr(&out));
-    let out = env.run(&["approve", "m000001", "--reason", "looks fine"]);
-    assert_eq!(code(&out), 1, "{}", stdout(&out));
-    assert!(
-        stderr(&out).contains("m000001 trained on b000002"),
-        "{}",
-        stderr(&out)
+    env.refused(
+        &["approve", "m000001", "--reason", "looks fine"],
+        1,
+        "m000001 trained on b000002",
     );
     assert_eq!(count_kind(&env, "approved"), 0);
     assert!(env.status_json()["summary"]["serving"].is_null());
