@@ -60,7 +60,7 @@ fn the_demo_tells_the_whole_story_and_leaves_a_state_that_verifies() {
     // A model promoted from the shortage nights must not keep serving.
     let promoted_in_shortage = nights.iter().any(|n| {
         let f = file(n);
-        f.as_str() >= "night-14"
+        f.as_str() >= "night-13"
             && f.as_str() < "night-18"
             && n["decision"].as_str().unwrap_or("").contains("promote")
     });
