@@ -43,6 +43,8 @@ use tidegate::state::{self, Owner, StateDir};
 const SEED: u64 = 20_261_202;
 const SHRINK: f64 = 0.8;
 const PERTURB: f64 = 0.05;
+/// Files the starting rows arrive in.
+const BASE_FILES: u64 = 10;
 
 fn copy_dir(from: &Path, to: &Path) -> std::io::Result<()> {
     std::fs::create_dir_all(to)?;
@@ -130,14 +132,29 @@ fn scale(dir: &Path, rows: u64, batches: u64) -> anyhow::Result<Summary> {
         println!("training keys set: {extra}");
     }
     let config = Config::parse(&text, &dir.join("bench.toml"))?;
-    let base = dir.join("base.csv");
-    stream::write_csv(&base, SEED, 0, rows)?;
+    // The starting rows arrive as several files: the gate takes batches as
+    // its unit of evidence and wants holdout rows from a few of them.
+    let base: Vec<std::path::PathBuf> = (0..BASE_FILES)
+        .map(|i| dir.join(format!("base-{i}.csv")))
+        .collect();
+    let per_file = rows / BASE_FILES;
+    for (i, file) in base.iter().enumerate() {
+        let start = i as u64 * per_file;
+        let n = if i as u64 + 1 == BASE_FILES {
+            rows - start
+        } else {
+            per_file
+        };
+        stream::write_csv(file, SEED, start, n)?;
+    }
 
     let warm_dir = StateDir::new(dir.join("warm"));
     let t = Instant::now();
     {
         let mut owner = state::create(&warm_dir, &config, &text, "bench")?;
-        take(&mut owner, &base)?;
+        for file in &base {
+            take(&mut owner, file)?;
+        }
         let r = decided(cycle::run(
             &mut owner,
             Options::default(),
@@ -167,8 +184,10 @@ fn scale(dir: &Path, rows: u64, batches: u64) -> anyhow::Result<Summary> {
     sp.config.training.perturb = PERTURB;
     let cold_dir = StateDir::new(dir.join("cold"));
     let mut cold = state::create(&cold_dir, &config, &text, "bench")?;
-    take(&mut cold, &base)?;
-    std::fs::remove_file(&base)?;
+    for file in &base {
+        take(&mut cold, file)?;
+        std::fs::remove_file(file)?;
+    }
 
     println!(
         "{:>5} {:>9} | {:>9} {:>9} {:>7} {:>8} | {:>9} {:>7} | {:>9} {:>7} | {:>7} {:>7} {:>7} {:>7}",

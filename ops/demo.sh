@@ -26,10 +26,10 @@ run retrain --cold
 run ingest demo-data/night-11.csv demo-data/night-12.csv
 run retrain
 run models
-run log --kind batch-rejected,batch-duplicate,promoted,kept
+run log --kind batch-refused,batch-duplicate,promoted,shelved
 echo; echo "\$ tidegate predict --input demo-data/night-12.csv | head -4"
 "$bin" --state "$state" predict --input demo-data/night-12.csv | head -4
 run verify
 echo
 echo "state dir: $state"
-echo "reasons for the refused file: $state/rejected/night-05.csv.why.json"
+echo "reasons for the refused file: $state/refused/night-05.csv.why.json"

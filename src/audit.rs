@@ -20,6 +20,11 @@ use crate::ids::{AuditSeq, BatchId, ModelId};
 /// `prev` of the first entry.
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
+/// Most new category values one `batch-accepted` entry lists per column:
+/// an entry must stay far below sled's blob threshold (a batch with 20,000
+/// new values listed them in 300 KiB), and the rest are in the vocabulary.
+pub const NEW_VALUES_LISTED: usize = 100;
+
 /// What happened.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case")]
@@ -40,16 +45,36 @@ pub enum Event {
         rows: u64,
         train_rows: u64,
         holdout_rows: u64,
-        /// Category values seen for the first time, per column.
+        /// Category values seen for the first time, per column, in the
+        /// order first seen: all of them, or the first
+        /// [`NEW_VALUES_LISTED`] when there are more.
         #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
         new_categories: BTreeMap<String, Vec<String>>,
+        /// How many values were new, for each column whose list above was
+        /// cut. The full list is the column's vocabulary: its codes from
+        /// (vocabulary size before the batch) on, written in the same
+        /// transaction as this entry.
+        #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+        new_category_counts: BTreeMap<String, u64>,
         /// Each column against the stored training rows (absent for the
         /// first batch).
         #[serde(default, skip_serializing_if = "Option::is_none")]
         drift: Option<crate::drift::BatchReport>,
+        /// The suspect-batch check (absent before it existed, and for the
+        /// first batch, which nothing can be compared with). A suspect
+        /// batch is stored and set aside in this same entry.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        suspect: Option<SuspectEvidence>,
     },
-    /// A file was refused; nothing from it was stored.
-    BatchRejected {
+    /// An operator set a stored batch aside: its rows stay stored and
+    /// archived, and nothing reads them until it is brought back.
+    BatchSetAside { batch: BatchId, reason: String },
+    /// An operator brought a batch that was set aside back into use.
+    BatchBroughtBack { batch: BatchId, reason: String },
+    /// A file was refused; nothing from it was stored. (Logs written
+    /// before the name was settled call it `batch-rejected`.)
+    #[serde(alias = "batch-rejected")]
+    BatchRefused {
         file: String,
         file_hash: String,
         problems: u64,
@@ -158,8 +183,11 @@ pub enum Event {
         previous: Option<ModelId>,
         evidence: GateEvidence,
     },
-    /// The gate kept the serving model; the candidate stays on disk.
-    Kept {
+    /// The candidate did not become the serving model and stays on disk,
+    /// unused (the gate kept the model that served). Logs written before
+    /// the name was settled call it `kept`.
+    #[serde(alias = "kept")]
+    Shelved {
         cycle: u64,
         model: ModelId,
         serving: Option<ModelId>,
@@ -193,6 +221,15 @@ pub enum Event {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         evidence: Option<FreshEvidence>,
     },
+    /// Refused files written by a version that kept them under another
+    /// folder name were moved to the folder refused files are written to
+    /// now. Entries before this one name the old folder in `kept_as`; the
+    /// same file name is now under `to`.
+    FolderRenamed {
+        from: String,
+        to: String,
+        files: u64,
+    },
     /// The model that now serves was written to the configured ONNX export
     /// file (right after the entry that made it serve).
     ModelExported {
@@ -205,6 +242,70 @@ pub enum Event {
         checkpoint_manifest_hash: String,
         opset: i64,
     },
+}
+
+/// The suspect-batch check's findings as written in the batch's entry.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SuspectEvidence {
+    /// The batch was found suspect and set aside.
+    pub suspect: bool,
+    /// What made it suspect, short (empty when it is not).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub why: Vec<String>,
+    /// Rows the pairing was judged on (rows with a new category value or
+    /// no target are left out).
+    pub rows: usize,
+    /// One judgement per reference model.
+    pub references: Vec<SuspectReference>,
+    /// Batch target root mean square / the stored rows' (regression).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub target_scale: Option<f64>,
+    /// Share of the batch's rows that are copies of its most common row.
+    #[serde(with = "number")]
+    pub copies_share: f64,
+    /// Every check's figures in words.
+    pub reason: String,
+}
+
+/// One reference model's pairing judgement on a batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SuspectReference {
+    /// "serving m000004", "predecessor m000003" or "ridge".
+    pub name: String,
+    /// "related", "unrelated" or "cannot-tell".
+    pub verdict: String,
+    /// Share of the shuffled-target loss the rows' own targets save.
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub explained: Option<f64>,
+    /// The same on earlier batches (median).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub usual_explained: Option<f64>,
+    /// ln(mean batch loss / mean holdout loss).
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub level: Option<f64>,
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub p: Option<f64>,
+    pub history: usize,
 }
 
 /// The fresh-data check's numbers as written in the log.
@@ -337,10 +438,14 @@ fn is_zero(n: &usize) -> bool {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct GateEvidence {
     /// What the candidate was compared with: "serving" or "trivial".
-    pub baseline: String,
+    /// (Logs written before the name was settled call it `baseline`, a word
+    /// now kept for the reference models of `baselines-scored`.)
+    #[serde(alias = "baseline")]
+    pub compared_with: String,
     pub rows: usize,
-    #[serde(with = "number")]
-    pub mean_loss_baseline: f64,
+    /// Mean holdout loss of the model the candidate was compared with.
+    #[serde(with = "number", alias = "mean_loss_baseline")]
+    pub mean_loss_compared_with: f64,
     #[serde(with = "number")]
     pub mean_loss_candidate: f64,
     #[serde(default, with = "maybe_number")]
@@ -379,13 +484,40 @@ pub struct GateEvidence {
     pub reason: String,
 }
 
+impl GateEvidence {
+    /// Evidence for a move that no test decided: a state built on purpose
+    /// by a simulation, a benchmark or a test. Compared with the serving
+    /// model on `rows` holdout rows; no statistic, p = 1.
+    pub fn without_test(rows: usize, before: f64, after: f64, reason: String) -> GateEvidence {
+        GateEvidence {
+            compared_with: "serving".into(),
+            rows,
+            mean_loss_compared_with: before,
+            mean_loss_candidate: after,
+            relative_improvement: (before > 0.0).then(|| (before - after) / before),
+            t: None,
+            p: 1.0,
+            batches: None,
+            batches_needed: None,
+            candidates: None,
+            p_unadjusted: None,
+            wilcoxon_p: None,
+            new_rows: 0,
+            old_rows: rows,
+            reason,
+        }
+    }
+}
+
 impl Event {
     /// The kebab-case kind name as written in the log.
     pub fn kind(&self) -> &'static str {
         match self {
             Event::Initialized { .. } => "initialized",
             Event::BatchAccepted { .. } => "batch-accepted",
-            Event::BatchRejected { .. } => "batch-rejected",
+            Event::BatchSetAside { .. } => "batch-set-aside",
+            Event::BatchBroughtBack { .. } => "batch-brought-back",
+            Event::BatchRefused { .. } => "batch-refused",
             Event::BatchDuplicate { .. } => "batch-duplicate",
             Event::CycleStarted { .. } => "cycle-started",
             Event::CandidateTrained { .. } => "candidate-trained",
@@ -396,12 +528,13 @@ impl Event {
             Event::SchemaMigrated { .. } => "schema-migrated",
             Event::Restored { .. } => "restored",
             Event::Promoted { .. } => "promoted",
-            Event::Kept { .. } => "kept",
+            Event::Shelved { .. } => "shelved",
             Event::AwaitingApproval { .. } => "awaiting-approval",
             Event::Approved { .. } => "approved",
             Event::Declined { .. } => "declined",
             Event::RolledBack { .. } => "rolled-back",
             Event::ModelExported { .. } => "model-exported",
+            Event::FolderRenamed { .. } => "folder-renamed",
         }
     }
 
@@ -409,7 +542,9 @@ impl Event {
     pub const KINDS: &'static [&'static str] = &[
         "initialized",
         "batch-accepted",
-        "batch-rejected",
+        "batch-set-aside",
+        "batch-brought-back",
+        "batch-refused",
         "batch-duplicate",
         "cycle-started",
         "candidate-trained",
@@ -420,20 +555,41 @@ impl Event {
         "restored",
         "schema-migrated",
         "promoted",
-        "kept",
+        "shelved",
         "awaiting-approval",
         "approved",
         "declined",
         "rolled-back",
         "model-exported",
+        "folder-renamed",
     ];
+
+    /// Kind names that older versions wrote, and what they are called now:
+    /// old logs read as the new kinds, and `log --kind` takes either.
+    pub const FORMER_KINDS: &'static [(&'static str, &'static str)] =
+        &[("batch-rejected", "batch-refused"), ("kept", "shelved")];
+    /// The serving pointer's move this event records, if any: the model
+    /// that serves from now, the one that served before it, and whether it
+    /// came back by a rollback (rather than a promotion or an approval).
+    pub fn arrival(&self) -> Option<(ModelId, Option<ModelId>, bool)> {
+        match self {
+            Event::Promoted {
+                model, previous, ..
+            }
+            | Event::Approved {
+                model, previous, ..
+            } => Some((*model, *previous, false)),
+            Event::RolledBack { from, to, .. } => Some((*to, Some(*from), true)),
+            _ => None,
+        }
+    }
 
     /// The model an event is about, if any.
     pub fn model(&self) -> Option<ModelId> {
         match self {
             Event::CandidateTrained { model, .. }
             | Event::Promoted { model, .. }
-            | Event::Kept { model, .. }
+            | Event::Shelved { model, .. }
             | Event::AwaitingApproval { model, .. }
             | Event::Approved { model, .. }
             | Event::Declined { model, .. }
@@ -447,7 +603,9 @@ impl Event {
     /// The batch an event is about, if any.
     pub fn batch(&self) -> Option<BatchId> {
         match self {
-            Event::BatchAccepted { batch, .. } => Some(*batch),
+            Event::BatchAccepted { batch, .. }
+            | Event::BatchSetAside { batch, .. }
+            | Event::BatchBroughtBack { batch, .. } => Some(*batch),
             Event::BatchDuplicate { duplicate_of, .. } => Some(*duplicate_of),
             Event::FreshChecked { check } => Some(check.batch),
             _ => None,
@@ -475,7 +633,9 @@ impl Event {
                 train_rows,
                 holdout_rows,
                 new_categories,
+                new_category_counts,
                 drift,
+                suspect,
                 ..
             } => {
                 let mut s = format!(
@@ -483,13 +643,26 @@ impl Event {
                 );
                 for (col, values) in new_categories {
                     s.push_str(&format!("; new {col}: {}", values.join(", ")));
+                    if let Some(n) = new_category_counts.get(col) {
+                        let more = n.saturating_sub(values.len() as u64);
+                        s.push_str(&format!(" and {more} more ({n} new values)"));
+                    }
                 }
                 if let Some(line) = drift.as_ref().and_then(|d| d.summary()) {
                     s.push_str(&format!("; {line}"));
                 }
+                if let Some(sus) = suspect.as_ref().filter(|x| x.suspect) {
+                    s.push_str(&format!("; SUSPECT, set aside: {}", sus.why.join("; ")));
+                }
                 s
             }
-            Event::BatchRejected {
+            Event::BatchSetAside { batch, reason } => {
+                format!("{batch} set aside by hand: {reason}")
+            }
+            Event::BatchBroughtBack { batch, reason } => {
+                format!("{batch} brought back into use: {reason}")
+            }
+            Event::BatchRefused {
                 file,
                 problems,
                 first_problem,
@@ -617,7 +790,19 @@ impl Event {
             Event::CycleAbandoned { cycle } => {
                 format!("cycle {cycle} was cut short; the serving model did not change")
             }
-            Event::Kept { model, reason, .. } => format!("{model} kept, not promoted: {reason}"),
+            Event::Shelved {
+                model,
+                serving,
+                reason,
+                ..
+            } => format!(
+                "{model} shelved ({}): {}",
+                serving.map_or_else(
+                    || "no model serves".to_string(),
+                    |m| format!("{m} still serves")
+                ),
+                reason.strip_prefix("keep: ").unwrap_or(reason)
+            ),
             Event::AwaitingApproval {
                 model, evidence, ..
             } => {
@@ -653,6 +838,10 @@ impl Event {
             } => {
                 format!("{to} serves again instead of {from} ({how}): {reason}")
             }
+            Event::FolderRenamed { from, to, files } => format!(
+                "{from}/ renamed to {to}/ ({files} file{}); earlier entries' {from}/ paths are now under {to}/",
+                if *files == 1 { "" } else { "s" }
+            ),
         }
     }
 }
@@ -1371,6 +1560,81 @@ mod tests {
         };
         assert!(holdout_loss.is_nan());
         assert!(Entry::from_line(br#"{"x":1}"#).is_err());
+    }
+
+    #[test]
+    fn entries_written_with_the_former_names_read_as_the_new_ones_and_verify() {
+        // Lines exactly as versions before the renames wrote them: the old
+        // kind names and evidence keys, hashed over the line as written.
+        let evidence = serde_json::json!({
+            "baseline": "serving", "rows": 40, "mean_loss_baseline": 2.5,
+            "mean_loss_candidate": 2.4, "relative_improvement": 0.04, "t": 1.1,
+            "p": 0.2, "new_rows": 10, "old_rows": 30, "reason": "not significant"
+        });
+        let old = [
+            serde_json::json!({"kind": "batch-rejected", "file": "night-05.csv", "file_hash": "ab",
+                "problems": 3, "first_problem": "line 41", "kept_as": "rejected/night-05.csv"}),
+            serde_json::json!({"kind": "kept", "cycle": 2, "model": 3,
+                "serving": 2, "evidence": evidence, "reason": "keep: not significant"}),
+            serde_json::json!({"kind": "promoted", "cycle": 3, "model": 4,
+                "previous": 2, "evidence": evidence}),
+        ];
+        let mut prev = GENESIS.to_string();
+        let mut written = Vec::new();
+        for (i, fields) in old.into_iter().enumerate() {
+            let mut value = fields;
+            value["seq"] = serde_json::json!(i + 1);
+            value["time"] = serde_json::json!("2026-11-30T05:00:00.000Z");
+            value["user"] = serde_json::json!("ana");
+            value["prev"] = serde_json::json!(prev);
+            let hash = content_hash(&value);
+            value["hash"] = serde_json::json!(hash);
+            prev = hash;
+            written.push(serde_json::to_vec(&value).unwrap());
+        }
+        let parsed = check(&written).unwrap();
+        assert!(
+            matches!(&parsed[0].event, Event::BatchRefused { kept_as: Some(k), .. } if k == "rejected/night-05.csv")
+        );
+        assert_eq!(parsed[0].event.kind(), "batch-refused");
+        let Event::Shelved {
+            evidence: Some(e), ..
+        } = &parsed[1].event
+        else {
+            panic!("{:?}", parsed[1].event)
+        };
+        assert_eq!(
+            (e.compared_with.as_str(), e.mean_loss_compared_with),
+            ("serving", 2.5)
+        );
+        assert_eq!(
+            parsed[1].event.summary(),
+            "m000003 shelved (m000002 still serves): not significant"
+        );
+        let Event::Promoted { evidence, .. } = &parsed[2].event else {
+            panic!("{:?}", parsed[2].event)
+        };
+        assert_eq!(evidence.compared_with, "serving");
+        // Written again, an entry uses the new names only.
+        let line = Entry::seal(
+            AuditSeq(9),
+            t("2026-12-01T00:00:00Z"),
+            "ana",
+            parsed[1].event.clone(),
+            GENESIS,
+        )
+        .line();
+        assert!(
+            line.contains("\"kind\":\"shelved\"") && line.contains("\"compared_with\":\"serving\""),
+            "{line}"
+        );
+        assert!(
+            !line.contains("baseline") && !line.contains("\"kept\""),
+            "{line}"
+        );
+        for (former, now) in Event::FORMER_KINDS {
+            assert!(Event::KINDS.contains(now) && !Event::KINDS.contains(former));
+        }
     }
 
     #[test]

@@ -27,7 +27,9 @@ pub const MANIFEST: &str = "backup.json";
 const FORMAT: u32 = 1;
 
 /// Folders copied file by file (the store is copied by `Store::copy_to`).
-const FOLDERS: [&str; 3] = ["archive", "rejected", "models"];
+/// ("rejected" is the refused files' folder in state dirs from before the name
+/// was settled: copied as it is, moved by the restored dir's first owner.)
+const FOLDERS: [&str; 4] = ["archive", "refused", "rejected", "models"];
 /// Single files copied when present.
 const FILES: [&str; 3] = ["tidegate.toml", "audit.jsonl", "serving"];
 

@@ -270,14 +270,14 @@ impl Default for TrainingConfig {
             predict_backend: Backend::Flex,
             batch_size: 256,
             learning_rate: 1e-3,
-            warm_learning_rate: None,
+            warm_learning_rate: Some(1e-4),
             cold_epochs: 100,
-            warm_epochs: 10,
+            warm_epochs: 40,
             max_seconds: 600.0,
             patience: 8,
             validation_fraction: 0.1,
             seed: 42,
-            replay_ratio: 1.0,
+            replay_ratio: 4.0,
             shrink: 1.0,
             perturb: 0.0,
             rescale_threshold: 0.5,
@@ -312,6 +312,9 @@ pub struct GateConfig {
     /// Level of the fresh-data check's shift flags, per batch. A flag is a
     /// reason to look, never an action by itself.
     pub shift_alpha: f64,
+    /// Level of the suspect-batch check's test that a batch's targets have
+    /// lost their relation to its inputs (a suspect batch is set aside).
+    pub suspect_alpha: f64,
 }
 
 impl Default for GateConfig {
@@ -327,6 +330,7 @@ impl Default for GateConfig {
             fresh_min_rows: 100,
             auto_rollback: true,
             shift_alpha: 0.01,
+            suspect_alpha: 0.05,
         }
     }
 }
@@ -697,16 +701,21 @@ impl Config {
             }
         }
         let g = &self.gate;
-        let checks: [(&str, bool, &str); 6] = [
+        let checks: [(&str, bool, &str); 7] = [
             (
                 "min_holdout_batches",
                 g.min_holdout_batches >= 2,
-                "min_holdout_batches must be at least 2: one batch says nothing about how days differ; 3 is usual",
+                "min_holdout_batches must be at least 2: one batch says nothing about how days differ; 3 is the default",
             ),
             (
                 "shift_alpha",
                 g.shift_alpha > 0.0 && g.shift_alpha <= 0.5,
                 "shift_alpha must be in (0, 0.5]; 0.01 is usual",
+            ),
+            (
+                "suspect_alpha",
+                g.suspect_alpha > 0.0 && g.suspect_alpha <= 0.5,
+                "suspect_alpha must be in (0, 0.5]; 0.05 is usual",
             ),
             (
                 "ridge_lambda",
@@ -779,7 +788,7 @@ impl Config {
                     return fail(
                         whole("metrics_addr"),
                         format!(
-                            "metrics_addr {addr:?} must be an IP address and port, such as \"127.0.0.1:9187\""
+                            "metrics_addr {addr:?} must be an IP address and port, such as {EXAMPLE_METRICS_ADDR:?}"
                         ),
                     );
                 }
@@ -923,6 +932,13 @@ fn key_span(text: &str, key: &str) -> Range<usize> {
 /// A commented config template for `tidegate init --template`.
 pub const TEMPLATE: &str = include_str!("config_template.toml");
 
+/// The metrics address the template, the docs and the messages show. The
+/// port is outside 9100–9999 and the numbers above it where metrics
+/// exporters are registered, is no well-known service's default, and is
+/// below Linux's ephemeral range (32768–60999), so the kernel never hands it
+/// to an outgoing connection: it collides with nothing a host commonly runs.
+pub const EXAMPLE_METRICS_ADDR: &str = "127.0.0.1:23719";
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -1003,14 +1019,51 @@ kind = "number"
     #[test]
     fn metrics_address_must_be_loopback_unless_allowed() {
         let with = |extra: &str| format!("{MINIMAL}\n[daemon]\n{extra}\n");
-        assert!(parse(&with("metrics_addr = \"127.0.0.1:9187\"")).is_ok());
-        assert!(parse(&with("metrics_addr = \"[::1]:9187\"")).is_ok());
-        let (_, _, msg) = err_at(&with("metrics_addr = \"0.0.0.0:9187\""));
+        assert!(parse(&with(&format!("metrics_addr = {EXAMPLE_METRICS_ADDR:?}"))).is_ok());
+        assert!(parse(&with("metrics_addr = \"[::1]:23719\"")).is_ok());
+        let (_, _, msg) = err_at(&with("metrics_addr = \"0.0.0.0:23719\""));
         assert!(msg.contains("not a loopback address"), "{msg}");
         let (_, _, msg) = err_at(&with("metrics_addr = \"localhost\""));
         assert!(msg.contains("IP address and port"), "{msg}");
-        let open = with("metrics_addr = \"0.0.0.0:9187\"\nmetrics_allow_remote = true");
+        let open = with("metrics_addr = \"0.0.0.0:23719\"\nmetrics_allow_remote = true");
         assert!(parse(&open).is_ok());
+    }
+
+    /// The `metrics_addr = "…"` addresses a text shows, in order.
+    fn metrics_addrs(text: &str) -> Vec<&str> {
+        text.split("metrics_addr = \"")
+            .skip(1)
+            .filter_map(|rest| rest.split('"').next())
+            .collect()
+    }
+
+    #[test]
+    fn the_example_metrics_address_is_the_documented_one_everywhere() {
+        let operations = include_str!("../ops/OPERATIONS.md");
+        let demo = include_str!("../demo-data/tidegate.toml");
+        assert_eq!(metrics_addrs(TEMPLATE), vec![EXAMPLE_METRICS_ADDR]);
+        assert_eq!(metrics_addrs(operations), vec![EXAMPLE_METRICS_ADDR]);
+        // The demo's config is the template, byte for byte.
+        assert_eq!(demo, TEMPLATE);
+        // The port a database's metrics exporter listens on by default, used
+        // here before: nothing should still show it.
+        let readme = include_str!("../README.md");
+        for (name, text) in [
+            ("template", TEMPLATE),
+            ("OPERATIONS.md", operations),
+            ("README.md", readme),
+        ] {
+            assert!(!text.contains(":9187"), "{name} still shows port 9187");
+        }
+        let port: u16 = EXAMPLE_METRICS_ADDR
+            .rsplit(':')
+            .next()
+            .and_then(|p| p.parse().ok())
+            .expect("the example has a port");
+        // Exporters are registered from 9100 upwards (common practice, no
+        // source); the ephemeral range is Linux's default
+        // net.ipv4.ip_local_port_range (from memory).
+        assert!(!(9100..=9999).contains(&port) && port < 32768, "{port}");
     }
 
     #[test]

@@ -1,5 +1,7 @@
 //! One retrain cycle: train candidates (warm from the serving model, cold
-//! on schedule or on request), score them and the serving model on the same
+//! on schedule or on request; when the serving model saw rows since set
+//! aside, cold and warm from the newest model that passed the gate and
+//! never saw them), score them and the serving model on the same
 //! holdout rows, let the gate decide, then promote or keep. Every step is an
 //! audit entry; promotion moves the store's serving pointer in the same
 //! transaction as its entry. The cycle is a sequence of stages, each a
@@ -172,6 +174,10 @@ pub struct Plan {
     /// The last batch the serving model was trained on (0 with none).
     pub through: BatchId,
     pub serving: Option<(ModelId, ModelRecord, Checkpoint)>,
+    /// When the serving model saw batches since set aside: the newest model
+    /// that passed the gate and never saw them, which the warm candidate
+    /// starts from instead (`provenance::newest_clean`).
+    pub clean_parent: Option<(ModelId, ModelRecord, Checkpoint)>,
     pub want_warm: bool,
     pub want_cold: bool,
     pub new_batches: Vec<BatchId>,
@@ -181,6 +187,26 @@ pub struct Plan {
 impl Plan {
     pub fn serving_id(&self) -> Option<ModelId> {
         self.serving.as_ref().map(|(id, _, _)| *id)
+    }
+
+    /// The model the warm candidate starts from: the serving model, or the
+    /// clean parent when there is one.
+    pub fn warm_parent(&self) -> Option<(ModelId, &ModelRecord, &Checkpoint)> {
+        if !self.want_warm {
+            return None;
+        }
+        self.clean_parent
+            .as_ref()
+            .or(self.serving.as_ref())
+            .map(|(id, r, ck)| (*id, r, ck))
+    }
+
+    /// The last batch the warm parent was trained through: the training
+    /// rows after it are the warm candidate's new rows (the serving model's
+    /// own `through` when nothing warms).
+    pub fn warm_through(&self) -> BatchId {
+        self.warm_parent()
+            .map_or(self.through, |(_, r, _)| r.trained_through)
     }
 }
 
@@ -193,7 +219,14 @@ pub enum Planned {
 /// Stage 1: which candidates to train, from the store's state.
 pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let store = &owner.store;
-    let last = BatchId(store.totals().batches);
+    // Batches set aside are not data for a cycle: neither the last batch
+    // nor a new one.
+    let in_use: Vec<BatchId> = store
+        .split_counts(Split::Train, None, None)?
+        .iter()
+        .map(|(b, _)| *b)
+        .collect();
+    let last = in_use.last().copied().unwrap_or(BatchId(0));
     if last.0 == 0 {
         return Err(CycleError::NoData);
     }
@@ -207,10 +240,7 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let serving = match store.serving()? {
         Some(id) => {
             let record = model_record(owner, id)?;
-            let ck = Checkpoint::load(
-                &checkpoint::model_dir(&owner.state.models(), id),
-                &fingerprint,
-            )?;
+            let ck = owner.checkpoint(id)?;
             Some((id, record, ck))
         }
         None => None,
@@ -218,27 +248,99 @@ pub fn plan(owner: &Owner, options: Options) -> Result<Planned, CycleError> {
     let through = serving
         .as_ref()
         .map_or(BatchId(0), |(_, r, _)| r.trained_through);
+    // Rows set aside since the serving model learnt from them live on in
+    // its weights: no warm start from it, and a cold candidate even when
+    // nothing new arrived. A warm one starts from the newest model that
+    // passed the gate and never saw them, if there is one.
+    let taint = match &serving {
+        Some((id, _, _)) => taint(store, *id)?,
+        None => Taint::default(),
+    };
+    let tainted = taint.batches;
+    let clean_parent = match taint.clean {
+        Some(id) => {
+            let loaded = model_record(owner, id)
+                .map_err(|e| e.to_string())
+                .and_then(|record| {
+                    let ck = owner.checkpoint(id).map_err(|e| e.to_string())?;
+                    Ok((id, record, ck))
+                });
+            loaded
+                .inspect_err(|e| tracing::warn!("{id} cannot be a warm start: {e}"))
+                .ok()
+        }
+        None => None,
+    };
+    if !tainted.is_empty() {
+        tracing::info!(
+            "the serving model saw {} (since set aside): this cycle trains {}",
+            crate::provenance::ranges_text(&tainted.iter().copied().collect()),
+            match &clean_parent {
+                Some((id, _, _)) => format!("cold and warm from {id}, which never saw them"),
+                None => "cold only (no model that passed the gate never saw them)".into(),
+            }
+        );
+    }
     if let Some((id, _, _)) = &serving
         && through >= last
         && !options.force_cold
+        && tainted.is_empty()
     {
         return Ok(Planned::NothingNew(*id));
     }
     let cycle = store.cycles()? + 1;
     let cold_due =
         owner.config.gate.cold_every > 0 && cycle % owner.config.gate.cold_every as u64 == 0;
-    let want_warm = serving.is_some();
-    let want_cold = serving.is_none() || options.force_cold || cold_due;
+    let want_warm = serving.is_some() && (tainted.is_empty() || clean_parent.is_some());
+    let want_cold = serving.is_none() || options.force_cold || cold_due || !tainted.is_empty();
     Ok(Planned::Run(Box::new(Plan {
         cycle,
         last,
         through,
         want_warm,
         want_cold,
-        new_batches: (through.0 + 1..=last.0).map(BatchId).collect(),
+        new_batches: in_use.iter().filter(|b| **b > through).copied().collect(),
         serving,
+        clean_parent,
         fingerprint,
     })))
+}
+
+/// What batches now set aside mean for a cycle.
+#[derive(Debug, Default)]
+pub struct Taint {
+    /// Batches now set aside that the serving model saw.
+    pub batches: Vec<BatchId>,
+    /// When there are such batches: the newest model that passed the gate
+    /// and never saw any batch set aside.
+    pub clean: Option<ModelId>,
+}
+
+/// Batches now set aside that `model` saw, directly or through the models
+/// it was warm-started from, and the model a warm start may begin from
+/// instead (both read from the log; the set aside batches from the store).
+pub fn taint(store: &crate::store::Store, model: ModelId) -> Result<Taint, StoreError> {
+    let aside = store.set_aside_batches();
+    if aside.is_empty() {
+        return Ok(Taint::default());
+    }
+    let entries: Vec<crate::audit::Entry> = store
+        .audit_entries()?
+        .iter()
+        .filter_map(|(_, line)| crate::audit::Entry::from_line(line).ok())
+        .collect();
+    let replay = crate::provenance::replay(&entries);
+    let batches: Vec<BatchId> = replay
+        .lineages
+        .get(&model)
+        .map(|l| l.saw.intersection(aside).copied().collect())
+        .unwrap_or_default();
+    let clean = if batches.is_empty() {
+        None
+    } else {
+        crate::provenance::newest_clean(&replay, aside)
+    };
+    Ok(Taint { batches, clean })
 }
 
 fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleError> {
@@ -270,7 +372,7 @@ fn record_start(owner: &mut Owner, plan: &Plan, user: &str) -> Result<(), CycleE
 
 /// The rows a cycle works on.
 pub struct Data {
-    /// Training rows of the batches the serving model has not seen.
+    /// Training rows of the batches the warm parent has not seen.
     pub new_train: RowMatrix,
     /// A uniform sample of older training rows (see `older_sample_size`).
     pub older_train: RowMatrix,
@@ -285,14 +387,17 @@ pub struct Data {
     pub holdout_batches: Vec<u64>,
 }
 
-/// Stage 2: the data, read once. Training rows split at the serving model's
-/// last batch: the new ones all, the older ones as a uniform sample read
+/// Stage 2: the data, read once. Training rows split at the warm parent's
+/// last batch (the serving model's, unless it saw rows since set aside): the new ones all, the older ones as a uniform sample read
 /// chunk by chunk, unless a cold candidate needs them all anyway. Holdout
 /// rows all, in store order, with a new/older flag and a batch each.
 pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
     let step = std::time::Instant::now();
     let store = &owner.store;
-    let through = plan.through;
+    // Training rows split where the warm parent stopped; holdout rows are
+    // new or older relative to the serving model, which the gate compares
+    // with.
+    let through = plan.warm_through();
     let new_train = store.rows(Split::Train, Some(through.next()), None)?;
     let older_n = store.row_count(Split::Train, None, Some(through))?;
     let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
@@ -319,9 +424,9 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
             None,
         )
     };
-    let mut holdout = store.rows(Split::Holdout, None, Some(through))?;
+    let mut holdout = store.rows(Split::Holdout, None, Some(plan.through))?;
     let older_rows = holdout.n_rows();
-    holdout.extend(&store.rows(Split::Holdout, Some(through.next()), None)?);
+    holdout.extend(&store.rows(Split::Holdout, Some(plan.through.next()), None)?);
     let new_flags: Vec<bool> = (0..holdout.n_rows()).map(|i| i >= older_rows).collect();
     let holdout_batches: Vec<u64> = store
         .split_counts(Split::Holdout, None, None)?
@@ -381,15 +486,15 @@ pub fn train(
     let step = std::time::Instant::now();
     let store = &owner.store;
     let training = &owner.config.training;
-    let cold_spec = cold_spec(owner);
+    let cold_spec = cold_spec(owner)?;
     // The warm parent takes category values that arrived since its encoding
     // was fixed, with zero weights: the same function, room to learn them.
     // Number columns whose stats moved far are restandardised the same way.
-    let warm_parent = match plan.serving.as_ref().filter(|_| plan.want_warm) {
+    let warm_parent = match plan.warm_parent() {
         Some((_, _, ck)) => {
             let (wide, added) = ck.model.widened(store.vocabularies())?;
             let (parent, rescaled) =
-                wide.rescaled(&store.totals().train_stats, training.rescale_threshold)?;
+                wide.rescaled(&store.train_stats()?, training.rescale_threshold)?;
             Some((parent, added, rescaled))
         }
         None => None,
@@ -449,13 +554,13 @@ pub fn train(
     })
 }
 
-fn cold_spec(owner: &Owner) -> FeatureSpec {
+fn cold_spec(owner: &Owner) -> Result<FeatureSpec, StoreError> {
     let store = &owner.store;
-    FeatureSpec::new(
+    Ok(FeatureSpec::new(
         store.schema(),
-        &store.totals().train_stats,
+        &store.train_stats()?,
         store.vocabularies(),
-    )
+    ))
 }
 
 /// One candidate with its per-row holdout losses.
@@ -518,7 +623,7 @@ pub fn score(
         Some((_, _, ck)) => Some(row_losses(&ck.model, &data.holdout, backend)?),
         None => None,
     };
-    let spec = cold_spec(owner);
+    let spec = cold_spec(owner)?;
     let parts = [&data.older_train, &data.new_train];
     let trivial = baseline::trivial_losses(&spec, &parts, &data.holdout)
         .map_err(|e| CycleError::Scoring(e.to_string()))?;
@@ -620,7 +725,7 @@ pub fn record(
             let id = next;
             next = next.next();
             let parent = if c.run == RunKind::Warm {
-                serving_id
+                plan.warm_parent().map(|(id, _, _)| id)
             } else {
                 None
             };
@@ -712,7 +817,7 @@ pub fn record(
                 } else {
                     this.reason()
                 };
-                let event = Event::Kept {
+                let event = Event::Shelved {
                     cycle,
                     model: *id,
                     serving: serving_id,
@@ -751,7 +856,7 @@ pub fn record(
                     vec![(META_PENDING, Some(id.key().to_vec())), close],
                 ),
                 Decision::Keep { .. } => (
-                    Event::Kept {
+                    Event::Shelved {
                         cycle,
                         model: *id,
                         serving: serving_id,
@@ -855,18 +960,26 @@ pub(crate) fn row_losses(
 /// few enough to read and encode in well under a second.
 pub const OLDER_SAMPLE_MIN: usize = 50_000;
 
+/// Epochs of a warm run whose replayed older rows are all fresh; later
+/// epochs draw again from the same sample (each epoch's replay is a uniform
+/// draw from it), so a long warm run does not read a cold run's worth of
+/// rows into memory.
+pub const REPLAY_FRESH_EPOCHS: usize = 10;
+
 /// How many older training rows a cycle reads: a warm run replays
-/// `replay_ratio` older rows per new row in each of at most `warm_epochs`
-/// epochs, plus its validation share, so `(warm_epochs + 1)` times one
-/// epoch's replay lets every epoch draw rows it has not seen, and the
-/// baselines get at least `OLDER_SAMPLE_MIN`. Capped at the rows stored.
+/// `replay_ratio` older rows per new row in each epoch, plus its
+/// validation share, so `(min(warm_epochs, REPLAY_FRESH_EPOCHS) + 1)` times
+/// one epoch's replay lets the first epochs draw rows they have not seen,
+/// and the baselines get at least `OLDER_SAMPLE_MIN`. Capped at the rows
+/// stored.
 pub fn older_sample_size(
     new_rows: usize,
     older_rows: usize,
     training: &crate::config::TrainingConfig,
 ) -> usize {
     let per_epoch = (new_rows as f64 * training.replay_ratio).ceil();
-    let replay = per_epoch * (training.warm_epochs as f64 + 1.0);
+    let epochs = training.warm_epochs.min(REPLAY_FRESH_EPOCHS);
+    let replay = per_epoch * (epochs as f64 + 1.0);
     let want = if replay.is_finite() && replay < usize::MAX as f64 {
         (replay as usize).max(OLDER_SAMPLE_MIN)
     } else {
@@ -903,12 +1016,12 @@ pub(crate) fn model_record(owner: &Owner, id: ModelId) -> Result<ModelRecord, Cy
 /// The gate's numbers in the form the audit log keeps.
 pub fn evidence_of(e: &gate::Evidence, decision: &Decision) -> GateEvidence {
     GateEvidence {
-        baseline: match e.baseline {
+        compared_with: match e.baseline {
             gate::Baseline::Serving => "serving".into(),
             gate::Baseline::Trivial => "trivial".into(),
         },
         rows: e.rows,
-        mean_loss_baseline: e.mean_loss_baseline,
+        mean_loss_compared_with: e.mean_loss_baseline,
         mean_loss_candidate: e.mean_loss_candidate,
         relative_improvement: e.relative_improvement,
         t: e.test.t.is_finite().then_some(e.test.t),
@@ -951,15 +1064,25 @@ mod tests {
         assert_eq!(older_sample_size(1_000, 30_000, &t), 30_000);
         // Few new rows: the baselines' floor.
         assert_eq!(older_sample_size(1_000, 5_000_000, &t), OLDER_SAMPLE_MIN);
-        // Many new rows: a fresh replay sample for each epoch and validation.
-        let want = 8_000 * (t.warm_epochs + 1);
+        // Many new rows: a fresh replay sample for each of the first epochs
+        // and validation, never one for every epoch of a long warm run.
+        let epochs = t.warm_epochs.min(REPLAY_FRESH_EPOCHS);
+        let want = (8_000.0 * t.replay_ratio) as usize * (epochs + 1);
         assert!(want > OLDER_SAMPLE_MIN);
         assert_eq!(older_sample_size(8_000, 5_000_000, &t), want);
+        let long = TrainingConfig {
+            warm_epochs: 500,
+            ..t.clone()
+        };
+        assert_eq!(older_sample_size(8_000, 5_000_000, &long), want);
         let half = TrainingConfig {
             replay_ratio: 0.5,
             ..t.clone()
         };
-        assert_eq!(older_sample_size(20_000, 5_000_000, &half), want * 10 / 8);
+        assert_eq!(
+            older_sample_size(20_000, 5_000_000, &half),
+            10_000 * (epochs + 1)
+        );
         let none = TrainingConfig {
             replay_ratio: 0.0,
             ..t

@@ -1,10 +1,16 @@
 //! The bundled demo scenario, invented from scratch: a regional bakery
 //! chain that uploads each night's sales per shop and bread line.
 //!
-//! A chain of 108 shops sells twelve bread lines. Twelve nights are generated from one seed. Night 5 carries a few bad
-//! rows (the file is refused whole), night 7 is the first night of a new
-//! shop, from night 10 on demand for everything in the harbour town shifts
-//! up after a competitor closes, and the upload of night 9 is sent twice.
+//! A chain of 108 shops sells twelve bread lines. Twenty-four nights are
+//! generated from one seed. Night 5 carries a few bad rows (the file is
+//! refused whole), night 7 is the first night of a new shop, from night 10
+//! on demand in the town of Corrin shifts up after a competitor closes, and
+//! the upload of night 9 is sent twice. From night 13 a heatwave lifts every
+//! shop's temperature by 18 °C for eleven nights; for its first five nights
+//! a strike at the flour mill halves what the shops can bake, so sales fall
+//! by half for a reason no column records. A model that learns "heat halves
+//! sales" from those nights is genuinely worse once the flour is back
+//! (night 18) while the heat goes on: the designed regression.
 //! `examples/gen_demo_data.rs` writes these files to `demo-data/`; a test
 //! checks the committed files are exactly what this module generates.
 
@@ -59,11 +65,17 @@ const WEEKDAYS: [&str; 7] = ["Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun"];
 const WEEKDAY_FACTOR: [f64; 7] = [0.92, 0.88, 0.93, 0.97, 1.08, 1.32, 0.84];
 const NEW_SHOP: &str = "Harwick Harbour";
 const SHIFT_TOWN: &str = "Corrin";
-pub const NIGHTS: usize = 12;
+pub const NIGHTS: usize = 24;
 /// First night of the new shop, 1-based.
 pub const NEW_SHOP_NIGHT: usize = 7;
 /// First night with shifted demand, 1-based.
 pub const SHIFT_NIGHT: usize = 10;
+/// First night of the heatwave, 1-based.
+pub const HEAT_NIGHT: usize = 13;
+/// First night after the heatwave, 1-based.
+pub const HEAT_END_NIGHT: usize = 24;
+/// First night after the flour shortage (which starts with the heat), 1-based.
+pub const SHORTAGE_END_NIGHT: usize = 18;
 /// Night whose file has bad rows, 1-based.
 pub const BAD_NIGHT: usize = 5;
 /// Night whose file is sent twice, 1-based.
@@ -82,6 +94,13 @@ struct ShopState {
     scale: f64,
     warmth: f64,
     prev: Vec<Option<f64>>,
+}
+
+impl ShopState {
+    /// A shop is named after its town and street.
+    fn town(&self) -> &str {
+        self.name.split(' ').next().unwrap_or(&self.name)
+    }
 }
 
 /// The demo files in publishing order: (file name, CSV text).
@@ -114,9 +133,18 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
         let day = night - 1;
         let weekday = day % 7;
         let season = (day as f64 / 40.0).sin();
-        let temp = 9.0 + 6.0 * season + 3.0 * rng.normal();
-        let mut csv =
-            String::from("shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n");
+        let hot = (HEAT_NIGHT..HEAT_END_NIGHT).contains(&night);
+        // The mill's strike: shops bake half their usual loaves, and
+        // nothing in the file says so.
+        let supply = if (HEAT_NIGHT..SHORTAGE_END_NIGHT).contains(&night) {
+            0.5
+        } else {
+            1.0
+        };
+        let temp = 9.0 + 6.0 * season + 3.0 * rng.normal() + if hot { 18.0 } else { 0.0 };
+        let mut csv = String::from(
+            "shop,town,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold\n",
+        );
         for s in &mut shop_states {
             // Each shop has its own weather, close to the region's.
             let t = (temp + 1.5 * rng.normal()).clamp(-15.0, 35.0);
@@ -147,13 +175,19 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                     1.0 - 0.01 * s.warmth * (t - 10.0)
                 };
                 let wet = 1.0 - 0.012 * rain;
-                let shift = if night >= SHIFT_NIGHT && s.name.starts_with(SHIFT_TOWN) {
+                let shift = if night >= SHIFT_NIGHT && s.town() == SHIFT_TOWN {
                     1.45
                 } else {
                     1.0
                 };
-                let mean =
-                    base * s.scale * WEEKDAY_FACTOR[weekday] * heat * wet * promo_factor * shift;
+                let mean = base
+                    * s.scale
+                    * WEEKDAY_FACTOR[weekday]
+                    * heat
+                    * wet
+                    * promo_factor
+                    * shift
+                    * supply;
                 let sold = (mean + (mean.sqrt() + 1.0) * rng.normal()).round().max(0.0);
                 let prev = s.prev[bi];
                 s.prev[bi] = Some(sold);
@@ -165,7 +199,8 @@ pub fn files(seed: u64) -> Vec<(String, String)> {
                 };
                 writeln!(
                     csv,
-                    "{shop_field},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}",
+                    "{shop_field},{},{bread},{},{t:.1},{rain:.1},{promo},{prev_text},{sold}",
+                    s.town(),
                     WEEKDAYS[weekday]
                 )
                 .expect("write to String");
@@ -193,8 +228,8 @@ fn damage(csv: &str) -> String {
         f[idx] = value.to_string();
         f.join(",")
     };
-    lines[40] = replace_field(&lines[40], 3, "n/a");
-    lines[311] = replace_field(&lines[311], 4, "-2.5");
+    lines[40] = replace_field(&lines[40], 4, "n/a");
+    lines[311] = replace_field(&lines[311], 5, "-2.5");
     let cut = lines[702].rfind(',').expect("row has fields");
     lines[702].truncate(cut);
     let mut out = lines.join("\n");

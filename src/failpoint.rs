@@ -6,7 +6,17 @@
 //! Actions: `abort` (the process dies at once, as in a crash or a kill),
 //! `enospc` (the step fails with "No space left on device"), `eio` (an I/O
 //! error, as a failing fsync reports). The variable is read once.
+//!
+//! `point=action@N` acts only at the Nth time the process reaches the
+//! point (counted from 1), so a test can fail, say, the second store flush
+//! of a command (the fresh-data check's) and not the first (the batch's).
+//!
+//! One setting is not a failure: `store:flush-every=N` makes the store's
+//! background flusher run every N ms (sled's own default is 500), so that a
+//! power-loss test sees it make writes durable between any two of the
+//! process's own steps, as a slow or loaded machine does.
 
+use std::sync::Mutex;
 use std::sync::OnceLock;
 
 /// Every point, for documentation and validation, in the order a file and
@@ -28,6 +38,8 @@ pub const POINTS: &[&str] = &[
     // After the pending file is renamed into the archive, before the source
     // leaves the inbox.
     "intake:after-archive",
+    // Before the fresh-data check of a batch just stored (`fresh::check_batch`).
+    "fresh:before-check",
     // A retrain cycle.
     "cycle:mid-checkpoint",
     "cycle:before-promote",
@@ -41,25 +53,68 @@ pub const POINTS: &[&str] = &[
     "state:before-catch-up",
 ];
 
-fn armed() -> &'static Vec<(String, String)> {
-    static ARMED: OnceLock<Vec<(String, String)>> = OnceLock::new();
+/// One armed point: its action and, for `@N`, the one hit it acts on.
+struct Armed {
+    name: String,
+    action: String,
+    at: Option<u64>,
+}
+
+fn armed() -> &'static Vec<Armed> {
+    static ARMED: OnceLock<Vec<Armed>> = OnceLock::new();
     ARMED.get_or_init(|| {
         std::env::var("TIDEGATE_FAILPOINTS")
             .unwrap_or_default()
             .split(',')
             .filter_map(|p| p.split_once('='))
-            .map(|(n, a)| (n.trim().to_string(), a.trim().to_string()))
+            .map(|(n, a)| {
+                let (action, at) = match a.split_once('@') {
+                    Some((action, at)) => (action, at.trim().parse().ok()),
+                    None => (a, None),
+                };
+                Armed {
+                    name: n.trim().to_string(),
+                    action: action.trim().to_string(),
+                    at,
+                }
+            })
             .collect()
     })
+}
+
+/// The store's background flush interval in ms, when a test sets one.
+pub fn store_flush_every_ms() -> Option<u64> {
+    armed()
+        .iter()
+        .find(|a| a.name == "store:flush-every")
+        .and_then(|a| a.action.parse().ok())
 }
 
 /// Passes, or fails the way the environment asks at this point.
 pub fn hit(name: &str) -> std::io::Result<()> {
     debug_assert!(POINTS.contains(&name), "unknown failpoint {name}");
-    let Some((_, action)) = armed().iter().find(|(n, _)| n == name) else {
+    let Some(armed) = armed().iter().find(|a| a.name == name) else {
         return Ok(());
     };
-    match action.as_str() {
+    if let Some(at) = armed.at {
+        // Hits so far per armed point; only armed points are counted.
+        static HITS: Mutex<Vec<(String, u64)>> = Mutex::new(Vec::new());
+        let mut hits = HITS.lock().unwrap_or_else(|p| p.into_inner());
+        let count = match hits.iter_mut().find(|(n, _)| n == name) {
+            Some((_, c)) => {
+                *c += 1;
+                *c
+            }
+            None => {
+                hits.push((name.to_string(), 1));
+                1
+            }
+        };
+        if count != at {
+            return Ok(());
+        }
+    }
+    match armed.action.as_str() {
         "abort" => {
             eprintln!("failpoint {name}: aborting");
             std::process::abort()

@@ -23,7 +23,17 @@
 //! What the checks remember between batches lives in the store's meta tree,
 //! written in the same transaction as the `fresh-checked` entry: the
 //! serving model's monitor ([`META_MONITOR`], removed whenever the serving
-//! model changes) and the recent loss levels ([`META_LEVELS`]).
+//! model changes), the recent loss levels ([`META_LEVELS`]), the recent
+//! excesses of each value of a small category column
+//! ([`META_VALUE_LEVELS`]) and the last batch checked ([`META_CHECKED`]). A batch stored after that one which the
+//! serving model has not trained on missed its check (a crash between the
+//! commit and the check, or a failure in between); every owner's start runs
+//! the missing checks ([`run_missing`]).
+//!
+//! A failure to write the check's entry or the rollback (store, audit log,
+//! serving file) is fatal to the caller ([`FreshError::is_fatal`]): the
+//! store's transaction may have committed in memory while the entry's
+//! sequence number did not advance, so going on could reuse it.
 
 use chrono::Utc;
 
@@ -36,7 +46,6 @@ use crate::gate::monitor::{self, Observation, Prior};
 use crate::gate::shift::{self, Group, LEVEL_HISTORY};
 use crate::ids::{BatchId, ModelId};
 use crate::lifecycle::{self, DecisionError};
-use crate::model::checkpoint::{self, Checkpoint};
 use crate::model::{Model, ModelError};
 use crate::rng::Rng;
 use crate::sample;
@@ -58,10 +67,45 @@ pub enum FreshError {
     Audit(#[from] crate::audit::MirrorError),
 }
 
+impl FreshError {
+    /// Whether the error came from writing the store, the audit log or the
+    /// state dir, after which the process must stop (as in the cycle).
+    /// Otherwise a model could not be loaded or scored: nothing was written,
+    /// the batch stays stored and the failure is reported.
+    pub fn is_fatal(&self) -> bool {
+        match self {
+            FreshError::Store(_) | FreshError::Audit(_) => true,
+            FreshError::Cycle(e) => matches!(
+                e,
+                CycleError::Store(_) | CycleError::State(_) | CycleError::Audit(_)
+            ),
+            FreshError::Decision(e) => matches!(
+                e,
+                DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
+            ),
+            FreshError::Model(_) => false,
+        }
+    }
+}
+
 /// Meta key of the serving model's monitor (see [`MonitorState`]).
 pub const META_MONITOR: &[u8] = b"fresh/monitor";
 /// Meta key of the recent loss levels of batches that were not flagged.
 pub const META_LEVELS: &[u8] = b"fresh/levels";
+/// Meta key of the recent excesses of each value of a small category
+/// column over the rest of its column (see [`shift::group_check`]), kept
+/// when the value was not flagged.
+pub const META_VALUE_LEVELS: &[u8] = b"fresh/value-levels";
+/// The encoded [`META_VALUE_LEVELS`] stays under this many bytes (older
+/// excesses are dropped first), far below sled's blob threshold.
+pub const VALUE_LEVELS_MAX_BYTES: usize = 48 * 1024;
+/// Meta key of the batches the check flagged as shifted: their holdout
+/// rows stay out of later checks' reference, so a change is compared with
+/// how things were before it, not with itself.
+pub const META_SHIFTED: &[u8] = b"fresh/shifted";
+/// Meta key of the highest `BatchId` whose check has run (its entry is in
+/// the same transaction).
+pub const META_CHECKED: &[u8] = b"fresh/checked";
 /// Observations one monitor keeps (about seven years of nightly files):
 /// with 24 bytes each the value stays under sled's 64 KiB.
 pub const MONITOR_MAX_BATCHES: usize = 2_500;
@@ -94,15 +138,15 @@ pub struct MonitorState {
 }
 
 impl MonitorState {
-    /// Binary layout: serving id (8), previous id (8, 0 = none), θ, floor,
-    /// τ² (f64 each), then x, w, ln numerator per observation.
+    /// Binary layout: serving id (8), previous id (8, 0 = none), τ² (f64),
+    /// the layout's version ([`MONITOR_LAYOUT`], u64), then x, w, ln
+    /// numerator per observation (f64 each).
     pub fn encode(&self) -> Vec<u8> {
-        let mut out = Vec::with_capacity(40 + 24 * self.observations.len());
+        let mut out = Vec::with_capacity(MONITOR_HEADER + 24 * self.observations.len());
         out.extend_from_slice(&self.serving.key());
         out.extend_from_slice(&self.previous.map_or([0; 8], |p| p.key()));
-        for v in [self.prior.theta, self.prior.floor, self.prior.tau2] {
-            out.extend_from_slice(&v.to_le_bytes());
-        }
+        out.extend_from_slice(&self.prior.tau2.to_le_bytes());
+        out.extend_from_slice(&MONITOR_LAYOUT.to_le_bytes());
         let skip = self.observations.len().saturating_sub(MONITOR_MAX_BATCHES);
         for o in &self.observations[skip..] {
             for v in [o.x, o.w, o.log_numerator] {
@@ -112,21 +156,25 @@ impl MonitorState {
         out
     }
 
+    /// `None` for bytes of another layout. A state written before the
+    /// monitor observed log loss ratios (a 40-byte header: θ, floor and τ²
+    /// of loss differences) does not decode: its observations are in other
+    /// units, so the monitor starts afresh from the log
+    /// ([`compared_with`]), which also knows a model back by a rollback.
     pub fn decode(bytes: &[u8]) -> Option<MonitorState> {
-        if bytes.len() < 40 || !(bytes.len() - 40).is_multiple_of(24) {
+        if bytes.len() < MONITOR_HEADER || !(bytes.len() - MONITOR_HEADER).is_multiple_of(24) {
             return None;
         }
         let f = |at: usize| -> f64 {
             f64::from_le_bytes(bytes[at..at + 8].try_into().expect("8 bytes"))
         };
+        let layout = u64::from_le_bytes(bytes[24..32].try_into().expect("8 bytes"));
+        if layout != MONITOR_LAYOUT {
+            return None;
+        }
         let serving = ModelId::from_key(&bytes[0..8])?;
         let previous = ModelId::from_key(&bytes[8..16]).filter(|p| p.0 != 0);
-        let prior = Prior {
-            theta: f(16),
-            floor: f(24),
-            tau2: f(32),
-        };
-        let observations = (40..bytes.len())
+        let observations = (MONITOR_HEADER..bytes.len())
             .step_by(24)
             .map(|at| Observation {
                 x: f(at),
@@ -137,17 +185,97 @@ impl MonitorState {
         Some(MonitorState {
             serving,
             previous,
-            prior,
+            prior: Prior { tau2: f(16) },
             observations,
         })
     }
 }
+
+/// Version of the monitor's stored layout: 2 since the monitor observes
+/// log loss ratios.
+const MONITOR_LAYOUT: u64 = 2;
+/// Bytes before the observations.
+const MONITOR_HEADER: usize = 32;
 
 fn encode_levels(levels: &[f64]) -> Vec<u8> {
     let skip = levels.len().saturating_sub(LEVEL_HISTORY);
     levels[skip..]
         .iter()
         .flat_map(|v| v.to_le_bytes())
+        .collect()
+}
+
+/// Encodes each value's recent excesses: per entry, the column and value
+/// names (u16 length + UTF-8) and the excesses (u16 count + f32 each),
+/// keeping the newest [`LEVEL_HISTORY`] per value, fewer if the whole
+/// would pass `max_bytes`.
+fn encode_value_levels(history: &shift::ValueHistory, max_bytes: usize) -> Vec<u8> {
+    let mut keep = LEVEL_HISTORY;
+    loop {
+        let mut out = Vec::new();
+        for ((column, value), excesses) in history {
+            let (c, v) = (column.as_bytes(), value.as_bytes());
+            if c.len() > usize::from(u16::MAX) || v.len() > usize::from(u16::MAX) {
+                continue;
+            }
+            let skip = excesses.len().saturating_sub(keep);
+            let kept = &excesses[skip..];
+            out.extend((c.len() as u16).to_le_bytes());
+            out.extend(c);
+            out.extend((v.len() as u16).to_le_bytes());
+            out.extend(v);
+            out.extend((kept.len() as u16).to_le_bytes());
+            for x in kept {
+                out.extend((*x as f32).to_le_bytes());
+            }
+        }
+        if out.len() <= max_bytes || keep <= shift::LEVEL_MIN_HISTORY {
+            return out;
+        }
+        keep -= 1;
+    }
+}
+
+/// Reads what [`encode_value_levels`] wrote; a damaged tail is dropped.
+fn decode_value_levels(bytes: &[u8]) -> shift::ValueHistory {
+    let mut out = shift::ValueHistory::new();
+    let mut at = 0usize;
+    let take = |at: &mut usize, n: usize| -> Option<&[u8]> {
+        let s = bytes.get(*at..at.checked_add(n)?)?;
+        *at += n;
+        Some(s)
+    };
+    let len = |at: &mut usize| -> Option<usize> {
+        take(at, 2).map(|b| usize::from(u16::from_le_bytes([b[0], b[1]])))
+    };
+    while at < bytes.len() {
+        let Some(entry) = (|| {
+            let n = len(&mut at)?;
+            let column = String::from_utf8(take(&mut at, n)?.to_vec()).ok()?;
+            let n = len(&mut at)?;
+            let value = String::from_utf8(take(&mut at, n)?.to_vec()).ok()?;
+            let n = len(&mut at)?;
+            let excesses: Vec<f64> = take(&mut at, 4 * n)?
+                .chunks_exact(4)
+                .map(|b| f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]])))
+                .collect();
+            Some(((column, value), excesses))
+        })() else {
+            break;
+        };
+        out.insert(entry.0, entry.1);
+    }
+    out
+}
+
+fn encode_batches(batches: &[u64]) -> Vec<u8> {
+    batches.iter().flat_map(|v| v.to_be_bytes()).collect()
+}
+
+fn decode_batches(bytes: &[u8]) -> Vec<u64> {
+    bytes
+        .chunks_exact(8)
+        .map(|b| u64::from_be_bytes(b.try_into().expect("8 bytes")))
         .collect()
 }
 
@@ -210,13 +338,48 @@ fn known_rows(
     (known, named)
 }
 
-/// Runs the check on `batch` (just accepted). `None` when no model serves
-/// or the serving model has already trained on the batch.
+/// The monitor the store keeps for `serving` (`None` when the kept one
+/// belongs to another model, or none is kept yet).
+pub fn stored_monitor(
+    store: &crate::store::Store,
+    serving: ModelId,
+) -> Result<Option<MonitorState>, StoreError> {
+    Ok(store
+        .meta_value(META_MONITOR)?
+        .and_then(|v| MonitorState::decode(&v))
+        .filter(|m| m.serving == serving))
+}
+
+/// The model `serving` is compared with: the pair of its monitor, kept in
+/// the store while it serves, or when the monitor starts the model it
+/// replaced by promotion or approval.
+pub fn compared_with(
+    owner: &Owner,
+    serving: ModelId,
+    stored: Option<&MonitorState>,
+) -> Result<Option<ModelId>, DecisionError> {
+    match stored {
+        Some(m) => Ok(m.previous),
+        None => lifecycle::replaced_by_promotion(owner, serving),
+    }
+}
+
+/// Runs the check on `batch` (just accepted). `None` when no model serves,
+/// the serving model has already trained on the batch, or the batch is set
+/// aside.
 pub fn check_batch(
     owner: &mut Owner,
     batch: BatchId,
     user: &str,
 ) -> Result<Option<Outcome>, FreshError> {
+    crate::failpoint::hit("fresh:before-check").map_err(|source| StoreError::Io {
+        path: owner.store.path().to_path_buf(),
+        source,
+    })?;
+    // A batch set aside is not evidence about any model.
+    if owner.store.set_aside_batches().contains(&batch) {
+        return Ok(None);
+    }
     let Some(serving) = owner.store.serving()? else {
         return Ok(None);
     };
@@ -227,25 +390,10 @@ pub fn check_batch(
     let gate_config = owner.config.gate.clone();
     let alpha = gate_config.alpha;
     let backend = owner.config.training.predict_backend;
-    let fingerprint = owner.config.schema_fingerprint();
-    let load = |id: ModelId| {
-        Checkpoint::load(
-            &checkpoint::model_dir(&owner.state.models(), id),
-            &fingerprint,
-        )
-    };
+    let load = |id: ModelId| owner.checkpoint(id);
 
-    // Which pair the monitor compares: kept in the store while the serving
-    // model serves, looked up in the log only when it starts.
-    let stored = owner
-        .store
-        .meta_value(META_MONITOR)?
-        .and_then(|v| MonitorState::decode(&v))
-        .filter(|m| m.serving == serving);
-    let previous = match &stored {
-        Some(m) => m.previous,
-        None => lifecycle::replaced_by_promotion(owner, serving)?,
-    };
+    let stored = stored_monitor(&owner.store, serving)?;
+    let previous = compared_with(owner, serving, stored.as_ref())?;
     let serving_model = load(serving)?.model;
     // A predecessor whose checkpoint is gone or damaged cannot be compared
     // (nor rolled back to); say so rather than fail intake.
@@ -339,11 +487,26 @@ pub fn check_batch(
         }
         .into();
     } else {
-        let fresh = serving_model.row_losses(&rows, backend)?;
+        // Regression: the signed errors too, for the small columns' shift
+        // test; the losses are their squares (one pass over the batch).
+        let errors = serving_model.row_errors(&rows, backend)?;
+        let fresh = match &errors {
+            Some(e) => e.iter().map(|x| x * x).collect(),
+            None => serving_model.row_losses(&rows, backend)?,
+        };
         let fresh_mean = mean(&fresh);
         evidence.mean_loss_serving = Some(fresh_mean);
         let step = std::time::Instant::now();
-        let (reference_rows, reference_batches) = reference_rows(owner, record.trained_through)?;
+        // The reference is every earlier batch's holdout rows (none of them
+        // trained on): the more rows, the less the usual loss of one
+        // category value wobbles.
+        let mut shifted_batches = owner
+            .store
+            .meta_value(META_SHIFTED)?
+            .map(|v| decode_batches(&v))
+            .unwrap_or_default();
+        let (reference_rows, reference_batches) =
+            reference_rows(owner, BatchId(batch.0.saturating_sub(1)), &shifted_batches)?;
         let reference = serving_model.row_losses(&reference_rows, backend)?;
         tracing::debug!(
             "batch {batch}: fresh-data check scored {} reference rows in {:.3} s",
@@ -385,10 +548,21 @@ pub fn check_batch(
         let groups = groups(
             &schema,
             &vocabs,
-            (&rows, &fresh),
+            (&rows, &fresh, errors.as_deref()),
             (&reference_rows, &reference),
         );
-        let group_check = shift::group_check(&groups, gate_config.shift_alpha);
+        let mut value_history = owner
+            .store
+            .meta_value(META_VALUE_LEVELS)?
+            .map(|v| decode_value_levels(&v))
+            .unwrap_or_default();
+        let group_check = shift::group_check(&groups, &value_history, gate_config.shift_alpha);
+        if group_check.remember(&mut value_history) {
+            meta.push((
+                META_VALUE_LEVELS.to_vec(),
+                Some(encode_value_levels(&value_history, VALUE_LEVELS_MAX_BYTES)),
+            ));
+        }
         if !group_check.flagged.is_empty() {
             shifted = true;
             evidence.shifted_values = group_check
@@ -398,11 +572,15 @@ pub fn check_batch(
                 .collect();
             reasons.push(format!(
                 "shift in part: {} of {} values tested cost far more than usual beside the rest \
-                 of their column (z ≥ {}): {}",
+                 of their column: {}",
                 group_check.flagged.len(),
                 group_check.tested,
-                crate::gate::show(group_check.z_needed),
-                evidence.shifted_values.join(", ")
+                group_check
+                    .flagged
+                    .iter()
+                    .map(shift::GroupFlag::reason)
+                    .collect::<Vec<_>>()
+                    .join(", ")
             ));
         }
         if let Some(l) = level
@@ -410,6 +588,13 @@ pub fn check_batch(
         {
             levels.push(l);
             meta.push((META_LEVELS.to_vec(), Some(encode_levels(&levels))));
+        }
+        if shifted {
+            shifted_batches.push(batch.0);
+            meta.push((
+                META_SHIFTED.to_vec(),
+                Some(encode_batches(&shifted_batches)),
+            ));
         }
         evidence.hotspots = hotspots(
             &schema,
@@ -425,24 +610,44 @@ pub fn check_batch(
                 Some(s) if s.previous == Some(*p) => s,
                 _ => {
                     let old_reference = old_model.row_losses(&reference_rows, backend)?;
+                    // The day-to-day variance comes from the same kind of
+                    // rows the monitor will test: those whose category
+                    // values both models know. On rows of a weekday or a
+                    // shop neither has seen, two versions of a model can
+                    // differ wildly, and that spread would hide any real
+                    // regression on the rows that are tested.
+                    let (known_ref, _) = known_rows(&reference_rows, &models, &schema, &vocabs);
+                    let keep = |v: &[f64]| -> Vec<f64> {
+                        v.iter()
+                            .zip(&known_ref)
+                            .filter(|(_, k)| **k)
+                            .map(|(x, _)| *x)
+                            .collect()
+                    };
+                    let known_batches: Vec<u64> = reference_batches
+                        .iter()
+                        .zip(&known_ref)
+                        .filter(|(_, k)| **k)
+                        .map(|(b, _)| *b)
+                        .collect();
+                    let old_known = keep(&old_reference);
                     let per_batch =
-                        batch_differences(&reference, &old_reference, &reference_batches);
+                        batch_differences(&keep(&reference), &old_known, &known_batches);
                     let tau2 = monitor::between_batch_variance(&per_batch).unwrap_or(0.0);
                     MonitorState {
                         serving,
                         previous: Some(*p),
-                        prior: Prior::for_loss(mean(&old_reference), tau2),
+                        prior: Prior::new(tau2),
                         observations: Vec::new(),
                     }
                 }
             };
             let old = old_model.row_losses(&rows, backend)?;
-            let d: Vec<f64> = fresh.iter().zip(&old).map(|(s, o)| s - o).collect();
-            let (x, w) = mean_and_variance_of_mean(&d);
+            let (x, w) = log_ratio_and_variance(&fresh, &old);
             if x.is_finite() && w.is_finite() {
                 let o = monitor::observe(&state.prior, &state.observations, x, w);
                 state.observations.push(o);
-                let reading = monitor::read(&state.observations, alpha);
+                let reading = monitor::read(&state.prior, &state.observations, alpha);
                 evidence.mean_loss_previous = Some(mean(&old));
                 evidence.evidence = Some(reading.evidence).filter(|e| e.is_finite());
                 evidence.evidence_needed = Some(reading.needed);
@@ -459,7 +664,7 @@ pub fn check_batch(
             let state = MonitorState {
                 serving,
                 previous: None,
-                prior: Prior::for_loss(1.0, 0.0),
+                prior: Prior::new(0.0),
                 observations: Vec::new(),
             };
             meta.push((META_MONITOR.to_vec(), Some(state.encode())));
@@ -468,7 +673,7 @@ pub fn check_batch(
             "regressed"
         } else if shifted {
             "shifted"
-        } else if level_check.is_some() || previous_model.is_some() {
+        } else if level_check.is_some() || previous_model.is_some() || group_check.tested > 0 {
             "steady"
         } else if new_condition_rows > 0 {
             "new-conditions"
@@ -478,6 +683,8 @@ pub fn check_batch(
         .into();
     }
     evidence.reason = reasons.join("; ");
+    let checked = last_checked(owner)?.map_or(batch, |c| c.max(batch));
+    meta.push((META_CHECKED.to_vec(), Some(checked.key().to_vec())));
 
     let changes: Vec<MetaChange<'_>> = meta.iter().map(|(k, v)| (&k[..], v.clone())).collect();
     let entry = owner.store.record_with_meta(
@@ -510,6 +717,73 @@ pub fn check_batch(
     }))
 }
 
+/// The highest batch whose check ran: the store's marker, or for a store
+/// written before the marker existed, the newest `fresh-checked` entry of
+/// the log (read once: the next check writes the marker).
+fn last_checked(owner: &Owner) -> Result<Option<BatchId>, FreshError> {
+    if let Some(v) = owner.store.meta_value(META_CHECKED)? {
+        return Ok(BatchId::from_key(&v));
+    }
+    let mut last = None;
+    for (_, line) in owner.store.audit_entries()? {
+        // Most lines are other events: skip them without parsing.
+        if !line.windows(13).any(|w| w == b"fresh-checked") {
+            continue;
+        }
+        if let Ok(Entry {
+            event: Event::FreshChecked { check },
+            ..
+        }) = Entry::from_line(&line)
+        {
+            last = last.max(Some(check.batch));
+        }
+    }
+    Ok(last)
+}
+
+/// Batches that missed their check: stored after the last checked batch,
+/// while a model serves that has not trained on them.
+pub fn missing(owner: &Owner) -> Result<Vec<BatchId>, FreshError> {
+    let next = owner.store.next_batch_id();
+    let Some(serving) = owner.store.serving()? else {
+        return Ok(Vec::new());
+    };
+    let trained = model_record(owner, serving)?.trained_through;
+    if next.0 <= trained.0 + 1 {
+        return Ok(Vec::new());
+    }
+    let checked = last_checked(owner)?.map_or(0, |b| b.0);
+    Ok((trained.0.max(checked) + 1..next.0).map(BatchId).collect())
+}
+
+/// Runs the checks that [`missing`] finds, in batch order; returns how
+/// many ran. A check that cannot run (a model that does not load) is
+/// reported and skipped; a failure to write is returned.
+pub fn run_missing(owner: &mut Owner, user: &str) -> Result<usize, FreshError> {
+    let mut ran = 0;
+    for batch in missing(owner)? {
+        match check_batch(owner, batch, user) {
+            Ok(found) => {
+                ran += 1;
+                if let Some(found) = found {
+                    tracing::info!(
+                        "batch {batch}: fresh-data check missed before, run now: {}",
+                        found.verdict()
+                    );
+                    if let Some(r) = &found.rollback {
+                        tracing::warn!("batch {batch}: {}", r.event.summary());
+                    }
+                }
+            }
+            Err(e) if !e.is_fatal() => {
+                tracing::warn!("batch {batch}: the fresh-data check could not run: {e}")
+            }
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(ran)
+}
+
 /// Mean of `d` and the variance of that mean (s² / n; 0 for one value).
 fn mean_and_variance_of_mean(d: &[f64]) -> (f64, f64) {
     let n = d.len();
@@ -524,16 +798,34 @@ fn mean_and_variance_of_mean(d: &[f64]) -> (f64, f64) {
     (m, s2 / n as f64)
 }
 
-/// (mean, variance of the mean) of serving − previous losses per batch.
+/// ln(mean serving loss / mean previous loss) over paired rows, and the
+/// variance of that log ratio from the rows (delta method: the variance of
+/// the mean of s_i/S − p_i/P). NaN when either mean loss is not positive.
+fn log_ratio_and_variance(serving: &[f64], previous: &[f64]) -> (f64, f64) {
+    let (s, p) = (mean(serving), mean(previous));
+    if !(s > 0.0 && p > 0.0 && s.is_finite() && p.is_finite()) {
+        return (f64::NAN, f64::NAN);
+    }
+    let u: Vec<f64> = serving
+        .iter()
+        .zip(previous)
+        .map(|(a, b)| a / s - b / p)
+        .collect();
+    ((s / p).ln(), mean_and_variance_of_mean(&u).1)
+}
+
+/// (log loss ratio, its variance) of serving against previous per batch.
 fn batch_differences(serving: &[f64], previous: &[f64], batches: &[u64]) -> Vec<(f64, f64)> {
-    let mut by_batch: BTreeMap<u64, Vec<f64>> = BTreeMap::new();
+    let mut by_batch: BTreeMap<u64, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
     for ((s, p), b) in serving.iter().zip(previous).zip(batches) {
-        by_batch.entry(*b).or_default().push(s - p);
+        let e = by_batch.entry(*b).or_default();
+        e.0.push(*s);
+        e.1.push(*p);
     }
     by_batch
         .values()
-        .filter(|d| d.len() >= 2)
-        .map(|d| mean_and_variance_of_mean(d))
+        .filter(|(s, _)| s.len() >= 2)
+        .map(|(s, p)| log_ratio_and_variance(s, p))
         .filter(|(m, w)| m.is_finite() && w.is_finite())
         .collect()
 }
@@ -544,34 +836,57 @@ fn batch_differences(serving: &[f64], previous: &[f64], batches: &[u64]) -> Vec<
 /// check's cost per batch flat as the store grows.
 pub const MAX_REFERENCE_ROWS: usize = 50_000;
 
-/// The holdout rows of batches up to `through`, or a uniform sample of
-/// `MAX_REFERENCE_ROWS` of them (the same for the same seed and batches),
-/// with the batch of each row.
-fn reference_rows(owner: &Owner, through: BatchId) -> Result<(RowMatrix, Vec<u64>), StoreError> {
+/// The holdout rows of batches up to `through` except those in `skip`, or
+/// a uniform sample of `MAX_REFERENCE_ROWS` of them (the same for the same
+/// seed and batches), with the batch of each row.
+fn reference_rows(
+    owner: &Owner,
+    through: BatchId,
+    skip: &[u64],
+) -> Result<(RowMatrix, Vec<u64>), StoreError> {
     let store = &owner.store;
     let counts = store.split_counts(Split::Holdout, None, Some(through))?;
     let labels: Vec<u64> = counts
         .iter()
         .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
         .collect();
-    let n = labels.len();
-    if n <= MAX_REFERENCE_ROWS {
+    let skip: std::collections::BTreeSet<u64> = skip.iter().copied().collect();
+    let kept: Vec<usize> = (0..labels.len())
+        .filter(|&i| !skip.contains(&labels[i]))
+        .collect();
+    if kept.len() == labels.len() && labels.len() <= MAX_REFERENCE_ROWS {
         return Ok((store.rows(Split::Holdout, None, Some(through))?, labels));
     }
-    let seed = sample::seed_for(
-        owner.config.training.seed,
-        &[&b"fresh-reference/"[..], &through.key()].concat(),
-    );
-    let picks = sample::choose(n, MAX_REFERENCE_ROWS, &mut Rng::new(seed));
+    let picks: Vec<usize> = if kept.len() <= MAX_REFERENCE_ROWS {
+        kept
+    } else {
+        let seed = sample::seed_for(
+            owner.config.training.seed,
+            &[&b"fresh-reference/"[..], &through.key()].concat(),
+        );
+        sample::choose(kept.len(), MAX_REFERENCE_ROWS, &mut Rng::new(seed))
+            .into_iter()
+            .map(|i| kept[i])
+            .collect()
+    };
     let rows = store.rows_at(Split::Holdout, None, Some(through), &picks)?;
     Ok((rows, picks.iter().map(|&i| labels[i]).collect()))
+}
+
+/// The text of category code `code` of column `col` ("?" when unknown).
+fn value_name(vocabs: &Vocabularies, col: usize, code: u32) -> String {
+    vocabs
+        .get(&col)
+        .and_then(|v| v.value(code))
+        .unwrap_or("?")
+        .to_string()
 }
 
 /// Per category value: its rows' losses on the batch and on the reference.
 fn groups(
     schema: &Schema,
     vocabs: &Vocabularies,
-    fresh: (&RowMatrix, &[f64]),
+    fresh: (&RowMatrix, &[f64], Option<&[f64]>),
     reference: (&RowMatrix, &[f64]),
 ) -> Vec<Group> {
     #[derive(Default)]
@@ -592,6 +907,8 @@ fn groups(
         }
         by_code
     };
+    let (fresh_rows, fresh_losses, errors) = fresh;
+    let fresh = (fresh_rows, fresh_losses);
     let stats = |a: &Acc| {
         let m = a.sum / a.n as f64;
         let var = if a.n > 1 {
@@ -607,25 +924,37 @@ fn groups(
             continue;
         }
         let usual = collect(reference, col);
+        let signed_sums = errors
+            .filter(|e| e.iter().all(|x| x.is_finite()))
+            .map(|e| collect((fresh_rows, e), col));
         for (code, acc) in collect(fresh, col) {
             let Some(r) = usual.get(&code) else {
                 continue;
             };
             let (m, sd) = stats(&acc);
             let (rm, rsd) = stats(r);
+            let signed = signed_sums
+                .as_ref()
+                .and_then(|s| s.get(&code))
+                .filter(|_| rm > 0.0)
+                .map(|e| {
+                    let (mean, sd) = stats(e);
+                    let rmse = rm.sqrt();
+                    shift::Signed {
+                        mean: mean / rmse,
+                        sd: sd / rmse,
+                    }
+                });
             out.push(Group {
                 column: schema.columns[col].name.clone(),
-                value: vocabs
-                    .get(&col)
-                    .and_then(|v| v.value(code))
-                    .unwrap_or("?")
-                    .to_string(),
+                value: value_name(vocabs, col, code),
                 rows: acc.n,
                 mean_loss: m,
                 sd_loss: sd,
                 reference_rows: r.n,
                 reference_mean: rm,
                 reference_sd: rsd,
+                signed,
             });
         }
     }
@@ -680,11 +1009,7 @@ pub fn hotspots(
             }
             found.push(Hotspot {
                 column: schema.columns[col].name.clone(),
-                value: vocabs
-                    .get(&col)
-                    .and_then(|v| v.value(code))
-                    .unwrap_or("?")
-                    .to_string(),
+                value: value_name(vocabs, col, code),
                 rows: count,
                 mean_loss: total / count as f64,
                 usual_loss: base,
@@ -708,17 +1033,43 @@ fn mean(v: &[f64]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::gate::near;
+
+    #[test]
+    fn value_levels_round_trip_and_stay_small() {
+        let mut h = shift::ValueHistory::new();
+        h.insert(("zone".into(), "north".into()), vec![0.5, -0.25, 1.0]);
+        h.insert(("promo".into(), "tasting, free".into()), vec![]);
+        assert_eq!(decode_value_levels(&encode_value_levels(&h, 1 << 20)), h);
+        // A damaged tail loses only the entry it cuts.
+        let bytes = encode_value_levels(&h, 1 << 20);
+        let cut = decode_value_levels(&bytes[..bytes.len() - 3]);
+        assert_eq!(cut.len(), 1);
+        // Many values with long histories: older excesses go first, never
+        // below the history a test needs.
+        let mut big = shift::ValueHistory::new();
+        for c in 0..40 {
+            for v in 0..7 {
+                big.insert((format!("col{c}"), format!("value{v}")), vec![0.1; 100]);
+            }
+        }
+        let bytes = encode_value_levels(&big, VALUE_LEVELS_MAX_BYTES);
+        assert!(bytes.len() <= VALUE_LEVELS_MAX_BYTES, "{}", bytes.len());
+        let back = decode_value_levels(&bytes);
+        assert_eq!(back.len(), 280);
+        let kept = back.values().next().unwrap().len();
+        assert!(
+            (shift::LEVEL_MIN_HISTORY..LEVEL_HISTORY).contains(&kept),
+            "{kept}"
+        );
+    }
 
     #[test]
     fn monitor_state_round_trips_and_stays_under_the_value_limit() {
         let mut state = MonitorState {
             serving: ModelId(7),
             previous: Some(ModelId(3)),
-            prior: Prior {
-                theta: 0.2,
-                floor: 0.02,
-                tau2: 0.001,
-            },
+            prior: Prior::new(0.001),
             observations: (0..10)
                 .map(|i| Observation {
                     x: i as f64 * 0.1,
@@ -738,6 +1089,17 @@ mod tests {
             MONITOR_MAX_BATCHES
         );
         assert_eq!(MonitorState::decode(&bytes[..30]), None);
+        // The layout before log ratios (θ, floor, τ² after the ids; no
+        // version): its observations are differences of losses, so it
+        // does not decode and the monitor starts afresh.
+        let mut old = Vec::new();
+        old.extend_from_slice(&ModelId(7).key());
+        old.extend_from_slice(&ModelId(3).key());
+        for v in [9.0f64, 0.9, 4.0, 12.0, 1.0, -2.0] {
+            old.extend_from_slice(&v.to_le_bytes());
+        }
+        assert_eq!(old.len(), 40 + 24);
+        assert_eq!(MonitorState::decode(&old), None);
     }
 
     #[test]
@@ -757,7 +1119,13 @@ mod tests {
         );
         // Batch 3 has one row: no within variance, left out.
         assert_eq!(d.len(), 2);
-        assert_eq!(d[0], (3.0, 1.0));
-        assert_eq!(d[1], (0.5, 0.25));
+        // Batch 1: losses 4 against 1, s_i/S − p_i/P = ∓0.25.
+        near(d[0].0, 4f64.ln(), 1e-12);
+        near(d[0].1, 0.0625, 1e-12);
+        // Batch 2: 1 against 0.5, s_i/S − p_i/P = ∓1.
+        near(d[1].0, 2f64.ln(), 1e-12);
+        near(d[1].1, 1.0, 1e-12);
+        // No positive mean loss: no ratio.
+        assert!(log_ratio_and_variance(&[0.0, 0.0], &[1.0, 2.0]).0.is_nan());
     }
 }

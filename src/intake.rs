@@ -48,7 +48,7 @@ pub enum Outcome {
         of: BatchId,
         entry: Entry,
     },
-    Rejected {
+    Refused {
         refusal: Refusal,
         kept_as: Option<PathBuf>,
         entry: Entry,
@@ -65,8 +65,8 @@ pub enum Outcome {
 }
 
 impl Outcome {
-    pub fn is_rejected(&self) -> bool {
-        matches!(self, Outcome::Rejected { .. })
+    pub fn is_refused(&self) -> bool {
+        matches!(self, Outcome::Refused { .. })
     }
 }
 
@@ -98,7 +98,7 @@ fn display_name(path: &Path) -> String {
     )
 }
 
-/// The name a refused file's copy and reasons get under `rejected/`: only
+/// The name a refused file's copy and reasons get under `refused/`: only
 /// the path's last component, so nothing is written outside the state
 /// dir. A path without one (`/`, `dir/..`) is kept as `unnamed`.
 fn kept_name(path: &Path) -> String {
@@ -152,7 +152,7 @@ pub fn take_file(
                 }],
                 total: 1,
             };
-            return reject(owner, path, &name, None, refusal, source, user, now);
+            return refuse(owner, path, &name, None, refusal, source, user, now);
         }
         Err(ReadError::Io { path, source }) => return Err(StateError::Io { path, source }),
         Err(e) => unreachable!("every other read error is a refusal: {e}"),
@@ -192,11 +192,11 @@ pub fn take_file(
         let writer = scope.spawn(|| fsutil::write_atomic(&pending, &raw.bytes));
         let steps = parse_and_measure(owner, &raw, &limits, path);
         let written = writer.join().expect("the archive writer panicked");
-        let (batch, drift) = match steps {
+        let parsed = match steps {
             Ok(Ok(done)) => done,
             Ok(Err(refusal)) => {
                 let _ = fs::remove_file(&pending);
-                return reject(owner, path, &name, Some(&raw), refusal, source, user, now);
+                return refuse(owner, path, &name, Some(&raw), refusal, source, user, now);
             }
             Err(e) => {
                 let _ = fs::remove_file(&pending);
@@ -207,20 +207,27 @@ pub fn take_file(
             .and_then(|()| crate::failpoint::hit("intake:after-pending"))
             .map_err(io_at(&pending))?;
         commit_and_archive(
-            owner, path, source, &name, &raw, &batch, drift, &pending, user, now,
+            owner, path, source, &name, &raw, parsed, &pending, user, now,
         )
     })
 }
 
-/// Parses and validates the file, then measures its drift against the
-/// stored training rows. The outer error is the machine's, the inner the
-/// file's.
+/// A parsed file with what intake measured before storing it.
+struct Parsed {
+    batch: ingest::Batch,
+    drift: Option<crate::drift::Measurement>,
+    suspect: Option<crate::audit::SuspectEvidence>,
+}
+
+/// Parses and validates the file, measures its drift against the stored
+/// training rows and runs the suspect-batch check. The outer error is the
+/// machine's, the inner the file's.
 fn parse_and_measure(
     owner: &Owner,
     raw: &ingest::RawFile,
     limits: &Limits,
     path: &Path,
-) -> Result<Result<(ingest::Batch, Option<crate::drift::Measurement>), Refusal>, StateError> {
+) -> Result<Result<Parsed, Refusal>, StateError> {
     let batch = match ingest::parse(
         &raw.bytes,
         owner.store.schema(),
@@ -261,7 +268,20 @@ fn parse_and_measure(
             &owner.config.drift.rule(),
         )
     };
-    Ok(Ok((batch, drift)))
+    // Before anything can train on it: is the data itself broken?
+    let suspect = crate::suspect::check(owner, &batch)?;
+    if let Some(s) = suspect.as_ref().filter(|s| s.suspect) {
+        tracing::warn!(
+            "{}: suspect, stored but set aside: {}",
+            path.display(),
+            s.why.join("; ")
+        );
+    }
+    Ok(Ok(Parsed {
+        batch,
+        drift,
+        suspect,
+    }))
 }
 
 /// One transaction for the rows and their log entry, then the log mirror,
@@ -273,15 +293,20 @@ fn commit_and_archive(
     source: Source,
     name: &str,
     raw: &ingest::RawFile,
-    batch: &ingest::Batch,
-    drift: Option<crate::drift::Measurement>,
+    parsed: Parsed,
     pending: &Path,
     user: &str,
     now: DateTime<Utc>,
 ) -> Result<Outcome, StateError> {
-    let (record, entry) = owner
-        .store
-        .commit_batch(batch, name, &raw.hash, drift, user, now)?;
+    let (record, entry) = owner.store.commit_batch(
+        &parsed.batch,
+        name,
+        &raw.hash,
+        parsed.drift,
+        parsed.suspect,
+        user,
+        now,
+    )?;
     crate::failpoint::hit("intake:after-commit").map_err(io_at(&owner.state.audit()))?;
     owner.mirror.append(&[entry.line().as_bytes()])?;
     let archived = archive_path(&owner.state, record.id);
@@ -297,7 +322,7 @@ fn commit_and_archive(
 }
 
 #[allow(clippy::too_many_arguments)]
-fn reject(
+fn refuse(
     owner: &mut Owner,
     path: &Path,
     name: &str,
@@ -307,31 +332,31 @@ fn reject(
     user: &str,
     now: DateTime<Utc>,
 ) -> Result<Outcome, StateError> {
-    let rejected = owner.state.rejected();
+    let refused = owner.state.refused();
     let hash = raw.map(|r| r.hash.to_hex().to_string());
     // Keep the refused bytes under the file's own name; a different file
     // that reuses the name gets its hash added rather than overwriting.
     let mut kept_as = None;
     let own = kept_name(path);
     if let Some(raw) = raw {
-        let mut dest = rejected.join(&own);
+        let mut dest = refused.join(&own);
         let same = fs::read(&dest).map(|b| b == raw.bytes).unwrap_or(false);
         if dest.exists() && !same {
             let short = &raw.hash.to_hex()[..12];
-            dest = rejected.join(format!("{own}.{short}"));
+            dest = refused.join(format!("{own}.{short}"));
         }
         fsutil::write_new(&dest, &raw.bytes).map_err(io_at(&dest))?;
         kept_as = Some(dest);
     } else if source == Source::Inbox {
         // Links, special and oversized files are moved aside unread.
-        let mut dest = rejected.join(&own);
+        let mut dest = refused.join(&own);
         if fs::symlink_metadata(&dest).is_ok() {
-            dest = rejected.join(format!("{own}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
+            dest = refused.join(format!("{own}.{}", now.format("%Y%m%dT%H%M%S%.3f")));
         }
         fs::rename(path, &dest).map_err(io_at(path))?;
         // Both folders changed: without their fsync the link could be
         // back in the inbox after a power loss.
-        fsutil::sync_dir(&rejected).map_err(io_at(&rejected))?;
+        fsutil::sync_dir(&refused).map_err(io_at(&refused))?;
         let inbox = fsutil::parent_dir(path);
         fsutil::sync_dir(inbox).map_err(io_at(inbox))?;
         kept_as = Some(dest);
@@ -340,7 +365,7 @@ fn reject(
         Some(p) => format!("{}.why.json", display_name(p)),
         None => format!("{own}.why.json"),
     };
-    let why_path = rejected.join(&why_name);
+    let why_path = refused.join(&why_name);
     let why = Why {
         file: name,
         hash: hash.clone(),
@@ -359,7 +384,7 @@ fn reject(
             .display()
             .to_string()
     };
-    let event = Event::BatchRejected {
+    let event = Event::BatchRefused {
         file: name.to_string(),
         file_hash: hash.unwrap_or_default(),
         problems: refusal.total as u64,
@@ -371,7 +396,7 @@ fn reject(
     if raw.is_some() {
         remove_source(path, source)?;
     }
-    Ok(Outcome::Rejected {
+    Ok(Outcome::Refused {
         refusal,
         kept_as,
         entry,
@@ -450,13 +475,13 @@ mod tests {
         std::os::unix::fs::symlink(&target, &link).unwrap();
         fsutil::SYNCED_DIRS.with(|s| s.borrow_mut().clear());
         let outcome = take_file(&mut owner, &link, Source::Inbox, "ana", Utc::now()).unwrap();
-        assert!(outcome.is_rejected(), "{outcome:?}");
+        assert!(outcome.is_refused(), "{outcome:?}");
         assert!(
             fs::symlink_metadata(&link).is_err(),
             "the link left the inbox"
         );
         let synced = fsutil::SYNCED_DIRS.with(|s| s.borrow().clone());
-        for folder in [state.inbox(), state.rejected()] {
+        for folder in [state.inbox(), state.refused()] {
             assert!(
                 synced.contains(&folder),
                 "{} was not synced after the move: {synced:?}",

@@ -6,6 +6,7 @@
 //! The `cli` module holds one file per command; `main.rs` only maps errors
 //! to exit codes.
 
+pub mod aside;
 pub mod audit;
 pub mod backup;
 pub mod baseline;
@@ -26,6 +27,7 @@ pub mod ingest;
 pub mod intake;
 pub mod lifecycle;
 pub mod model;
+pub mod provenance;
 pub mod refold;
 pub mod report;
 pub mod rng;
@@ -35,5 +37,6 @@ pub mod scoring;
 pub mod sim;
 pub mod state;
 pub mod store;
+pub mod suspect;
 pub mod train;
 pub mod verify;

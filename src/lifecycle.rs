@@ -9,9 +9,8 @@ use crate::audit::{Entry, Event, FreshEvidence};
 use crate::cycle::META_PENDING;
 use crate::ids::ModelId;
 use crate::model::ModelError;
-use crate::model::checkpoint::{Checkpoint, model_dir};
 use crate::state::{Owner, StateError};
-use crate::store::{META_SERVING, StoreError};
+use crate::store::{META_SERVING, Store, StoreError};
 
 /// Why a decision could not be taken.
 #[derive(Debug, thiserror::Error)]
@@ -28,6 +27,10 @@ pub enum DecisionError {
     NoPrevious(ModelId),
     #[error("a reason is required (--reason TEXT): it goes into the audit log")]
     NoReason,
+    #[error(
+        "{id} trained on {batches}, set aside since (directly or through the model it started from), and the gate judged it with their holdout rows; decline it (the next cycle trains without them) or bring them back first"
+    )]
+    SawSetAside { id: ModelId, batches: String },
     #[error("model {id} cannot serve: {source}")]
     Unusable {
         id: ModelId,
@@ -71,12 +74,10 @@ fn check_reason(reason: &str) -> Result<(), DecisionError> {
 
 /// A model may serve only if its checkpoint loads, verifies and matches the schema.
 fn usable(owner: &Owner, id: ModelId) -> Result<(), DecisionError> {
-    Checkpoint::load(
-        &model_dir(&owner.state.models(), id),
-        &owner.config.schema_fingerprint(),
-    )
-    .map(|_| ())
-    .map_err(|source| DecisionError::Unusable { id, source })
+    owner
+        .checkpoint(id)
+        .map(|_| ())
+        .map_err(|source| DecisionError::Unusable { id, source })
 }
 
 fn commit(
@@ -120,6 +121,16 @@ pub fn approve(
 ) -> Result<Entry, DecisionError> {
     check_reason(reason)?;
     ensure_pending(owner, id)?;
+    // A batch set aside after the candidate's cycle (while it waited, or
+    // queued behind that cycle in the daemon) is in its weights and in the
+    // evidence it waits with: approving it would serve what was set aside.
+    let saw = crate::cycle::taint(&owner.store, id)?.batches;
+    if !saw.is_empty() {
+        return Err(DecisionError::SawSetAside {
+            id,
+            batches: crate::provenance::ranges_text(&saw.into_iter().collect()),
+        });
+    }
     usable(owner, id)?;
     let previous = owner.store.serving()?;
     let event = Event::Approved {
@@ -200,24 +211,32 @@ pub fn rollback_automatic(
     commit(owner, event, user, Some(to), false)
 }
 
-/// How `current` came to serve, from the log: the model serving before it,
-/// and whether it came back by a rollback (rather than a promotion or an
-/// approval).
+/// How `current` came to serve: the model serving before it, and whether
+/// it came back by a rollback (rather than a promotion or an approval).
+/// Kept in the store beside each move of the serving pointer; a model that
+/// arrived in a store written before those records is looked up in the log.
 fn arrival(owner: &Owner, current: ModelId) -> Result<(Option<ModelId>, bool), DecisionError> {
+    if let Some(found) = owner.store.arrival(current)? {
+        return Ok(found);
+    }
+    Ok(arrival_from_log(&owner.store, current)?)
+}
+
+/// [`arrival`] read from the whole log: the last entry that made `current`
+/// serve. (None, false) when it never served.
+pub fn arrival_from_log(
+    store: &Store,
+    current: ModelId,
+) -> Result<(Option<ModelId>, bool), StoreError> {
     let mut found = (None, false);
-    for (_, line) in owner.store.audit_entries()? {
+    for (_, line) in store.audit_entries()? {
         let Ok(entry) = Entry::from_line(&line) else {
             continue;
         };
-        match entry.event {
-            Event::Promoted {
-                model, previous: p, ..
-            }
-            | Event::Approved {
-                model, previous: p, ..
-            } if model == current => found = (p, false),
-            Event::RolledBack { to, from, .. } if to == current => found = (Some(from), true),
-            _ => {}
+        if let Some((model, previous, by_rollback)) = entry.event.arrival()
+            && model == current
+        {
+            found = (previous, by_rollback);
         }
     }
     Ok(found)
@@ -237,4 +256,112 @@ pub fn replaced_by_promotion(
 /// The model that served before `current` started serving.
 fn previous_of(owner: &Owner, current: ModelId) -> Result<Option<ModelId>, DecisionError> {
     Ok(arrival(owner, current)?.0)
+}
+
+#[cfg(test)]
+pub(crate) mod tests {
+    use super::*;
+    use crate::audit::GateEvidence;
+    use crate::config::Config;
+    use crate::schema::Schema;
+
+    /// A new store under `dir` for a small schema.
+    fn small_config() -> Config {
+        let text = "[data]\ntarget = \"y\"\ntask = \"regression\"\n[[data.columns]]\nname = \"x\"\n\
+                    kind = \"number\"\n[[data.columns]]\nname = \"y\"\nkind = \"number\"\n";
+        Config::parse(text, std::path::Path::new("t.toml")).unwrap()
+    }
+
+    pub(crate) fn store_in(dir: &std::path::Path) -> Store {
+        store_at(dir, Store::create)
+    }
+
+    /// The small schema's store under `dir`, made or opened by `how`.
+    fn store_at(
+        dir: &std::path::Path,
+        how: fn(&std::path::Path, &Schema, &str) -> Result<Store, StoreError>,
+    ) -> Store {
+        let config = small_config();
+        how(
+            &dir.join("store"),
+            &Schema::from_config(&config),
+            &config.schema_fingerprint(),
+        )
+        .unwrap()
+    }
+
+    pub(crate) fn promoted(model: u64, previous: Option<u64>) -> Event {
+        Event::Promoted {
+            cycle: model,
+            model: ModelId(model),
+            previous: previous.map(ModelId),
+            evidence: GateEvidence::without_test(100, 1.0, 0.9, "better".into()),
+        }
+    }
+
+    #[test]
+    fn stored_arrivals_match_a_full_reading_of_the_log() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = store_in(dir.path());
+        let rolled = |from: u64, to: u64| Event::RolledBack {
+            from: ModelId(from),
+            to: ModelId(to),
+            how: "manual".into(),
+            reason: "test".into(),
+            evidence: None,
+        };
+        let approved = |model: u64, previous: u64| Event::Approved {
+            model: ModelId(model),
+            previous: Some(ModelId(previous)),
+            reason: "looks right".into(),
+        };
+        let declined = |model: u64| Event::Declined {
+            model: ModelId(model),
+            reason: "no".into(),
+        };
+        // Every way the pointer moves, a model arriving twice in different
+        // ways (m1, m2), and entries that move nothing.
+        let events = vec![
+            promoted(1, None),
+            promoted(2, Some(1)),
+            rolled(2, 1),
+            declined(3),
+            approved(4, 1),
+            promoted(5, Some(4)),
+            rolled(5, 2),
+            promoted(6, Some(2)),
+            rolled(6, 5),
+            promoted(1, Some(5)),
+        ];
+        for e in events {
+            store
+                .record_with_meta(e, "tester", chrono::Utc::now(), &[])
+                .unwrap();
+        }
+        for m in 1..=7 {
+            let from_log = arrival_from_log(&store, ModelId(m)).unwrap();
+            let stored = store.arrival(ModelId(m)).unwrap();
+            if [3, 7].contains(&m) {
+                assert_eq!(stored, None, "m{m} never served");
+                assert_eq!(from_log, (None, false));
+            } else {
+                assert_eq!(stored, Some(from_log), "m{m}");
+            }
+        }
+        assert_eq!(
+            store.arrival(ModelId(1)).unwrap(),
+            Some((Some(ModelId(5)), false))
+        );
+        assert_eq!(
+            store.arrival(ModelId(5)).unwrap(),
+            Some((Some(ModelId(6)), true))
+        );
+        // And they survive a reopen, as the log does.
+        drop(store);
+        let store = store_at(dir.path(), Store::open);
+        assert_eq!(
+            store.arrival(ModelId(2)).unwrap(),
+            Some((Some(ModelId(5)), true))
+        );
+    }
 }

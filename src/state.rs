@@ -43,8 +43,14 @@ impl StateDir {
     pub fn archive(&self) -> PathBuf {
         self.root.join("archive")
     }
-    pub fn rejected(&self) -> PathBuf {
-        self.root.join("rejected")
+    /// Refused files and their reasons.
+    pub fn refused(&self) -> PathBuf {
+        self.root.join(REFUSED)
+    }
+    /// Where versions before the name was settled kept refused files; an
+    /// owner's start moves them to `refused()` (see `rename_refused_folder`).
+    pub fn former_refused(&self) -> PathBuf {
+        self.root.join(FORMER_REFUSED)
     }
     pub fn models(&self) -> PathBuf {
         self.root.join("models")
@@ -82,6 +88,8 @@ pub enum StateError {
     Audit(#[from] crate::audit::MirrorError),
     #[error(transparent)]
     Export(#[from] crate::export::ExportError),
+    #[error("the fresh-data check of a batch that missed it: {0}")]
+    Fresh(Box<crate::fresh::FreshError>),
 }
 
 fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
@@ -152,6 +160,20 @@ pub struct Owner {
     _lock: OwnerLock,
 }
 
+impl Owner {
+    /// Model `id`'s checkpoint, loaded, verified and checked against this
+    /// state dir's schema.
+    pub fn checkpoint(
+        &self,
+        id: crate::ids::ModelId,
+    ) -> Result<crate::model::checkpoint::Checkpoint, crate::model::ModelError> {
+        crate::model::checkpoint::Checkpoint::load(
+            &crate::model::checkpoint::model_dir(&self.state.models(), id),
+            &self.config.schema_fingerprint(),
+        )
+    }
+}
+
 /// Creates a state dir (mode 0700) from a config: folders, the config copy,
 /// the store and the first audit entry.
 pub fn create(
@@ -189,7 +211,7 @@ pub fn create(
         state.inbox(),
         state.inbox().join(".tmp"),
         state.archive(),
-        state.rejected(),
+        state.refused(),
         state.models(),
     ] {
         builder.create(&dir).map_err(io_at(&dir))?;
@@ -232,11 +254,18 @@ pub struct Recovery {
     /// The configured ONNX export did not hold the serving model and was
     /// written again.
     pub export_rewritten: bool,
+    /// Refused files moved from the folder's former name (`None`: there was
+    /// no such folder).
+    pub refused_moved: Option<u64>,
+    /// Batches stored without their fresh-data check (a crash or failure
+    /// between the commit and the check) whose check ran now.
+    pub fresh_checks_run: usize,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
 /// repairs whatever a crash left (stale temps, unarchived accepted files,
-/// audit lines missing from `audit.jsonl`).
+/// audit lines missing from `audit.jsonl`, fresh-data checks that did not
+/// run).
 pub fn open(state: &StateDir, config: &Config) -> Result<(Owner, Recovery), StateError> {
     open_with(state, config, true)
 }
@@ -269,10 +298,13 @@ fn open_with(
     for dir in [
         state.root().to_path_buf(),
         state.archive(),
-        state.rejected(),
+        state.refused(),
+        state.former_refused(),
         state.models(),
     ] {
-        rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
+        if dir.is_dir() {
+            rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
+        }
     }
     crate::failpoint::hit("state:during-recovery").map_err(io_at(state.root()))?;
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
@@ -296,19 +328,80 @@ fn open_with(
     if catch_up_log {
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
         rec.abandoned_cycle = close_open_cycle(&mut store, &mirror, &current_user())?;
+        rec.refused_moved = rename_refused_folder(state, &mut store, &mirror, &current_user())?;
         rec.export_rewritten =
             crate::export::catch_up(state, config, &mut store, &mirror, &current_user())?;
     }
-    Ok((
-        Owner {
-            state: state.clone(),
-            config: config.clone(),
-            store,
-            mirror,
-            _lock: lock,
+    let mut owner = Owner {
+        state: state.clone(),
+        config: config.clone(),
+        store,
+        mirror,
+        _lock: lock,
+    };
+    if catch_up_log {
+        // Last: the check may roll back, which needs the log caught up.
+        rec.fresh_checks_run = crate::fresh::run_missing(&mut owner, &current_user())
+            .map_err(|e| StateError::Fresh(Box::new(e)))?;
+    }
+    Ok((owner, rec))
+}
+
+/// The folder refused files are written to.
+pub const REFUSED: &str = "refused";
+/// Its name in state dirs written before the name was settled.
+pub const FORMER_REFUSED: &str = "rejected";
+
+/// Moves refused files from the folder's former name to `refused/` and
+/// records it, so that `kept_as` paths of earlier entries can be followed.
+/// The entry is written first: a crash before the move ends leaves the old
+/// folder, and the next start moves the rest and records that too, so the
+/// log may repeat the move but never miss it. A name already taken in
+/// `refused/` (which no version writes twice) stays where it is. Returns
+/// the files moved, or `None` when there is no old folder.
+pub fn rename_refused_folder(
+    state: &StateDir,
+    store: &mut Store,
+    mirror: &Mirror,
+    user: &str,
+) -> Result<Option<u64>, StateError> {
+    let old = state.former_refused();
+    if !old.is_dir() {
+        return Ok(None);
+    }
+    let new = state.refused();
+    let mut names = Vec::new();
+    for item in fs::read_dir(&old).map_err(io_at(&old))? {
+        let name = item.map_err(io_at(&old))?.file_name();
+        if fs::symlink_metadata(new.join(&name)).is_err() {
+            names.push(name);
+        }
+    }
+    let entry = store.record(
+        Event::FolderRenamed {
+            from: FORMER_REFUSED.into(),
+            to: REFUSED.into(),
+            files: names.len() as u64,
         },
-        rec,
-    ))
+        user,
+        chrono::Utc::now(),
+    )?;
+    mirror.append(&[entry.line().as_bytes()])?;
+    if !new.exists() {
+        // One atomic rename moves everything.
+        fs::rename(&old, &new).map_err(io_at(&old))?;
+    } else {
+        for name in &names {
+            fs::rename(old.join(name), new.join(name)).map_err(io_at(&old.join(name)))?;
+        }
+        fsutil::sync_dir(&new).map_err(io_at(&new))?;
+        // Left only if something in it could not move; then it stays.
+        if fs::read_dir(&old).map_err(io_at(&old))?.next().is_none() {
+            fs::remove_dir(&old).map_err(io_at(&old))?;
+        }
+    }
+    fsutil::sync_dir(state.root()).map_err(io_at(state.root()))?;
+    Ok(Some(names.len() as u64))
 }
 
 /// Records a cycle that started and never ended (cut short by a crash, a

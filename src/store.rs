@@ -7,6 +7,7 @@
 //! |-----------|---------------------------------------|--------------------------------|
 //! | `meta`    | name                                  | JSON or u64                    |
 //! | `meta`    | `drift_history/` + column name        | JSON `drift::PastDistances`    |
+//! | `meta`    | `arrival/` + `ModelId`                | previous `ModelId` (0: none), rollback byte |
 //! | `batches` | `BatchId`                             | JSON `BatchRecord`             |
 //! | `hashes`  | blake3 of the file (32 bytes)         | `BatchId`                      |
 //! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s    |
@@ -65,12 +66,33 @@ pub struct BatchRecord {
     pub audit_seq: AuditSeq,
     /// Number-column statistics of the batch's training rows.
     pub train_stats: ColumnStats,
+    /// Set when the batch is set aside: stored, but not read by training,
+    /// holdout scoring, baselines, drift or the fresh-data check. Absent in
+    /// records written before batches could be set aside.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub set_aside: Option<SetAside>,
 }
 
 impl BatchRecord {
     pub fn rows(&self) -> u64 {
         self.train_rows + self.holdout_rows
     }
+
+    pub fn is_set_aside(&self) -> bool {
+        self.set_aside.is_some()
+    }
+}
+
+/// Why and by whom a batch was set aside.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SetAside {
+    /// `true`: by the suspect-batch check at intake; `false`: by hand.
+    pub automatic: bool,
+    pub reason: String,
+    pub by: String,
+    pub at: String,
+    /// The audit entry that set it aside.
+    pub audit_seq: AuditSeq,
 }
 
 /// Totals kept up to date in the same transaction as each batch.
@@ -128,6 +150,8 @@ pub struct Store {
     schema: Schema,
     vocabs: Vocabularies,
     totals: Totals,
+    /// Batches set aside (from their records; kept in step by every change).
+    aside: std::collections::BTreeSet<BatchId>,
     last_audit: Option<(AuditSeq, String)>,
 }
 
@@ -149,6 +173,20 @@ pub const META_OPEN_CYCLE: &[u8] = b"open_cycle";
 /// (at most `drift::MAX_WINDOW` numbers each, so far below 64 KiB). A store
 /// without them (written by an older version) starts with empty histories.
 pub const META_DRIFT_HISTORY: &[u8] = b"drift_history/";
+/// Prefix of the keys saying how each model last came to serve (see
+/// [`Store::arrival`]); written by the transaction of the entry that moved
+/// the serving pointer, so they always agree with the log.
+pub const META_ARRIVAL: &[u8] = b"arrival/";
+
+fn arrival_key(model: ModelId) -> Vec<u8> {
+    [META_ARRIVAL, &model.key()[..]].concat()
+}
+
+fn encode_arrival(previous: Option<ModelId>, by_rollback: bool) -> Vec<u8> {
+    let mut v = previous.map_or([0; 8], |p| p.key()).to_vec();
+    v.push(u8::from(by_rollback));
+    v
+}
 
 impl Store {
     /// Creates a new store at `path` (which must not exist yet).
@@ -223,6 +261,7 @@ impl Store {
             schema,
             vocabs: Vocabularies::new(),
             totals: Totals::default(),
+            aside: Default::default(),
             last_audit: None,
         })
     }
@@ -266,6 +305,12 @@ impl Store {
             .into_iter()
             .map(|(c, v)| (c, Vocab::from_values(v)))
             .collect();
+        self.aside = self
+            .batches()?
+            .into_iter()
+            .filter(BatchRecord::is_set_aside)
+            .map(|r| r.id)
+            .collect();
         if let Some(kv) = self.audit.last().map_err(|e| self.sled_err(e))? {
             let seq = AuditSeq::from_key(&kv.0).ok_or_else(|| self.corrupt("bad audit key"))?;
             let entry = Entry::from_line(&kv.1)
@@ -289,6 +334,23 @@ impl Store {
 
     pub fn totals(&self) -> &Totals {
         &self.totals
+    }
+
+    /// Batches set aside, in order.
+    pub fn set_aside_batches(&self) -> &std::collections::BTreeSet<BatchId> {
+        &self.aside
+    }
+
+    /// Number-column statistics over the training rows of the batches not
+    /// set aside (what models are standardised with).
+    pub fn train_stats(&self) -> Result<ColumnStats, StoreError> {
+        if self.aside.is_empty() {
+            return Ok(self.totals.train_stats.clone());
+        }
+        Ok(self
+            .batches_in(None, None)?
+            .iter()
+            .fold(ColumnStats::default(), |acc, r| acc.merge(&r.train_stats)))
     }
 
     /// The batch a file hash was accepted as, if any.
@@ -378,12 +440,29 @@ impl Store {
         Ok(RowMatrix::from_cells(width, cells))
     }
 
-    /// Rows of one split, for batches in `from..=to` (all when `None`).
+    /// Rows of one split, for batches in `from..=to` (all when `None`),
+    /// leaving out batches set aside.
     pub fn rows(
         &self,
         split: Split,
         from: Option<BatchId>,
         to: Option<BatchId>,
+    ) -> Result<RowMatrix, StoreError> {
+        self.rows_of(split, from, to, false)
+    }
+
+    /// Rows of one split of one batch, also when it is set aside (for
+    /// checking, verifying and migrating the stored rows themselves).
+    pub fn batch_rows(&self, split: Split, batch: BatchId) -> Result<RowMatrix, StoreError> {
+        self.rows_of(split, Some(batch), Some(batch), true)
+    }
+
+    fn rows_of(
+        &self,
+        split: Split,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+        with_aside: bool,
     ) -> Result<RowMatrix, StoreError> {
         let width = self.schema.width();
         let mut out = RowMatrix::new(width);
@@ -400,7 +479,7 @@ impl Store {
             if id > hi {
                 break;
             }
-            if split_byte != split.byte() {
+            if split_byte != split.byte() || (!with_aside && self.aside.contains(&id)) {
                 continue;
             }
             out.extend(&self.decode_chunk(id, &v)?);
@@ -408,7 +487,8 @@ impl Store {
         Ok(out)
     }
 
-    /// Accepted batches with ids in `from..=to` (all when `None`), in order.
+    /// Accepted batches with ids in `from..=to` (all when `None`) that are
+    /// not set aside, in order.
     fn batches_in(
         &self,
         from: Option<BatchId>,
@@ -419,13 +499,16 @@ impl Store {
         if lo > hi {
             return Ok(Vec::new());
         }
-        self.batches
-            .range(lo.key()..=hi.key())
-            .map(|kv| {
-                let (_, v) = kv.map_err(|e| self.sled_err(e))?;
-                serde_json::from_slice(&v).map_err(|e| self.corrupt(format!("batch record: {e}")))
-            })
-            .collect()
+        let mut out = Vec::new();
+        for kv in self.batches.range(lo.key()..=hi.key()) {
+            let (_, v) = kv.map_err(|e| self.sled_err(e))?;
+            let rec: BatchRecord = serde_json::from_slice(&v)
+                .map_err(|e| self.corrupt(format!("batch record: {e}")))?;
+            if !self.aside.contains(&rec.id) {
+                out.push(rec);
+            }
+        }
+        Ok(out)
     }
 
     /// How many rows `rows(split, from, to)` would return, from the batch
@@ -590,6 +673,9 @@ impl Store {
         time: chrono::DateTime<chrono::Utc>,
         meta_values: &[MetaChange<'_>],
     ) -> Result<Entry, StoreError> {
+        // A move of the serving pointer also records how the model arrived,
+        // so nobody needs to read the whole log to learn it.
+        let arrival = entry_arrival(&event);
         let entry = self.seal(event, user, time);
         let line = entry.line().into_bytes();
         let result: Result<(), TransactionError<StoreError>> = (&self.meta, &self.audit)
@@ -599,6 +685,9 @@ impl Store {
                         Some(v) => meta.insert(*k, v.as_slice())?,
                         None => meta.remove(*k)?,
                     };
+                }
+                if let Some((k, v)) = &arrival {
+                    meta.insert(k.as_slice(), v.as_slice())?;
                 }
                 audit.insert(&entry.seq.key()[..], line.as_slice())?;
                 Ok(())
@@ -673,6 +762,24 @@ impl Store {
         Ok(out)
     }
 
+    /// How `model` last came to serve, as recorded beside the entry that
+    /// moved the serving pointer: the model serving before it and whether
+    /// it came back by a rollback. `None` when no such record exists (the
+    /// model never served, or it arrived in a store written before these
+    /// records; `lifecycle` then reads the log).
+    pub fn arrival(&self, model: ModelId) -> Result<Option<(Option<ModelId>, bool)>, StoreError> {
+        let Some(v) = self.meta_value(&arrival_key(model))? else {
+            return Ok(None);
+        };
+        if v.len() != 9 || v[8] > 1 {
+            return Err(self.corrupt(format!(
+                "arrival record of {model} has a bad length or flag"
+            )));
+        }
+        let previous = ModelId::from_key(&v[..8]).filter(|p| p.0 != 0);
+        Ok(Some((previous, v[8] == 1)))
+    }
+
     /// Records an event that touches no data (rejections, duplicates, …).
     pub fn record(
         &mut self,
@@ -680,6 +787,10 @@ impl Store {
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<Entry, StoreError> {
+        debug_assert!(
+            entry_arrival(&event).is_none(),
+            "a move of the serving pointer goes through record_with_meta"
+        );
         let entry = self.seal(event, user, time);
         self.audit
             .insert(entry.seq.key(), entry.line().into_bytes())
@@ -693,17 +804,23 @@ impl Store {
     /// vocabulary, totals, the columns' drift histories and the audit entry
     /// in one transaction, then makes it durable. Returns the batch record
     /// and the sealed audit entry.
+    #[allow(clippy::too_many_arguments)]
     pub fn commit_batch(
         &mut self,
         batch: &Batch,
         file: &str,
         hash: &blake3::Hash,
         drift: Option<crate::drift::Measurement>,
+        suspect: Option<audit::SuspectEvidence>,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<(BatchRecord, Entry), StoreError> {
         let id = self.next_batch_id();
+        let aside = suspect.as_ref().is_some_and(|s| s.suspect);
         let (drift, history) = match drift {
+            // A suspect batch's distances would widen every column's idea
+            // of an ordinary night: its report is kept, its history is not.
+            Some(m) if aside => (Some(m.report), Vec::new()),
             Some(m) => (Some(m.report), m.history),
             None => (None, Vec::new()),
         };
@@ -720,7 +837,18 @@ impl Store {
         let new_categories: BTreeMap<String, Vec<String>> = batch
             .new_categories
             .iter()
-            .map(|(c, v)| (names(c), v.clone()))
+            .map(|(c, v)| {
+                (
+                    names(c),
+                    v[..v.len().min(audit::NEW_VALUES_LISTED)].to_vec(),
+                )
+            })
+            .collect();
+        let new_category_counts: BTreeMap<String, u64> = batch
+            .new_categories
+            .iter()
+            .filter(|(_, v)| v.len() > audit::NEW_VALUES_LISTED)
+            .map(|(c, v)| (names(c), v.len() as u64))
             .collect();
         let event = Event::BatchAccepted {
             batch: id,
@@ -730,7 +858,9 @@ impl Store {
             train_rows: batch.train.n_rows() as u64,
             holdout_rows: batch.holdout.n_rows() as u64,
             new_categories,
+            new_category_counts,
             drift,
+            suspect: suspect.clone(),
         };
         let entry = self.seal(event, user, time);
         let record = BatchRecord {
@@ -742,6 +872,13 @@ impl Store {
             holdout_rows: batch.holdout.n_rows() as u64,
             audit_seq: entry.seq,
             train_stats: train_stats.clone(),
+            set_aside: suspect.filter(|s| s.suspect).map(|s| SetAside {
+                automatic: true,
+                reason: s.why.join("; "),
+                by: user.to_string(),
+                at: entry.time.clone(),
+                audit_seq: entry.seq,
+            }),
         };
         let totals = Totals {
             batches: self.totals.batches + 1,
@@ -818,6 +955,58 @@ impl Store {
             }
         }
         self.totals = totals;
+        if record.is_set_aside() {
+            self.aside.insert(id);
+        }
+        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        Ok((record, entry))
+    }
+
+    /// Sets a batch aside (`Some`) or brings it back (`None`): its record
+    /// and the audit entry `event` in one transaction. The rows never move:
+    /// holdout membership stays a function of the row alone.
+    pub fn set_batch_aside(
+        &mut self,
+        batch: BatchId,
+        reason: Option<&str>,
+        event: Event,
+        user: &str,
+        time: chrono::DateTime<chrono::Utc>,
+    ) -> Result<(BatchRecord, Entry), StoreError> {
+        let mut record = self
+            .batch(batch)?
+            .ok_or_else(|| self.corrupt(format!("no batch {batch} is stored")))?;
+        let entry = self.seal(event, user, time);
+        record.set_aside = reason.map(|r| SetAside {
+            automatic: false,
+            reason: r.to_string(),
+            by: user.to_string(),
+            at: entry.time.clone(),
+            audit_seq: entry.seq,
+        });
+        let record_json = json(&record);
+        let line = entry.line().into_bytes();
+        let store_path = self.path.clone();
+        let result: Result<(), TransactionError<StoreError>> = (&self.batches, &self.audit)
+            .transaction(
+                |(batches, audit): &(TransactionalTree, TransactionalTree)| {
+                    batches.insert(&batch.key()[..], record_json.as_slice())?;
+                    crate::failpoint::hit("store:mid-transaction").map_err(|source| {
+                        ConflictableTransactionError::Abort(StoreError::Io {
+                            path: store_path.clone(),
+                            source,
+                        })
+                    })?;
+                    audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                    Ok(())
+                },
+            );
+        self.settle(result)?;
+        if record.is_set_aside() {
+            self.aside.insert(batch);
+        } else {
+            self.aside.remove(&batch);
+        }
         self.last_audit = Some((entry.seq, entry.hash.clone()));
         Ok((record, entry))
     }
@@ -844,7 +1033,7 @@ impl Store {
         let mut records = Vec::new();
         for rec in self.batches()? {
             for split in [Split::Train, Split::Holdout] {
-                let moved = plan.rows(&self.rows(split, Some(rec.id), Some(rec.id))?, new_schema);
+                let moved = plan.rows(&self.batch_rows(split, rec.id)?, new_schema);
                 chunk_values.extend(chunk_entries(rec.id, split, &moved));
             }
             let mut rec = rec;
@@ -980,6 +1169,13 @@ impl Store {
     }
 }
 
+/// The `arrival/` key and value an event writes, if it moves the pointer.
+fn entry_arrival(event: &Event) -> Option<(Vec<u8>, Vec<u8>)> {
+    event.arrival().map(|(model, previous, by_rollback)| {
+        (arrival_key(model), encode_arrival(previous, by_rollback))
+    })
+}
+
 /// A batch's rows on one side of the split as `chunks` entries: keys
 /// (batch, split byte, chunk number) and values of whole rows of at most
 /// `CHUNK_CELLS` cells.
@@ -1023,6 +1219,10 @@ fn split_rows(record: &BatchRecord, split: Split) -> usize {
 /// Bytes of sled's page cache.
 const SLED_CACHE_BYTES: u64 = 64 * 1024 * 1024;
 
+/// sled's background flush interval (its own default). Durability never
+/// rests on it: every commit is flushed and fsynced before it is reported.
+const SLED_FLUSH_MS: u64 = 500;
+
 /// The one place sled's settings are chosen.
 fn open_sled(path: &Path) -> sled::Result<sled::Db> {
     sled::Config::new()
@@ -1032,6 +1232,9 @@ fn open_sled(path: &Path) -> sled::Result<sled::Db> {
         // (a replay sample touches most of them); rows are read once per
         // cycle, so a small cache costs nothing and bounds memory.
         .cache_capacity(SLED_CACHE_BYTES)
+        .flush_every_ms(Some(
+            crate::failpoint::store_flush_every_ms().unwrap_or(SLED_FLUSH_MS),
+        ))
         .open()
 }
 

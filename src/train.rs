@@ -364,7 +364,17 @@ impl Run<'_> {
         let mut train_loss = Vec::new();
         let mut validation_loss = Vec::new();
         let mut epoch_seconds = Vec::new();
+        // A warm run starts from weights that already serve: they are the
+        // first contender for the best epoch, so the run hands back the
+        // parent unchanged rather than anything worse on the validation
+        // rows (new and replayed older rows alike).
         let mut best: Option<(f64, usize, Vec<LayerWeights>)> = None;
+        let mut start_validation_loss = None;
+        if self.kind == RunKind::Warm && val.n() > 0 {
+            let v = mean_loss(&model, val)? * unit;
+            start_validation_loss = Some(v);
+            best = Some((v, 0, model.weights()));
+        }
         let mut stop = StopReason::EpochLimit;
         let mut xb = Vec::with_capacity(batch_size * width);
         let mut yb = Vec::with_capacity(batch_size * k.max(1));
@@ -473,6 +483,7 @@ impl Run<'_> {
             kind: self.kind,
             epochs,
             best_epoch,
+            start_validation_loss,
             rows: fixed,
             replay_rows: replay,
             validation_rows: val.n(),

@@ -132,10 +132,7 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
             (Split::Train, rec.train_rows),
             (Split::Holdout, rec.holdout_rows),
         ] {
-            let have = owner
-                .store
-                .rows(split, Some(*batch), Some(*batch))?
-                .n_rows() as u64;
+            let have = owner.store.batch_rows(split, *batch)?.n_rows() as u64;
             if have != want {
                 return Ok(Err(problem(
                     seq,
@@ -161,6 +158,45 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
         }
         seen += 1;
         rows_total += rec.rows();
+    }
+    // Which batches are set aside, by the log (a suspect batch at intake,
+    // then by hand), must be what the store's records say.
+    let mut aside_by_log: BTreeMap<BatchId, (u64, bool)> = BTreeMap::new();
+    for e in &entries {
+        match &e.event {
+            Event::BatchAccepted {
+                batch,
+                suspect: Some(s),
+                ..
+            } if s.suspect => {
+                aside_by_log.insert(*batch, (e.seq.0, true));
+            }
+            Event::BatchSetAside { batch, .. } => {
+                aside_by_log.insert(*batch, (e.seq.0, true));
+            }
+            Event::BatchBroughtBack { batch, .. } => {
+                aside_by_log.insert(*batch, (e.seq.0, false));
+            }
+            _ => {}
+        }
+    }
+    for rec in records.values() {
+        let by_log = aside_by_log.get(&rec.id).copied();
+        let consistent = match (&rec.set_aside, by_log) {
+            (None, None) | (None, Some((_, false))) => true,
+            (Some(a), Some((seq, true))) => a.audit_seq.0 == seq,
+            _ => false,
+        };
+        if !consistent {
+            return Ok(Err(problem(
+                by_log.map(|(seq, _)| seq),
+                format!(
+                    "batch {}: the store says it is {}set aside, the log says otherwise",
+                    rec.id,
+                    if rec.set_aside.is_some() { "" } else { "not " }
+                ),
+            )));
+        }
     }
     // Every checkpoint a cycle recorded still has the files it was saved with.
     for e in &entries {

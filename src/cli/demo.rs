@@ -108,13 +108,55 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                         shops.join(", ")
                     ));
                 }
+                if let crate::audit::Event::BatchAccepted {
+                    drift: Some(report),
+                    ..
+                } = &entry.event
+                {
+                    let flagged = report.flagged();
+                    if !flagged.is_empty() {
+                        events.push(format!(
+                            "{}: drift in {}: far from the stored rows, by more than any past \
+                             night; reported, no model is blamed",
+                            night.file,
+                            flagged.join(", ")
+                        ));
+                    }
+                }
                 waiting_rows += batch.rows();
                 if let Some(found) = fresh::check_batch(&mut owner, batch.id, &user)? {
-                    night.check = found.evidence.verdict.clone();
-                    if let Some(h) = found.evidence.hotspots.first()
-                        && found.evidence.verdict != "steady"
-                    {
-                        night.check.push_str(&format!(" ({})", h.value));
+                    let ev = &found.evidence;
+                    night.check = ev.verdict.clone();
+                    // Name what the verdict is about: the shifted value, the
+                    // first value never seen, or the value carrying most loss.
+                    let about = match ev.verdict.as_str() {
+                        "shifted" => ev.shifted_values.first().cloned(),
+                        // Every column with a value a model has not met
+                        // (the first Thursday and a new shop can coincide).
+                        "new-conditions" => Some(
+                            ev.new_conditions
+                                .iter()
+                                .filter_map(|(c, v)| v.first().map(|v| format!("{c} = {v}")))
+                                .collect::<Vec<_>>()
+                                .join("; "),
+                        )
+                        .filter(|s| !s.is_empty()),
+                        "regressed" => ev
+                            .hotspots
+                            .first()
+                            .map(|h| format!("{} = {}", h.column, h.value)),
+                        _ => None,
+                    };
+                    if let Some(about) = about {
+                        night.check.push_str(&format!(" ({about})"));
+                    }
+                    if ev.verdict == "shifted" {
+                        events.push(format!(
+                            "{}: {} cost the serving model far more than usual beside the rest \
+                             of the column: a shift in the data, flagged; no model is blamed",
+                            night.file,
+                            ev.shifted_values.join(", ")
+                        ));
                     }
                     if let Some(rb) = &found.rollback {
                         if let crate::audit::Event::RolledBack { from, to, .. } = &rb.event {
@@ -135,7 +177,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     night.file
                 ));
             }
-            Outcome::Rejected { refusal, .. } => {
+            Outcome::Refused { refusal, .. } => {
                 night.intake = format!("refused, {} problems", refusal.total);
                 events.push(format!(
                     "{}: refused whole, first problem: {}",
@@ -166,14 +208,22 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
                     if let Some(e) = r.decision.evidence() {
                         night.p = format!("{:.2e}", e.p);
                     }
-                    night.decision = r.decision.kind().to_string();
+                    // The candidate's fate: a candidate that does not serve
+                    // is shelved (the serving model is what is kept).
+                    night.decision = match r.decision.kind() {
+                        "keep" => "shelve",
+                        kind => kind,
+                    }
+                    .to_string();
                     if let Some(id) = judged.id {
                         night.decision.push_str(&format!(" {id}"));
                     }
-                    if r.decision.kind() == "keep" && events.iter().all(|e| !e.contains(" kept:")) {
+                    if r.decision.kind() == "keep"
+                        && events.iter().all(|e| !e.contains(" shelved:"))
+                    {
                         let reason = r.decision.reason();
                         events.push(format!(
-                            "{}: candidate {} kept: {}",
+                            "{}: candidate {} shelved: {}",
                             night.file,
                             judged.id.map(|m| m.to_string()).unwrap_or_default(),
                             reason.strip_prefix("keep: ").unwrap_or(&reason)
@@ -275,7 +325,7 @@ pub fn run(cli: &Cli, args: &Args) -> anyhow::Result<Exit> {
     ));
     let root = state.root().display();
     out.push_str(&format!(
-        "  tidegate --state {root} log --kind promoted,kept,rolled-back,batch-rejected\n  \
+        "  tidegate --state {root} log --kind promoted,shelved,rolled-back,batch-refused\n  \
          tidegate --state {root} models\n  \
          tidegate --state {root} predict --input {}\n",
         files

@@ -91,7 +91,7 @@ pub(crate) fn take_files(
                 ),
                 serde_json::json!({"file": shown_file, "status": "accepted", "batch": batch, "recovered": true}),
             ),
-            Outcome::Rejected {
+            Outcome::Refused {
                 refusal,
                 kept_as,
                 entry,
@@ -101,7 +101,7 @@ pub(crate) fn take_files(
                     .as_ref()
                     .map(|p| format!("{}.why.json", shown(state, p)));
                 let mut d = format!(
-                    "refused, nothing stored ({} problem{}): {}",
+                    "nothing stored ({} problem{}): {}",
                     refusal.total,
                     if refusal.total == 1 { "" } else { "s" },
                     refusal.first()
@@ -109,11 +109,11 @@ pub(crate) fn take_files(
                 if let Some(w) = &why {
                     d.push_str(&format!("; all problems in {w}"));
                 }
-                errors.push(format!("{shown_file}: {d}"));
+                errors.push(format!("{shown_file}: refused, {d}"));
                 (
-                    "rejected",
+                    "refused",
                     d,
-                    serde_json::json!({"file": shown_file, "status": "rejected", "problems_total": refusal.total, "problems": refusal.problems, "why": why, "audit_seq": entry.seq}),
+                    serde_json::json!({"file": shown_file, "status": "refused", "problems_total": refusal.total, "problems": refusal.problems, "why": why, "audit_seq": entry.seq}),
                 )
             }
             Outcome::NotReady { reason } => {
@@ -126,9 +126,20 @@ pub(crate) fn take_files(
                 )
             }
         };
+        if let Outcome::Accepted { batch, .. } = &outcome
+            && let Some(aside) = &batch.set_aside
+        {
+            detail.push_str(&format!(
+                "; suspect, set aside (not trained on, not in the holdout): {}",
+                aside.reason
+            ));
+            json["set_aside"] =
+                serde_json::json!({"reason": aside.reason, "automatic": aside.automatic});
+        }
         if let Outcome::Accepted { batch, .. } = &outcome {
-            // The batch is stored whatever the check says; a failure to run
-            // it is reported, not fatal.
+            // The batch is stored whatever the check says; a model that
+            // cannot be scored is reported, a failure to write ends the
+            // command (the next start runs the check again).
             match fresh::check_batch(owner, batch.id, user) {
                 Ok(Some(found)) => {
                     let e = &found.evidence;
@@ -140,6 +151,12 @@ pub(crate) fn take_files(
                     json["rolled_back"] = serde_json::Value::Bool(found.rollback.is_some());
                 }
                 Ok(None) => {}
+                Err(err) if err.is_fatal() => {
+                    return Err(anyhow::Error::new(err).context(format!(
+                        "{shown_file}: stored as batch {}, but its fresh-data check could not be recorded",
+                        batch.id
+                    )));
+                }
                 Err(err) => {
                     tracing::warn!("{shown_file}: the fresh-data check could not run: {err}");
                     detail.push_str(&format!("; fresh-data check failed: {err}"));

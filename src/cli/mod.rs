@@ -3,6 +3,7 @@
 //! messages on stderr; `--json` switches data to JSON.
 
 mod approve;
+mod aside;
 mod backup;
 mod completions;
 mod decline;
@@ -103,6 +104,10 @@ pub enum Command {
     Approve(approve::Args),
     /// Turn the candidate waiting for approval down.
     Decline(decline::Args),
+    /// Keep a stored batch out of training, holdout, baselines and drift (--reason).
+    SetAside(aside::Args),
+    /// Put a batch that was set aside back into use (--reason).
+    BringBack(aside::Args),
     /// Score a CSV file with the serving model (or --model ID).
     Predict(predict::Args),
     /// Write the serving model (or --model ID) as an ONNX file with a manifest beside it.
@@ -150,6 +155,8 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Rollback(a) => rollback::run(cli, &state, a),
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
+        Command::SetAside(a) => aside::run(cli, &state, a, true),
+        Command::BringBack(a) => aside::run(cli, &state, a, false),
         Command::Watch(a) => watch::run(cli, &state, a),
         Command::Report(a) => report::run(cli, &state, a),
     }
@@ -221,17 +228,18 @@ pub(crate) fn load_config(cli: &Cli, state: &StateDir) -> anyhow::Result<Config>
     Ok(Config::load(&path)?)
 }
 
-/// Opens the state dir as owner, takes one decision about model versions
-/// (approve, decline, rollback) and prints its audit entry.
-pub(crate) fn run_decision(
+/// Takes one decision recorded as a single audit entry (approve, decline,
+/// rollback, set-aside, bring-back) and prints that entry: through the
+/// running daemon when there is one, else as the owner of the state dir.
+pub(crate) fn run_decision<E>(
     cli: &Cli,
     state: &StateDir,
     request: crate::daemon::Request,
-    decide: impl FnOnce(
-        &mut crate::state::Owner,
-        &str,
-    ) -> Result<crate::audit::Entry, crate::lifecycle::DecisionError>,
-) -> anyhow::Result<Exit> {
+    decide: impl FnOnce(&mut crate::state::Owner, &str) -> Result<crate::audit::Entry, E>,
+) -> anyhow::Result<Exit>
+where
+    E: std::error::Error + Send + Sync + 'static,
+{
     // A running daemon owns the state dir: it takes the decision in its loop.
     if let Some(exit) = crate::daemon::client::route(state, &request, cli.json)? {
         return Ok(exit);
@@ -298,9 +306,9 @@ fn outcome_color(cell: &str) -> Option<&'static str> {
     let word = cell.split_whitespace().next().unwrap_or("");
     match word.trim_end_matches(',') {
         "promote" | "promoted" | "approved" | "accepted" | "steady" => Some("32"),
-        "keep" | "kept" | "declined" | "duplicate" | "batch-duplicate" | "shifted" => Some("33"),
-        "rolled-back" | "batch-rejected" | "rejected" | "refused" | "regressed"
-        | "cycle-abandoned" | "schema-migrated" => Some("31"),
+        "keep" | "shelved" | "declined" | "duplicate" | "batch-duplicate" | "shifted" => Some("33"),
+        "rolled-back" | "batch-refused" | "refused" | "regressed" | "cycle-abandoned"
+        | "schema-migrated" => Some("31"),
         "awaiting-approval" | "await-approval" => Some("36"),
         _ => None,
     }
@@ -373,16 +381,20 @@ mod tests {
                 "12.5".to_string(),
                 "promoted".to_string(),
             ],
-            vec!["m000002".to_string(), "3".to_string(), "kept".to_string()],
+            vec![
+                "m000002".to_string(),
+                "3".to_string(),
+                "shelved".to_string(),
+            ],
         ];
         let plain = table_styled(&["model", "loss", "decision"], &rows, false);
         let lines: Vec<&str> = plain.lines().collect();
         assert_eq!(lines[1], "m000001  12.5  promoted");
-        assert_eq!(lines[2], "m000002     3  kept");
+        assert_eq!(lines[2], "m000002     3  shelved");
         assert!(!plain.contains('\x1b'));
         let colored = table_styled(&["model", "loss", "decision"], &rows, true);
         assert!(colored.contains("\x1b[32mpromoted\x1b[0m"), "{colored:?}");
-        assert!(colored.contains("\x1b[33mkept\x1b[0m"), "{colored:?}");
+        assert!(colored.contains("\x1b[33mshelved\x1b[0m"), "{colored:?}");
         assert!(
             colored.lines().next().unwrap().starts_with("model"),
             "header plain"

@@ -1,6 +1,7 @@
 //! `tidegate models`: every model version with its parent, kind, training,
-//! holdout loss and what became of it. Reads `models/*/manifest.json`,
-//! `audit.jsonl` and `serving` only.
+//! holdout loss, the batches it saw (directly or through its parents) and
+//! what became of it; `--trained-on BATCH` lists the models that saw one
+//! batch. Reads `models/*/manifest.json`, `audit.jsonl` and `serving` only.
 
 use std::collections::BTreeMap;
 
@@ -8,12 +9,17 @@ use serde::Serialize;
 
 use super::{Cli, Exit, emit};
 use crate::audit::Event;
-use crate::ids::ModelId;
+use crate::ids::{BatchId, ModelId};
 use crate::model::checkpoint::read_manifest;
 use crate::state::StateDir;
 
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    /// Only the models that saw this batch (e.g. b000006), directly or
+    /// through the weights they started from.
+    #[arg(long, value_name = "BATCH")]
+    pub trained_on: Option<BatchId>,
+}
 
 #[derive(Debug, Default, Serialize)]
 struct Row {
@@ -32,9 +38,18 @@ struct Row {
     /// What the log says became of it, latest last.
     decisions: Vec<String>,
     serving: bool,
+    /// Batches its training could read, and with its parents' (see
+    /// `provenance`); absent for a model the log has no training entry of.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    batches_direct: Option<Vec<BatchId>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    batches_seen: Option<Vec<BatchId>>,
+    /// With `--trained-on`: "directly" or "through_parent".
+    #[serde(skip_serializing_if = "Option::is_none")]
+    route: Option<crate::provenance::Route>,
 }
 
-pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
+pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     if !state.is_initialised() {
         return Err(crate::store::StoreError::NotInitialised {
             path: state.root().to_path_buf(),
@@ -68,7 +83,25 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
             );
         }
     }
-    for e in state.mirror().entries()? {
+    let entries = state.mirror().entries()?;
+    let lineages = crate::provenance::lineages(&entries);
+    for (id, l) in &lineages {
+        if let Some(row) = rows.get_mut(id) {
+            row.batches_direct = Some(l.direct.iter().copied().collect());
+            row.batches_seen = Some(l.saw.iter().copied().collect());
+        }
+    }
+    if let Some(batch) = args.trained_on {
+        let saw: BTreeMap<ModelId, crate::provenance::Route> =
+            crate::provenance::trained_on(&lineages, batch)
+                .into_iter()
+                .collect();
+        rows.retain(|id, _| saw.contains_key(id));
+        for (id, row) in rows.iter_mut() {
+            row.route = saw.get(id).copied();
+        }
+    }
+    for e in &entries {
         if let Event::BaselinesScored {
             cycle,
             ridge_loss: Some(ridge),
@@ -132,6 +165,10 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
                     (Some(l), _) => format!("{l:.4} (NOT beaten)"),
                     (None, _) => "-".into(),
                 },
+                r.batches_seen.as_ref().map_or_else(
+                    || "-".into(),
+                    |b| crate::provenance::ranges_text(&b.iter().copied().collect()),
+                ),
                 r.decisions.join(", "),
             ]
         })
@@ -147,12 +184,24 @@ pub fn run(cli: &Cli, state: &StateDir, _args: &Args) -> anyhow::Result<Exit> {
             "epochs",
             "holdout loss",
             "ridge loss",
+            "batches seen",
             "decisions",
         ],
         &lines,
         cli.colored(),
     );
     out.push_str("* serving\n");
+    if let Some(batch) = args.trained_on {
+        let mut by: Vec<String> = rows
+            .values()
+            .filter_map(|r| Some((r.id?, r.route?)))
+            .map(|(id, route)| format!("{id} {}", route.words()))
+            .collect();
+        if by.is_empty() {
+            by.push("no model".into());
+        }
+        out.push_str(&format!("{batch} was seen by: {}\n", by.join(", ")));
+    }
     emit(&out)?;
     Ok(Exit::Ok)
 }

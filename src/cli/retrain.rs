@@ -132,7 +132,9 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         }
         Outcome::Decided(r) => r,
     };
-    let baseline = match report.serving_before {
+    // The model the candidates were compared with (not the reference
+    // models, which the table calls baselines).
+    let compared_with = match report.serving_before {
         Some(m) => m.to_string(),
         None => "trivial predictor".to_string(),
     };
@@ -154,7 +156,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         let v = serde_json::json!({
             "outcome": report.decision.kind(), "cycle": report.cycle, "dry_run": report.dry_run,
             "serving_before": report.serving_before, "serving_after": report.serving_after,
-            "baseline": baseline, "baseline_loss": report.baseline_loss, "holdout_rows": report.holdout_rows,
+            "compared_with": compared_with, "compared_with_loss": report.baseline_loss, "holdout_rows": report.holdout_rows,
             "holdout_batches": report.holdout_batches,
             "batches_needed": report.batches_needed,
             "new_batches": report.new_batches, "candidates": candidates, "judged": report.judged,
@@ -164,7 +166,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         return format!("{v}\n");
     }
     let mut rows: Vec<Vec<String>> = vec![vec![
-        baseline.clone(),
+        compared_with.clone(),
         "serving".into(),
         "-".into(),
         "-".into(),

@@ -1,13 +1,13 @@
 //! `tidegate status`: what the state dir holds and who owns it. Reads
 //! `audit.jsonl` and `LOCK` only, so it works while the daemon runs.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
 use super::{Cli, Exit, emit};
 use crate::audit::{Entry, Event, FreshEvidence};
-use crate::ids::ModelId;
+use crate::ids::{BatchId, ModelId};
 use crate::state::{self, StateDir};
 
 #[derive(Debug, clap::Args)]
@@ -24,10 +24,14 @@ pub struct Summary {
     pub rows: u64,
     pub train_rows: u64,
     pub holdout_rows: u64,
-    pub rejected_files: u64,
+    pub refused_files: u64,
     pub duplicate_files: u64,
-    /// Category values per column, in order of first appearance.
+    /// Category values per column, in order of first appearance, as the
+    /// log lists them (a `batch-accepted` entry lists at most
+    /// `audit::NEW_VALUES_LISTED` per column).
     pub vocabularies: BTreeMap<String, Vec<String>>,
+    /// How many values each column has.
+    pub vocabulary_sizes: BTreeMap<String, u64>,
     pub audit_entries: u64,
     /// The serving model according to the log.
     pub serving: Option<crate::ids::ModelId>,
@@ -41,6 +45,14 @@ pub struct Summary {
     pub fresh_check: Option<FreshEvidence>,
     /// The last accepted batch's drift report.
     pub last_drift: Option<LastDrift>,
+    /// Batches stored but set aside (suspect at intake, or by hand), with why.
+    pub set_aside: BTreeMap<BatchId, String>,
+    /// Batches now set aside that the serving model trained on, directly or
+    /// through its parents.
+    pub serving_saw_set_aside: Vec<BatchId>,
+    /// Batches each model trained on, directly or through its parents.
+    #[serde(skip)]
+    pub seen: BTreeMap<ModelId, BTreeSet<BatchId>>,
 }
 
 /// Which columns of the last accepted batch moved away from the stored rows.
@@ -90,9 +102,15 @@ impl Summary {
                     train_rows,
                     holdout_rows,
                     new_categories,
+                    new_category_counts,
                     drift,
+                    suspect,
                     ..
                 } => {
+                    if let Some(x) = suspect.as_ref().filter(|x| x.suspect) {
+                        s.set_aside
+                            .insert(*batch, format!("suspect: {}", x.why.join("; ")));
+                    }
                     s.last_drift = drift.as_ref().map(|d| LastDrift {
                         batch: *batch,
                         flagged: d.flagged().iter().map(|c| c.to_string()).collect(),
@@ -103,17 +121,7 @@ impl Summary {
                             .map(|c| format!("{}: {}", c.column, c.reason))
                             .collect(),
                         building: d.building_text(),
-                        new_values: d
-                            .new_values()
-                            .into_iter()
-                            .map(|(col, values, share)| {
-                                format!(
-                                    "{col}: {} ({:.1}% of rows)",
-                                    values.join(", "),
-                                    100.0 * share
-                                )
-                            })
-                            .collect(),
+                        new_values: d.new_values_text(),
                         old_rule_flagged: d
                             .old_rule_flagged()
                             .iter()
@@ -129,9 +137,20 @@ impl Summary {
                             .entry(col.clone())
                             .or_default()
                             .extend(values.iter().cloned());
+                        *s.vocabulary_sizes.entry(col.clone()).or_default() += new_category_counts
+                            .get(col)
+                            .copied()
+                            .unwrap_or(values.len() as u64);
                     }
                 }
-                Event::BatchRejected { .. } => s.rejected_files += 1,
+                Event::BatchSetAside { batch, reason } => {
+                    s.set_aside
+                        .insert(*batch, format!("by {} at {}: {reason}", e.user, e.time));
+                }
+                Event::BatchBroughtBack { batch, .. } => {
+                    s.set_aside.remove(batch);
+                }
+                Event::BatchRefused { .. } => s.refused_files += 1,
                 Event::BatchDuplicate { .. } => s.duplicate_files += 1,
                 Event::Approved { model, .. } | Event::RolledBack { to: model, .. } => {
                     s.serving = Some(*model);
@@ -146,7 +165,7 @@ impl Summary {
                     s.serving = Some(*model);
                     s.last_decision = Some(e.event.summary());
                 }
-                Event::Kept { .. } | Event::AwaitingApproval { .. } => {
+                Event::Shelved { .. } | Event::AwaitingApproval { .. } => {
                     s.last_decision = Some(e.event.summary())
                 }
                 Event::CandidateTrained {
@@ -191,10 +210,25 @@ impl Summary {
                 | Event::Restored { .. }
                 | Event::BaselinesScored { .. }
                 | Event::CycleAbandoned { .. }
-                | Event::ModelExported { .. } => {}
+                | Event::ModelExported { .. }
+                | Event::FolderRenamed { .. } => {}
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
+        s.seen = crate::provenance::lineages(entries)
+            .into_iter()
+            .map(|(m, l)| (m, l.saw))
+            .collect();
+        s.serving_saw_set_aside = s
+            .serving
+            .and_then(|m| s.seen.get(&m))
+            .map(|seen| {
+                seen.iter()
+                    .filter(|b| s.set_aside.contains_key(b))
+                    .copied()
+                    .collect()
+            })
+            .unwrap_or_default();
         s
     }
 }
@@ -321,9 +355,24 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             }
         }
     }
+    for (b, why) in &summary.set_aside {
+        out.push_str(&format!("set aside   {b} (stored, not used): {why}\n"));
+    }
+    if !summary.serving_saw_set_aside.is_empty() {
+        let list: Vec<String> = summary
+            .serving_saw_set_aside
+            .iter()
+            .map(|b| b.to_string())
+            .collect();
+        out.push_str(&format!(
+            "WARNING     the serving model trained on {} (since set aside), directly or through \
+             its parents; the next retrain trains a cold candidate without it\n",
+            list.join(", ")
+        ));
+    }
     out.push_str(&format!(
-        "files       {} rejected, {} duplicates\n",
-        summary.rejected_files, summary.duplicate_files
+        "files       {} refused, {} duplicates\n",
+        summary.refused_files, summary.duplicate_files
     ));
     if !inbox.waiting.is_empty() || !inbox.being_written.is_empty() {
         out.push_str(&format!(
@@ -345,13 +394,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             .cloned()
             .collect::<Vec<_>>()
             .join(", ");
-        if values.len() > SHOWN {
-            list.push_str(&format!(", … {} more", values.len() - SHOWN));
+        let size = summary
+            .vocabulary_sizes
+            .get(col)
+            .copied()
+            .unwrap_or(values.len() as u64);
+        if size > SHOWN as u64 {
+            list.push_str(&format!(", … {} more", size - SHOWN as u64));
         }
-        out.push_str(&format!(
-            "vocabulary  {col}: {} values ({list})\n",
-            values.len()
-        ));
+        out.push_str(&format!("vocabulary  {col}: {size} values ({list})\n"));
     }
     out.push_str("\nrecent events\n");
     let rows: Vec<Vec<String>> = recent
@@ -428,9 +479,11 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: cats.clone(),
+                new_category_counts: BTreeMap::new(),
                 drift: None,
+                suspect: None,
             },
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file: "b".into(),
                 file_hash: "h2".into(),
                 problems: 3,
@@ -449,8 +502,11 @@ mod tests {
                 rows: 5,
                 train_rows: 4,
                 holdout_rows: 1,
-                new_categories: BTreeMap::new(),
+                // A list cut at the cap: 250 new values, one listed.
+                new_categories: [("shop".to_string(), vec!["Harbour".to_string()])].into(),
+                new_category_counts: [("shop".to_string(), 250)].into(),
                 drift: None,
+                suspect: None,
             },
         ];
         let entries: Vec<Entry> = events
@@ -463,7 +519,8 @@ mod tests {
             (s.batches, s.rows, s.train_rows, s.holdout_rows),
             (2, 15, 12, 3)
         );
-        assert_eq!((s.rejected_files, s.duplicate_files), (1, 1));
-        assert_eq!(s.vocabularies, cats);
+        assert_eq!((s.refused_files, s.duplicate_files), (1, 1));
+        assert_eq!(s.vocabularies["shop"], ["Quay", "Harbour"]);
+        assert_eq!(s.vocabulary_sizes["shop"], 251);
     }
 }

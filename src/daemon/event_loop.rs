@@ -21,6 +21,7 @@ use super::inbox::{self, Settler, Signature};
 use super::metrics::Shared;
 use super::protocol::{Answer, DaemonStatus, Envelope, Request};
 use super::trigger::{self, Why};
+use crate::aside::AsideError;
 use crate::cli::{self, Exit};
 use crate::config::Config;
 use crate::cycle::{self, CycleError, ModelRecord};
@@ -341,15 +342,23 @@ impl<C: Clock> Daemon<C> {
                     batch.id,
                     batch.rows()
                 );
-                self.untrained_rows += batch.rows();
-                let shifted = after_accept(owner, &batch, &self.user);
+                if !batch.is_set_aside() {
+                    self.untrained_rows += batch.rows();
+                }
+                let shifted = after_accept(owner, &batch, &self.user)?;
                 let flagged = match &entry.event {
                     crate::audit::Event::BatchAccepted { drift: Some(d), .. } => {
                         d.flagged().iter().map(|c| c.to_string()).collect()
                     }
                     _ => Vec::new(),
                 };
-                if shifted || !flagged.is_empty() {
+                if batch.is_set_aside() {
+                    tracing::warn!(
+                        "batch {}: suspect, set aside: {}",
+                        batch.id,
+                        batch.set_aside.as_ref().map_or("", |a| a.reason.as_str())
+                    );
+                } else if shifted || !flagged.is_empty() {
                     tracing::info!(
                         "batch {}: drift ({}); on_drift = {}",
                         batch.id,
@@ -369,7 +378,7 @@ impl<C: Clock> Daemon<C> {
             Ok(Outcome::Completed { batch }) => {
                 tracing::info!("{shown}: already stored as batch {batch}; archiving finished")
             }
-            Ok(Outcome::Rejected {
+            Ok(Outcome::Refused {
                 refusal, kept_as, ..
             }) => tracing::warn!(
                 "{shown}: refused, nothing stored ({} problem(s)): {}{}",
@@ -391,6 +400,9 @@ impl<C: Clock> Daemon<C> {
                     "{shown}: cannot be taken: {source}; it stays in the inbox until it changes"
                 );
                 self.stuck.insert(path.to_path_buf(), signature);
+                // It may have failed after its batch was stored (removing
+                // it from the inbox): that batch's check runs now.
+                crate::fresh::run_missing(owner, &self.user)?;
                 return Ok(());
             }
             Err(e) => return Err(e.into()),
@@ -550,6 +562,22 @@ impl<C: Clock> Daemon<C> {
             },
             Request::Decline { model, reason } => decide(
                 lifecycle::decline(owner, model, &reason, &user),
+                json,
+                &mut fatal,
+            ),
+            // Here, not on the worker: a cycle that was running when this
+            // arrived has ended and decided (on the rows in use when it
+            // began), and the next cycle, started from this loop after the
+            // queue is empty, reads the batch's new state. A candidate of
+            // the ended cycle left waiting for approval is refused by
+            // `approve` while it saw a batch set aside.
+            Request::SetAside { batch, reason } => set_aside_answer(
+                crate::aside::change(owner, batch, true, &reason, &user),
+                json,
+                &mut fatal,
+            ),
+            Request::BringBack { batch, reason } => set_aside_answer(
+                crate::aside::change(owner, batch, false, &reason, &user),
                 json,
                 &mut fatal,
             ),
@@ -853,19 +881,47 @@ fn decide(
     json: bool,
     fatal: &mut Option<anyhow::Error>,
 ) -> Answer {
+    let machine = |e: &DecisionError| {
+        matches!(
+            e,
+            DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
+        )
+    };
+    entry_answer(result, machine, json, fatal)
+}
+
+fn set_aside_answer(
+    result: Result<crate::audit::Entry, AsideError>,
+    json: bool,
+    fatal: &mut Option<anyhow::Error>,
+) -> Answer {
+    let machine = |e: &AsideError| matches!(e, AsideError::Store(_) | AsideError::Audit(_));
+    entry_answer(result, machine, json, fatal)
+}
+
+/// The answer to a command recorded as one audit entry, printed as the
+/// command prints it when run directly. A failure of the store or the log
+/// (`machine`) also ends the daemon, as it ends a direct command; the
+/// command's own refusals (no such batch, no reason) are only answered.
+fn entry_answer<E>(
+    result: Result<crate::audit::Entry, E>,
+    machine: impl Fn(&E) -> bool,
+    json: bool,
+    fatal: &mut Option<anyhow::Error>,
+) -> Answer
+where
+    E: std::error::Error + Send + Sync + 'static,
+{
     match result {
         Ok(entry) => Answer {
             stdout: cli::render_decision(&entry, json),
             ..Answer::default()
         },
         Err(e) => {
-            let machine = matches!(
-                e,
-                DecisionError::Store(_) | DecisionError::State(_) | DecisionError::Audit(_)
-            );
+            let is_machine = machine(&e);
             let e = anyhow::Error::from(e);
             let answer = Answer::failed(cli::exit_for(&e) as u8, cli::error_text(&e));
-            if machine {
+            if is_machine {
                 *fatal = Some(e);
             }
             answer
@@ -873,7 +929,8 @@ fn decide(
     }
 }
 
-/// Accepted rows in batches after the last one any cycle trained through.
+/// Accepted rows in batches after the last one any cycle trained through,
+/// less those of batches set aside.
 pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
     let next = owner.store.next_model_id()?;
     let mut through = BatchId(0);
@@ -893,33 +950,40 @@ pub fn untrained_rows(owner: &Owner) -> anyhow::Result<u64> {
         .store
         .batches()?
         .iter()
-        .filter(|b| b.id > through)
+        .filter(|b| b.id > through && !b.is_set_aside())
         .map(BatchRecord::rows)
         .sum())
 }
 
 /// Runs after each batch the daemon accepts from the inbox: the fresh-data
 /// check (serving model against the one it replaced, on the new rows; it
-/// may roll back). The batch is stored whatever the check finds, and a
-/// check that cannot run is reported, not fatal, as with `ingest`.
+/// may roll back). The batch is stored whatever the check finds; a check
+/// whose models cannot be scored is reported, as with `ingest`, and a
+/// failure to write its entry or rollback stops the daemon (the next start
+/// runs the check again).
 /// Returns whether the check saw the serving model's loss rise on the
 /// batch (a shift the per-column drift statistics may not see).
-pub fn after_accept(owner: &mut Owner, batch: &BatchRecord, user: &str) -> bool {
+pub fn after_accept(
+    owner: &mut Owner,
+    batch: &BatchRecord,
+    user: &str,
+) -> Result<bool, crate::fresh::FreshError> {
     match crate::fresh::check_batch(owner, batch.id, user) {
         Ok(Some(found)) => {
             tracing::info!("batch {}: fresh-data check: {}", batch.id, found.verdict());
             if let Some(r) = &found.rollback {
                 tracing::warn!("batch {}: {}", batch.id, r.event.summary());
             }
-            found.verdict() == "shifted"
+            Ok(found.verdict() == "shifted")
         }
-        Ok(None) => false,
+        Ok(None) => Ok(false),
+        Err(e) if e.is_fatal() => Err(e),
         Err(e) => {
             tracing::warn!(
                 "batch {}: the fresh-data check could not run: {e}",
                 batch.id
             );
-            false
+            Ok(false)
         }
     }
 }

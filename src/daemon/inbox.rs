@@ -51,8 +51,8 @@ fn is_published_bytes(name: &[u8]) -> bool {
 
 /// Lists the published entries of the inbox, sorted by name so files are
 /// taken in a stable order. A directory with a published name is listed
-/// like a special file: intake refuses it at once (moved to `rejected/`
-/// with its reasons and a `batch-rejected` entry), as `ingest DIR` does,
+/// like a special file: intake refuses it at once (moved to `refused/`
+/// with its reasons and a `batch-refused` entry), as `ingest DIR` does,
 /// so nothing sits in the inbox unexplained. Dotfiles and `*.part` names
 /// are files still being written; `status` counts them.
 pub fn list(inbox: &Path) -> std::io::Result<Vec<(PathBuf, Signature)>> {

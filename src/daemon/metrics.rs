@@ -1,7 +1,8 @@
 //! What the daemon publishes for others to read without waiting for its
 //! loop: the status answered to `ping`, counters folded from the audit log,
 //! and an optional loopback HTTP endpoint with `/health` and `/metrics`
-//! (Prometheus text format).
+//! (OpenMetrics 1.0 text format: counts that only grow are counters whose
+//! samples end in `_total`, levels are gauges, and the text ends in `# EOF`).
 
 use std::collections::HashMap;
 use std::io::{BufRead, BufReader, Write};
@@ -22,11 +23,11 @@ pub struct Counters {
     pub last_seq: AuditSeq,
     pub batches: u64,
     pub rows: u64,
-    pub rejected_files: u64,
+    pub refused_files: u64,
     pub duplicate_files: u64,
     pub cycles_started: u64,
     pub cycles_abandoned: u64,
-    /// Kind of the last gate or human decision ("promoted", "kept", …).
+    /// Kind of the last gate or human decision ("promoted", "shelved", …).
     pub last_decision: Option<String>,
     pub serving: Option<ModelId>,
     /// When the serving model started serving.
@@ -41,7 +42,7 @@ impl Default for Counters {
             last_seq: AuditSeq(0),
             batches: 0,
             rows: 0,
-            rejected_files: 0,
+            refused_files: 0,
             duplicate_files: 0,
             cycles_started: 0,
             cycles_abandoned: 0,
@@ -70,7 +71,7 @@ impl Counters {
                 self.batches += 1;
                 self.rows += rows;
             }
-            Event::BatchRejected { .. } => self.rejected_files += 1,
+            Event::BatchRefused { .. } => self.refused_files += 1,
             Event::BatchDuplicate { .. } => self.duplicate_files += 1,
             Event::CycleStarted { .. } => self.cycles_started += 1,
             Event::CycleAbandoned { .. } => self.cycles_abandoned += 1,
@@ -87,7 +88,7 @@ impl Counters {
                 serve(self, *model);
                 self.last_decision = Some(e.event.kind().to_string());
             }
-            Event::Kept { .. } | Event::AwaitingApproval { .. } | Event::Declined { .. } => {
+            Event::Shelved { .. } | Event::AwaitingApproval { .. } | Event::Declined { .. } => {
                 self.last_decision = Some(e.event.kind().to_string());
             }
             #[allow(unreachable_patterns)]
@@ -142,7 +143,10 @@ impl Shared {
 /// How long without a loop iteration before `/health` reports a stall.
 pub const STALL: Duration = Duration::from_secs(60);
 
-/// The metrics in Prometheus text format.
+/// The media type of `render`'s text.
+pub const CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
+
+/// The metrics in OpenMetrics text format.
 pub fn render(p: &Published, now: DateTime<Utc>) -> String {
     let c = &p.counters;
     let mut out = String::new();
@@ -150,8 +154,10 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
         out.push_str(&format!(
             "# HELP tidegate_{name} {help}\n# TYPE tidegate_{name} {kind}\n"
         ));
+        // A counter's family is named without the suffix its sample carries.
+        let suffix = if kind == "counter" { "_total" } else { "" };
         for (labels, value) in lines {
-            out.push_str(&format!("tidegate_{name}{labels} {value}\n"));
+            out.push_str(&format!("tidegate_{name}{suffix}{labels} {value}\n"));
         }
     };
     let one = |v: String| vec![(String::new(), v)];
@@ -168,14 +174,14 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
         &one(c.batches.to_string()),
     );
     metric(
-        "rejected_files",
-        "gauge",
+        "refused_files",
+        "counter",
         "Files refused, in the whole audit log.",
-        &one(c.rejected_files.to_string()),
+        &one(c.refused_files.to_string()),
     );
     metric(
         "duplicate_files",
-        "gauge",
+        "counter",
         "Files whose bytes were already stored.",
         &one(c.duplicate_files.to_string()),
     );
@@ -193,13 +199,13 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
     );
     metric(
         "cycles_started",
-        "gauge",
+        "counter",
         "Retrain cycles started, in the whole audit log.",
         &one(c.cycles_started.to_string()),
     );
     metric(
         "cycles_abandoned",
-        "gauge",
+        "counter",
         "Retrain cycles cut short (cancel, crash or failure).",
         &one(c.cycles_abandoned.to_string()),
     );
@@ -224,7 +230,7 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
                 "serving_holdout_loss",
                 "gauge",
                 "Mean holdout loss of the serving model when it was trained.",
-                &[(format!("{{model=\"{m}\"}}"), format!("{loss}"))],
+                &[(format!("{{model=\"{m}\"}}"), number(*loss))],
             );
         }
     }
@@ -247,7 +253,17 @@ pub fn render(p: &Published, now: DateTime<Utc>) -> String {
             &one(format!("{last:.3}")),
         );
     }
+    out.push_str("# EOF\n");
     out
+}
+
+/// A sample value as OpenMetrics spells it (Rust writes infinity as `inf`).
+fn number(x: f64) -> String {
+    match x {
+        f64::INFINITY => "+Inf".into(),
+        f64::NEG_INFINITY => "-Inf".into(),
+        x => format!("{x}"),
+    }
 }
 
 /// Requests answered at once; a connection beyond these is closed unanswered.
@@ -350,11 +366,21 @@ fn answer_http(stream: TcpStream, shared: &Shared) -> std::io::Result<()> {
     let mut w = &stream;
     write!(
         w,
-        "HTTP/1.1 {code}\r\nContent-Type: text/plain; version=0.0.4; charset=utf-8\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
+        "HTTP/1.1 {code}\r\nContent-Type: {}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
+        if path == "/metrics" {
+            CONTENT_TYPE
+        } else {
+            "text/plain; charset=utf-8"
+        },
         body.len()
     )?;
     w.flush()
 }
+
+/// The strict OpenMetrics reader the integration suite uses on the endpoint.
+#[cfg(test)]
+#[path = "../../tests/it/openmetrics.rs"]
+mod openmetrics;
 
 #[cfg(test)]
 mod tests {
@@ -378,14 +404,16 @@ mod tests {
                 train_rows: 8,
                 holdout_rows: 2,
                 new_categories: Default::default(),
+                new_category_counts: Default::default(),
                 drift: None,
+                suspect: None,
             },
         );
         c.fold(&accepted);
         c.fold(&accepted);
         c.fold(&entry(
             2,
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file: "b".into(),
                 file_hash: String::new(),
                 problems: 1,
@@ -393,7 +421,35 @@ mod tests {
                 kept_as: None,
             },
         ));
-        assert_eq!((c.batches, c.rows, c.rejected_files), (1, 10, 1));
+        assert_eq!((c.batches, c.rows, c.refused_files), (1, 10, 1));
+        c.fold(&entry(
+            3,
+            Event::CycleStarted {
+                cycle: 1,
+                serving: None,
+                new_batches: vec![],
+                candidates: vec![],
+            },
+        ));
+        c.fold(&entry(4, Event::CycleAbandoned { cycle: 1 }));
+        c.fold(&entry(
+            5,
+            Event::BatchDuplicate {
+                file: "c".into(),
+                file_hash: "h".into(),
+                duplicate_of: BatchId(1),
+            },
+        ));
+        c.fold(&entry(
+            6,
+            Event::Approved {
+                model: ModelId(2),
+                previous: None,
+                reason: "r".into(),
+            },
+        ));
+        // A loss that overflowed is still a number the format can spell.
+        c.holdout_loss.insert(ModelId(2), f64::INFINITY);
         let text = render(
             &Published {
                 status: DaemonStatus::default(),
@@ -407,10 +463,53 @@ mod tests {
             },
             Utc::now(),
         );
-        assert!(text.contains("tidegate_rows 10\n"), "{text}");
-        assert!(text.contains("tidegate_rejected_files 1\n"), "{text}");
-        assert!(text.contains("tidegate_cycle_duration_seconds_count 2\n"));
-        assert!(text.contains("# TYPE tidegate_batches gauge\n"));
+        openmetrics::self_check();
+        let families = openmetrics::parse(&text).unwrap_or_else(|e| panic!("{e}\n{text}"));
+        let family = |name: &str| {
+            families
+                .iter()
+                .find(|f| f.name == format!("tidegate_{name}"))
+                .unwrap_or_else(|| panic!("no family {name}: {text}"))
+        };
+        // Counts that only grow are counters; their one sample ends in _total.
+        for (name, value) in [
+            ("refused_files", 1.0),
+            ("duplicate_files", 1.0),
+            ("cycles_started", 1.0),
+            ("cycles_abandoned", 1.0),
+        ] {
+            let f = family(name);
+            assert_eq!(f.kind, "counter", "{name}");
+            assert_eq!(f.samples.len(), 1, "{name}");
+            assert_eq!(f.samples[0].name, format!("tidegate_{name}_total"));
+            assert_eq!(f.samples[0].value, value, "{name}");
+        }
+        // Levels stay gauges.
+        for name in [
+            "rows",
+            "batches",
+            "untrained_rows",
+            "training",
+            "last_decision",
+            "serving_model_age_seconds",
+            "serving_holdout_loss",
+            "last_cycle_duration_seconds",
+        ] {
+            assert_eq!(family(name).kind, "gauge", "{name}");
+        }
+        assert_eq!(family("rows").samples[0].value, 10.0);
+        assert_eq!(
+            family("serving_holdout_loss").samples[0].value,
+            f64::INFINITY
+        );
+        let durations = family("cycle_duration_seconds");
+        assert_eq!(durations.kind, "summary");
+        assert_eq!(
+            durations.samples[1].name,
+            "tidegate_cycle_duration_seconds_count"
+        );
+        assert_eq!(durations.samples[1].value, 2.0);
+        assert!(families.iter().all(|f| f.help.is_some()), "{text}");
     }
 
     #[test]

@@ -58,7 +58,8 @@ pub fn run(state: &StateDir, config: &Config) -> anyhow::Result<Exit> {
     if let Some(addr) = &config.daemon.metrics_addr {
         let addr: std::net::SocketAddr = addr.parse().map_err(|e| {
             anyhow::anyhow!(
-                "[daemon] metrics_addr {addr:?} is not an address like 127.0.0.1:9187: {e}"
+                "[daemon] metrics_addr {addr:?} is not an address like {}: {e}",
+                crate::config::EXAMPLE_METRICS_ADDR
             )
         })?;
         let bound = metrics::serve(addr, shared.clone()).map_err(|e| {

@@ -2,7 +2,7 @@
 //! line back, then the connection closes.
 //!
 //! ```text
-//! → {"v":1,"user":"ana","json":false,"request":{"op":"rollback","to":null,"reason":"complaints"}}
+//! → {"v":2,"user":"ana","json":false,"request":{"op":"rollback","to":null,"reason":"complaints"}}
 //! ← {"exit":0,"stdout":"rolled back to m000003 …\n","error":null,"note":null,"status":null}
 //! ```
 //!
@@ -16,10 +16,11 @@ use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
 
-use crate::ids::ModelId;
+use crate::ids::{BatchId, ModelId};
 
 /// Version of this protocol; a daemon refuses other versions by name.
-pub const VERSION: u32 = 1;
+/// 2 added `set-aside` and `bring-back`.
+pub const VERSION: u32 = 2;
 
 /// Longest request line accepted (a long `ingest` list still fits).
 pub const MAX_REQUEST_BYTES: u64 = 1 << 20;
@@ -52,6 +53,16 @@ pub enum Request {
         model: ModelId,
         reason: String,
     },
+    /// Keep a stored batch out of training, holdout, baselines and drift.
+    SetAside {
+        batch: BatchId,
+        reason: String,
+    },
+    /// Put a batch that was set aside back into use.
+    BringBack {
+        batch: BatchId,
+        reason: String,
+    },
     /// Check the audit chain, the store, the archive and the checkpoints
     /// (it needs the open store, which the daemon holds).
     Verify,
@@ -71,6 +82,8 @@ impl Request {
             Request::Rollback { .. } => "rollback",
             Request::Approve { .. } => "approve",
             Request::Decline { .. } => "decline",
+            Request::SetAside { .. } => "set-aside",
+            Request::BringBack { .. } => "bring-back",
             Request::Verify => "verify",
             Request::Backup { .. } => "backup",
         }

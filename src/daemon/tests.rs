@@ -16,6 +16,7 @@ use super::event_loop::{Call, Clock, Daemon, Event, Flow, Reply};
 use super::metrics::Shared;
 use super::protocol::{Answer, DaemonStatus, Envelope, Request, VERSION};
 use crate::config::Config;
+use crate::ids::BatchId;
 use crate::state::{self, StateDir};
 
 #[derive(Clone)]
@@ -191,7 +192,7 @@ fn a_directory_in_the_inbox_is_refused_and_logged_not_left_there() {
     assert!(!dir.exists(), "the directory still sits in the inbox");
     assert!(
         r.state
-            .rejected()
+            .refused()
             .join("night-07")
             .join("rows.csv")
             .is_file()
@@ -202,7 +203,7 @@ fn a_directory_in_the_inbox_is_refused_and_logged_not_left_there() {
         .entries()
         .unwrap()
         .iter()
-        .filter(|e| e.event.kind() == "batch-rejected")
+        .filter(|e| e.event.kind() == "batch-refused")
         .map(|e| e.event.summary())
         .collect();
     assert_eq!(refused.len(), 1, "{refused:?}");
@@ -350,6 +351,87 @@ fn files_and_commands_arriving_during_training_wait_for_the_cycle() {
 }
 
 #[test]
+fn a_set_aside_during_training_runs_after_the_cycle_decided_and_before_the_next_one() {
+    let mut r = rig("settle_seconds = 0.0\nmin_new_rows = 10");
+    r.publish("a.csv", 20);
+    r.step(Event::InboxChanged);
+    assert!(r.daemon.is_training());
+    // While cycle 1 trains on b000001: a new file, and the set-aside.
+    r.publish("b.csv", 20);
+    r.step(Event::InboxChanged);
+    let (aside, answer) = call(Request::SetAside {
+        batch: BatchId(1),
+        reason: "export was broken".into(),
+    });
+    r.step(Event::Control(aside));
+    assert!(
+        answer.try_recv().is_err(),
+        "the batch was set aside while the worker held the store"
+    );
+    assert_eq!(r.daemon.waiting(), 1);
+    r.finish_training();
+    let a = answer.try_recv().expect("answered once the cycle ended");
+    assert_eq!(a.exit, 0, "{a:?}");
+    assert_eq!(a.stdout, "b000001 set aside by hand: export was broken\n");
+    assert!(
+        a.note.unwrap().contains("waited for the daemon's cycle 1"),
+        "the answer says why it waited"
+    );
+    // Cycle 1 decided on the rows in use when it began, before the entry
+    // that set b000001 aside; b.csv was taken only after it.
+    let kinds = r.kinds();
+    let at = |kind: &str| kinds.iter().position(|k| k == kind);
+    let aside_at = at("batch-set-aside").expect("logged");
+    let decided_at = kinds
+        .iter()
+        .position(|k| {
+            [
+                "promoted",
+                "shelved",
+                "awaiting-approval",
+                "cycle-abandoned",
+            ]
+            .contains(&k.as_str())
+        })
+        .expect("cycle 1 ended with a decision");
+    assert!(decided_at < aside_at, "{kinds:?}");
+    let second_batch_at = kinds.iter().rposition(|k| k == "batch-accepted").unwrap();
+    assert!(aside_at < second_batch_at, "{kinds:?}");
+    let entries = r.state.mirror().entries().unwrap();
+    assert_eq!(entries[aside_at].user, "ana");
+    // b.csv's 20 rows start cycle 2, which never reads b000001.
+    assert!(r.daemon.is_training(), "{kinds:?}");
+    r.finish_training();
+    let holdout_b2 = entries
+        .iter()
+        .find_map(|e| match &e.event {
+            crate::audit::Event::BatchAccepted {
+                batch,
+                holdout_rows,
+                ..
+            } if *batch == BatchId(2) => Some(*holdout_rows),
+            _ => None,
+        })
+        .expect("b000002 accepted");
+    let entries = r.state.mirror().entries().unwrap();
+    let cycle2: Vec<usize> = entries
+        .iter()
+        .filter_map(|e| match &e.event {
+            crate::audit::Event::CandidateTrained {
+                cycle: 2,
+                holdout_rows,
+                ..
+            } => Some(*holdout_rows),
+            _ => None,
+        })
+        .collect();
+    assert!(!cycle2.is_empty(), "cycle 2 trained no candidate");
+    for rows in cycle2 {
+        assert_eq!(rows as u64, holdout_b2, "cycle 2 scored b000001's rows");
+    }
+}
+
+#[test]
 fn the_daily_time_trains_rows_below_the_threshold() {
     let start = Utc::now();
     let at = (start + TimeDelta::minutes(30)).with_timezone(&Local);
@@ -417,6 +499,6 @@ fn a_link_in_the_inbox_is_set_aside_unread_and_the_loop_goes_on() {
     assert!(!good.exists());
     // A link is refused (set aside with its reasons), never followed.
     assert!(fs::symlink_metadata(&dangling).is_err());
-    assert_eq!(r.count("batch-rejected"), 1);
+    assert_eq!(r.count("batch-refused"), 1);
     assert_eq!(r.count("batch-accepted"), 1);
 }

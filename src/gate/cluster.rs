@@ -128,6 +128,16 @@ fn bisect(f: impl Fn(f64) -> f64, target: f64, mut lo: f64, mut hi: f64) -> f64 
     0.5 * (lo + hi)
 }
 
+/// The z whose upper tail is `p` (the normal equivalent of a p-value),
+/// found on the tail itself so that a tiny p keeps its precision; within
+/// ±40 (a p of 0 gives the z where the tail underflows, about 38.5).
+pub fn normal_upper_quantile(p: f64) -> f64 {
+    if p.is_nan() {
+        return f64::NAN;
+    }
+    bisect(|z| -normal_sf(z), -p, -40.0, 40.0)
+}
+
 /// The `q` quantile of the standard normal (0 < q < 1).
 pub fn normal_quantile(q: f64) -> f64 {
     if !(q > 0.0 && q < 1.0) {
@@ -243,6 +253,14 @@ mod tests {
                     1e-6 * c.inverse_cdf(q).max(1e-3),
                 );
             }
+            // The upper quantile is the lower one of 1 − q.
+            near(normal_upper_quantile(q), -n.inverse_cdf(q), 1e-7);
         }
+        // Far in the tail, where 1 − p rounds to 1: found on the tail.
+        for p in [1e-20, 1e-100] {
+            near(normal_sf(normal_upper_quantile(p)) / p, 1.0, 1e-6);
+        }
+        // A p of 0 (an underflowed tail): where the tail itself underflows.
+        assert!(normal_upper_quantile(0.0) > 38.0);
     }
 }

@@ -21,6 +21,8 @@
 //!   than the model it replaced, batch after batch.
 //! - [`shift`]: whether a batch's losses moved beyond how batches usually
 //!   differ, overall and for single category values.
+//! - [`suspect`]: whether a batch's data is broken (targets unrelated to the
+//!   inputs, a jumped target scale, one row repeated) rather than moved.
 
 pub mod cluster;
 pub mod decide;
@@ -29,6 +31,7 @@ pub mod metrics;
 pub mod monitor;
 pub mod paired;
 pub mod shift;
+pub mod suspect;
 
 #[cfg(test)]
 mod props;

@@ -58,8 +58,15 @@ pub struct TrainingSummary {
     pub kind: RunKind,
     /// Epochs run.
     pub epochs: usize,
-    /// Epoch (1-based) whose weights were kept; 0 when no epoch finished.
+    /// Epoch (1-based) whose weights were kept; 0 when no epoch finished,
+    /// or, in a warm run, when no epoch beat the parent's own weights on
+    /// the validation rows (the parent's weights are then kept).
     pub best_epoch: usize,
+    /// Warm runs: the parent's validation loss before any step, the mark
+    /// every epoch had to beat. `None` for cold runs, without a validation
+    /// split, and in manifests written before it was recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub start_validation_loss: Option<f64>,
     /// New rows trained on (after the validation split).
     pub rows: usize,
     /// Older rows replayed per epoch (warm runs).

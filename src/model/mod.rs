@@ -777,6 +777,30 @@ impl Model {
         }
     }
 
+    /// Regression: target − prediction of every row, in the target's units,
+    /// from the same pass `row_losses` makes (each loss is the square);
+    /// `None` for classification.
+    pub fn row_errors(
+        &self,
+        rows: &RowMatrix,
+        backend: Backend,
+    ) -> Result<Option<Vec<f64>>, ModelError> {
+        if self.spec.task != Task::Regression {
+            return Ok(None);
+        }
+        let targets = self.spec.encode_targets(rows);
+        if let Some(row) = targets.iter().position(|t| t.is_nan()) {
+            return Err(ModelError::MissingTarget { row });
+        }
+        let raw = self.raw_outputs_of_rows(rows, backend)?;
+        Ok(Some(
+            raw.iter()
+                .zip(&targets)
+                .map(|(&o, &y)| regression_error(self.target, o, y))
+                .collect(),
+        ))
+    }
+
     /// Loss of every row: squared error in the target's units for
     /// regression, cross-entropy −ln p(true class) for classification (at
     /// most `MAX_ROW_LOG_LOSS`, also for a class the model has no output
@@ -797,6 +821,12 @@ impl Model {
     }
 }
 
+/// Target − prediction of one row, in the target's units (its square is
+/// the row's squared-error loss).
+fn regression_error(target: TargetScale, raw: f32, y: f32) -> f64 {
+    f64::from(y) - (target.mean + target.std * f64::from(raw))
+}
+
 /// Per-row losses from raw network outputs (see `Model::row_losses`).
 pub(crate) fn row_losses_from_raw(
     task: Task,
@@ -809,10 +839,7 @@ pub(crate) fn row_losses_from_raw(
         Task::Regression => raw
             .iter()
             .zip(targets)
-            .map(|(&o, &y)| {
-                let e = target.mean + target.std * f64::from(o) - f64::from(y);
-                e * e
-            })
+            .map(|(&o, &y)| regression_error(target, o, y).powi(2))
             .collect(),
         Task::Classification => raw
             .chunks_exact(k)

@@ -63,14 +63,19 @@ fn number(v: &f64) -> String {
     }
 }
 
-/// Marker outlines in pixels around the point.
-#[derive(Debug, Clone, Copy)]
+/// Marker outlines in pixels around the point. Each fate has a shape of
+/// its own, so a marker is told apart without its colour.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
 enum Shape {
     Disc,
     Square,
     Triangle,
     Diamond,
     Cross,
+    /// Two triangles tip to tip: a candidate waiting for a person.
+    Hourglass,
+    /// A flat bar: no decision logged.
+    Bar,
 }
 
 fn outline(shape: Shape) -> Vec<(i32, i32)> {
@@ -87,6 +92,8 @@ fn outline(shape: Shape) -> Vec<(i32, i32)> {
         Shape::Square => vec![(-4, -4), (4, -4), (4, 4), (-4, 4)],
         Shape::Triangle => vec![(0, -6), (6, 5), (-6, 5)],
         Shape::Diamond => vec![(0, -6), (6, 0), (0, 6), (-6, 0)],
+        Shape::Hourglass => vec![(-5, -6), (5, -6), (1, 0), (5, 6), (-5, 6), (-1, 0)],
+        Shape::Bar => vec![(-6, -2), (6, -2), (6, 2), (-6, 2)],
         Shape::Cross => vec![
             (-5, -6),
             (0, -1),
@@ -107,12 +114,12 @@ fn outline(shape: Shape) -> Vec<(i32, i32)> {
 fn fate_style(f: Fate) -> (Shape, RGBColor) {
     match f {
         Fate::Promoted => (Shape::Disc, GREEN),
-        Fate::Kept => (Shape::Cross, GREY),
+        Fate::Shelved => (Shape::Cross, GREY),
         Fate::RolledBack => (Shape::Triangle, RED),
         Fate::Approved => (Shape::Square, BLUE),
         Fate::Declined => (Shape::Diamond, AMBER),
-        Fate::Awaiting => (Shape::Diamond, PURPLE),
-        Fate::Undecided => (Shape::Disc, INK),
+        Fate::Awaiting => (Shape::Hourglass, PURPLE),
+        Fate::Undecided => (Shape::Bar, INK),
     }
 }
 
@@ -223,15 +230,7 @@ pub fn holdout(t: &Timeline) -> anyhow::Result<Option<String>> {
                     .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], colour));
                 chart.draw_series(points.iter().map(|&p| Circle::new(p, 3, colour.filled())))?;
             }
-            for fate in [
-                Fate::Promoted,
-                Fate::Approved,
-                Fate::Kept,
-                Fate::Declined,
-                Fate::RolledBack,
-                Fate::Awaiting,
-                Fate::Undecided,
-            ] {
+            for fate in Fate::ALL {
                 let points: Vec<(f64, f64)> = t
                     .candidates
                     .iter()
@@ -414,7 +413,7 @@ pub fn rows(t: &Timeline) -> anyhow::Result<Option<String>> {
                     |a| matches!(a, Arrival::Accepted { drifted, .. } if !drifted.is_empty()),
                 ),
                 ("refused", Shape::Cross, RED, |a| {
-                    matches!(a, Arrival::Rejected { .. })
+                    matches!(a, Arrival::Refused { .. })
                 }),
                 ("duplicate (nothing stored)", Shape::Diamond, GREY, |a| {
                     matches!(a, Arrival::Duplicate { .. })
@@ -643,6 +642,77 @@ mod tests {
         assert_eq!(scale_colour(1.0), RGBColor(0xf2, 0xd9, 0x8c));
         assert_eq!(scale_colour(7.0), scale_colour(1.0));
         assert_eq!(scale_colour(f64::NAN), scale_colour(0.0));
+    }
+
+    #[test]
+    fn every_fate_has_a_marker_shape_of_its_own() {
+        // Fate::ALL lists every fate (a new one must be added to it).
+        for f in Fate::ALL {
+            match f {
+                Fate::Promoted
+                | Fate::Shelved
+                | Fate::RolledBack
+                | Fate::Approved
+                | Fate::Declined
+                | Fate::Awaiting
+                | Fate::Undecided => {}
+            }
+        }
+        let shapes: Vec<Shape> = Fate::ALL.iter().map(|&f| fate_style(f).0).collect();
+        for (i, a) in shapes.iter().enumerate() {
+            for (j, b) in shapes.iter().enumerate().skip(i + 1) {
+                assert_ne!(a, b, "{:?} and {:?}", Fate::ALL[i], Fate::ALL[j]);
+                assert_ne!(outline(*a), outline(*b), "{a:?} and {b:?} are drawn alike");
+            }
+        }
+        // Drawn: one candidate of each fate gives one legend entry each,
+        // and every outline appears among the chart's polygons.
+        let t = Timeline {
+            candidates: Fate::ALL
+                .iter()
+                .enumerate()
+                .map(|(i, &fate)| super::super::gather::Candidate {
+                    cycle: i as u64 + 1,
+                    model: crate::ids::ModelId(i as u64 + 1),
+                    run: "warm".into(),
+                    holdout_loss: 1.0 + i as f64,
+                    time: String::new(),
+                    fate,
+                })
+                .collect(),
+            ..Timeline::default()
+        };
+        let svg = holdout(&t).unwrap().unwrap();
+        for f in Fate::ALL {
+            // plotters writes a label as `>\nLABEL\n</text>`.
+            assert!(
+                svg.contains(&format!("\n{}\n</text>", f.label())),
+                "{}",
+                f.label()
+            );
+        }
+        let drawn: std::collections::BTreeSet<Vec<(i32, i32)>> = svg
+            .split("<polygon ")
+            .skip(1)
+            .filter_map(|tag| tag.split("points=\"").nth(1)?.split('"').next())
+            .map(|points| {
+                let xy: Vec<(i32, i32)> = points
+                    .split_whitespace()
+                    .filter_map(|p| {
+                        let (x, y) = p.split_once(',')?;
+                        Some((x.parse::<f64>().ok()? as i32, y.parse::<f64>().ok()? as i32))
+                    })
+                    .collect();
+                // Relative to the first point, as the outline is to its own.
+                let (x0, y0) = xy.first().copied().unwrap_or_default();
+                xy.iter().map(|(x, y)| (x - x0, y - y0)).collect()
+            })
+            .collect();
+        for s in &shapes {
+            let o = outline(*s);
+            let rel: Vec<(i32, i32)> = o.iter().map(|(x, y)| (x - o[0].0, y - o[0].1)).collect();
+            assert!(drawn.contains(&rel), "{s:?} not drawn: {drawn:?}");
+        }
     }
 
     #[test]

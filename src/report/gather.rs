@@ -18,7 +18,7 @@ use crate::state::StateDir;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 pub enum Fate {
     Promoted,
-    Kept,
+    Shelved,
     RolledBack,
     Approved,
     Declined,
@@ -27,10 +27,21 @@ pub enum Fate {
 }
 
 impl Fate {
+    /// Every fate, in the order the report's legend lists them.
+    pub const ALL: [Fate; 7] = [
+        Fate::Promoted,
+        Fate::Approved,
+        Fate::Shelved,
+        Fate::Declined,
+        Fate::RolledBack,
+        Fate::Awaiting,
+        Fate::Undecided,
+    ];
+
     pub fn label(self) -> &'static str {
         match self {
             Fate::Promoted => "promoted",
-            Fate::Kept => "kept",
+            Fate::Shelved => "shelved",
             Fate::RolledBack => "rolled back",
             Fate::Approved => "approved",
             Fate::Declined => "declined",
@@ -71,7 +82,7 @@ pub enum Arrival {
         /// per column.
         new_values: Vec<String>,
     },
-    Rejected {
+    Refused {
         problems: u64,
         first_problem: String,
     },
@@ -155,8 +166,8 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
             }
-            Event::Kept { model, .. } => {
-                fates.insert(*model, Fate::Kept);
+            Event::Shelved { model, .. } => {
+                fates.insert(*model, Fate::Shelved);
             }
             Event::AwaitingApproval { model, .. } => {
                 fates.insert(*model, Fate::Awaiting);
@@ -188,23 +199,14 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                         drifted: drift.as_ref().map_or_else(Vec::new, |d| {
                             d.flagged().into_iter().map(str::to_string).collect()
                         }),
-                        new_values: drift.as_ref().map_or_else(Vec::new, |d| {
-                            d.new_values()
-                                .into_iter()
-                                .map(|(col, values, share)| {
-                                    format!(
-                                        "{col}: {} ({:.1}% of rows)",
-                                        values.join(", "),
-                                        100.0 * share
-                                    )
-                                })
-                                .collect()
-                        }),
+                        new_values: drift
+                            .as_ref()
+                            .map_or_else(Vec::new, |d| d.new_values_text()),
                     },
                     rows_stored: stored,
                 });
             }
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file,
                 problems,
                 first_problem,
@@ -212,7 +214,7 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
             } => t.files.push(FileEvent {
                 time: e.time.clone(),
                 file: file.clone(),
-                what: Arrival::Rejected {
+                what: Arrival::Refused {
                     problems: *problems,
                     first_problem: first_problem.clone(),
                 },
@@ -299,11 +301,13 @@ pub struct StoredRows {
 /// function of each row's content) and encoded with `vocabs`, which grows
 /// by the values each file brings in the order the store gave them codes
 /// (so codes match the store's when `vocabs` starts as a model's
-/// vocabularies). Batches whose file is missing or unreadable are named in
-/// the notes and left out.
+/// vocabularies). The rows of batches in `aside` are parsed for their
+/// values but not kept. Batches whose file is missing or unreadable are
+/// named in the notes and left out.
 pub fn stored_rows(
     state: &StateDir,
     batches: &[BatchId],
+    aside: &std::collections::BTreeSet<BatchId>,
     schema: &Schema,
     vocabs: &mut Vocabularies,
     limits: &Limits,
@@ -328,11 +332,13 @@ pub fn stored_rows(
         };
         match ingest::parse(&raw.bytes, schema, vocabs, limits) {
             Ok(batch) => {
-                out.rows.extend(&batch.train);
-                out.rows.extend(&batch.holdout);
-                out.holdout.extend(&batch.holdout);
-                out.holdout_batches
-                    .extend(std::iter::repeat_n(b.0, batch.holdout.n_rows()));
+                if !aside.contains(&b) {
+                    out.rows.extend(&batch.train);
+                    out.rows.extend(&batch.holdout);
+                    out.holdout.extend(&batch.holdout);
+                    out.holdout_batches
+                        .extend(std::iter::repeat_n(b.0, batch.holdout.n_rows()));
+                }
                 for (col, values) in batch.new_categories {
                     let vocab = vocabs.entry(col).or_default();
                     for v in values {
@@ -353,29 +359,11 @@ pub fn stored_rows(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::audit::{Entry, GENESIS};
-    use crate::ids::AuditSeq;
+    use crate::audit::Entry;
+    use crate::provenance::fixtures::{chained, gate_evidence};
 
     fn entries(events: Vec<Event>) -> Vec<Entry> {
-        let t0 = chrono::DateTime::parse_from_rfc3339("2026-12-01T00:00:00Z")
-            .unwrap()
-            .with_timezone(&chrono::Utc);
-        let mut prev = GENESIS.to_string();
-        events
-            .into_iter()
-            .enumerate()
-            .map(|(i, ev)| {
-                let e = Entry::seal(
-                    AuditSeq(i as u64 + 1),
-                    t0 + chrono::TimeDelta::minutes(i as i64),
-                    "ana",
-                    ev,
-                    &prev,
-                );
-                prev = e.hash.clone();
-                e
-            })
-            .collect()
+        chained(events.into_iter().map(|e| ("ana", e)).collect())
     }
 
     fn trained(cycle: u64, model: u64, loss: f64) -> Event {
@@ -405,35 +393,21 @@ mod tests {
             train_rows: rows - 1,
             holdout_rows: 1,
             new_categories: BTreeMap::new(),
+            new_category_counts: Default::default(),
             drift: None,
+            suspect: None,
         }
     }
 
     fn evidence() -> crate::audit::GateEvidence {
-        crate::audit::GateEvidence {
-            baseline: "serving".into(),
-            rows: 100,
-            mean_loss_baseline: 2.0,
-            mean_loss_candidate: 1.0,
-            relative_improvement: Some(0.5),
-            t: Some(3.0),
-            p: 0.01,
-            batches: None,
-            batches_needed: None,
-            candidates: None,
-            p_unadjusted: None,
-            wilcoxon_p: None,
-            new_rows: 50,
-            old_rows: 50,
-            reason: "better".into(),
-        }
+        gate_evidence(100)
     }
 
     #[test]
     fn fates_follow_the_latest_decision_and_rows_accumulate() {
         let log = entries(vec![
             accepted(1, 10),
-            Event::BatchRejected {
+            Event::BatchRefused {
                 file: "bad.csv".into(),
                 file_hash: "cd".into(),
                 problems: 2,
@@ -471,7 +445,7 @@ mod tests {
                 previous: Some(ModelId(1)),
                 evidence: evidence(),
             },
-            Event::Kept {
+            Event::Shelved {
                 cycle: 2,
                 model: ModelId(3),
                 serving: Some(ModelId(2)),
@@ -490,7 +464,11 @@ mod tests {
         let fates: Vec<(u64, Fate)> = t.candidates.iter().map(|c| (c.model.0, c.fate)).collect();
         assert_eq!(
             fates,
-            vec![(1, Fate::Promoted), (2, Fate::RolledBack), (3, Fate::Kept)]
+            vec![
+                (1, Fate::Promoted),
+                (2, Fate::RolledBack),
+                (3, Fate::Shelved)
+            ]
         );
         assert_eq!(t.candidates[1].holdout_loss, 3.0);
         assert_eq!(t.baselines.len(), 1);
@@ -499,7 +477,7 @@ mod tests {
         assert_eq!(stored, vec![10, 10, 15, 15]);
         assert!(matches!(
             t.files[1].what,
-            Arrival::Rejected { problems: 2, .. }
+            Arrival::Refused { problems: 2, .. }
         ));
         assert_eq!(t.batches(), vec![BatchId(1), BatchId(2)]);
     }

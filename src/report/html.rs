@@ -119,6 +119,8 @@ tbody tr:nth-child(even) { background: #faf9f5; }
 td:first-child { white-space: nowrap; }
 table.log td:nth-child(2) { white-space: nowrap; color: var(--muted); }
 table.log td:nth-child(4) { white-space: nowrap; font-weight: 600; }
+tr.saw-aside td { background: #fbf3e2; }
+tr.saw-aside td:first-child { border-left: 4px solid #d88a1e; }
 ul.notes { color: var(--muted); font-size: 13px; }
 ";
 
@@ -142,11 +144,11 @@ mod tests {
         let t = table(
             "log",
             &["kind", "summary"],
-            &[vec!["kept".into(), "<b>bold</b>".into()]],
+            &[vec!["shelved".into(), "<b>bold</b>".into()]],
             &[" data-seq=\"3\"".into()],
         );
         assert!(
-            t.contains("<tr data-seq=\"3\"><td>kept</td><td>&lt;b&gt;bold&lt;/b&gt;</td></tr>")
+            t.contains("<tr data-seq=\"3\"><td>shelved</td><td>&lt;b&gt;bold&lt;/b&gt;</td></tr>")
         );
         assert!(!t.contains("<b>"));
     }

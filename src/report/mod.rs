@@ -3,7 +3,9 @@
 //! version with the gate's decisions and the baselines, training curves,
 //! rows stored, the serving model's response over two inputs, the
 //! permutation importance of each input column on the holdout rows,
-//! fresh-data checks, drift flags and the audit log.
+//! fresh-data checks, drift flags, the batches each model saw and the
+//! batches set aside (with the models that trained on them), and the audit
+//! log.
 //!
 //! Reads files only (`gather`), so it works while another process owns the
 //! state dir. `scan` computes what the serving model does, `charts` draws,
@@ -14,6 +16,7 @@ pub mod gather;
 pub mod html;
 pub mod importance;
 pub mod scan;
+pub mod seen;
 
 use chrono::{DateTime, SecondsFormat, Utc};
 
@@ -62,6 +65,7 @@ pub fn build(
 ) -> anyhow::Result<Report> {
     let entries = state.mirror().entries()?;
     let t = gather::timeline(&entries);
+    let seen = seen::Seen::from_entries(&entries);
     let serving = gather::serving(state)?;
     let (manifests, mut notes) = gather::manifests(&state.models());
     let schema = Schema::from_config(config);
@@ -71,8 +75,12 @@ pub fn build(
     // 1. Holdout loss per model version.
     let mut s = note(
         "Mean loss on the holdout rows of every candidate, by the retrain cycle that trained it; \
-         the marker says what the log records as its latest fate. Dashed lines: the cycle's ridge \
-         regression and trivial predictor, fitted on the same rows and scored on the same holdout rows.",
+         the marker says what the log records as its latest fate, each fate with a shape of its own \
+         as well as a colour. Dashed lines: the cycle's ridge \
+         regression and trivial predictor, fitted on the same rows and scored on the same holdout rows. \
+         The table names the batches each model saw: those its own training could read, and those \
+         it carries only through the weights it was warm-started from. A model that saw a batch \
+         now set aside is marked.",
     );
     match charts::holdout(&t)? {
         Some(svg) => {
@@ -97,8 +105,15 @@ pub fn build(
                         loss(c.holdout_loss),
                         c.fate.label().to_string(),
                         c.time.clone(),
+                        seen.batches_cell(c.model),
+                        seen.aside_cell(c.model),
                     ]
                 })
+                .collect();
+            let marks: Vec<String> = t
+                .candidates
+                .iter()
+                .map(|c| seen.row_attr(c.model))
                 .collect();
             s.push_str(&table(
                 "models",
@@ -109,9 +124,11 @@ pub fn build(
                     "holdout loss",
                     "fate",
                     "trained (UTC)",
+                    "batches seen",
+                    "set-aside batches seen",
                 ],
                 &rows,
-                &[],
+                &marks,
             ));
         }
         None => s.push_str(&missing(
@@ -169,7 +186,7 @@ pub fn build(
         .files
         .iter()
         .filter_map(|f| match &f.what {
-            Arrival::Rejected {
+            Arrival::Refused {
                 problems,
                 first_problem,
             } => Some(vec![
@@ -187,6 +204,23 @@ pub fn build(
             "refused",
             &["file", "time (UTC)", "problems", "first problem"],
             &refused,
+            &[],
+        ));
+    }
+    let aside = seen.aside_rows();
+    if !aside.is_empty() {
+        s.push_str("<h3>Batches set aside</h3>\n");
+        s.push_str(&note(
+            "Stored and archived, but read by nothing that trains, judges or measures drift: \
+             not in training, the holdout rows, the baselines or the drift reference, nor in the \
+             response map and input influence below. The last column names the models that \
+             trained on the batch before it was set aside, directly or only through the weights \
+             they were warm-started from.",
+        ));
+        s.push_str(&table(
+            "aside",
+            &["batch", "file", "why", "models that trained on it"],
+            &aside,
             &[],
         ));
     }
@@ -212,8 +246,16 @@ pub fn build(
                 holdout_fraction: *config.data.holdout_fraction.get_ref(),
             };
             let mut vocabs = cp.manifest.vocabularies();
-            let (rows, row_notes) =
-                gather::stored_rows(state, &t.batches(), &schema, &mut vocabs, &limits);
+            // Rows set aside are read (their new values keep the codes in
+            // step with the store's) but not drawn or scored.
+            let (rows, row_notes) = gather::stored_rows(
+                state,
+                &t.batches(),
+                seen.aside(),
+                &schema,
+                &mut vocabs,
+                &limits,
+            );
             notes.extend(row_notes);
             Ok((cp, rows, vocabs))
         }

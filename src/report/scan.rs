@@ -310,24 +310,31 @@ mod tests {
     use crate::config::Task;
     use crate::schema::Column;
 
-    fn schema() -> Schema {
-        let col = |name: &str, kind| Column {
-            name: name.into(),
-            kind,
-            min: None,
-            max: None,
-            required: true,
-        };
+    /// A regression schema whose last column is the target.
+    fn schema_of(columns: &[(&str, ColumnKind)]) -> Schema {
         Schema {
-            columns: vec![
-                col("shop", ColumnKind::Category),
-                col("temp", ColumnKind::Number),
-                col("rain", ColumnKind::Number),
-                col("sold", ColumnKind::Number),
-            ],
-            target: 3,
+            columns: columns
+                .iter()
+                .map(|&(name, kind)| Column {
+                    name: name.into(),
+                    kind,
+                    min: None,
+                    max: None,
+                    required: true,
+                })
+                .collect(),
+            target: columns.len() - 1,
             task: Task::Regression,
         }
+    }
+
+    fn schema() -> Schema {
+        schema_of(&[
+            ("shop", ColumnKind::Category),
+            ("temp", ColumnKind::Number),
+            ("rain", ColumnKind::Number),
+            ("sold", ColumnKind::Number),
+        ])
     }
 
     #[test]
@@ -379,23 +386,12 @@ mod tests {
     }
 
     fn bakery_schema() -> Schema {
-        let col = |name: &str, kind| Column {
-            name: name.into(),
-            kind,
-            min: None,
-            max: None,
-            required: true,
-        };
-        Schema {
-            columns: vec![
-                col("x", ColumnKind::Number),
-                col("z", ColumnKind::Number),
-                col("shop", ColumnKind::Category),
-                col("y", ColumnKind::Number),
-            ],
-            target: 3,
-            task: Task::Regression,
-        }
+        schema_of(&[
+            ("x", ColumnKind::Number),
+            ("z", ColumnKind::Number),
+            ("shop", ColumnKind::Category),
+            ("y", ColumnKind::Number),
+        ])
     }
 
     fn bakery_spec(shops: usize) -> crate::schema::FeatureSpec {

@@ -16,9 +16,9 @@
 //! - [`Change::ZoneShift`]: from a given night, one zone's energy use rises
 //!   by a factor (a real change in the world: the inputs still explain the
 //!   target, differently);
-//! - worse models are made by [`make_worse`]: the serving model's output
-//!   spread scaled until its holdout loss is a given factor higher, then
-//!   promoted as if the gate had passed it.
+//! - worse models are made by [`make_worse`]: a seeded random error per
+//!   building added to the serving model until its holdout loss is a given
+//!   factor higher, then promoted as if the gate had passed it.
 
 use std::fmt::Write;
 use std::path::Path;
@@ -31,7 +31,7 @@ use crate::cycle::{self, ModelRecord};
 use crate::fresh;
 use crate::ids::{BatchId, ModelId};
 use crate::intake::{self, Source};
-use crate::model::checkpoint::{self, Checkpoint, CheckpointMeta};
+use crate::model::checkpoint::CheckpointMeta;
 use crate::model::{Model, adam};
 use crate::rng::Rng;
 use crate::state::{self, Owner, StateDir};
@@ -259,43 +259,101 @@ impl Run {
 }
 
 /// Makes the serving model `factor` times worse on the stored holdout rows
-/// (its output shifted up until the mean holdout loss is `factor` times
-/// its own, as an upstream unit slip would), saves it as a new version and
-/// promotes it with the old one as its predecessor, as if the gate had
-/// passed it. Returns the new model's id.
+/// (a seeded random perturbation of how it reads the first category
+/// column, grown until the mean holdout loss is `factor` times its own),
+/// saves it as a new version and promotes it with the old one as its
+/// predecessor, as if the gate had passed it. Returns the new model's id.
 pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<ModelId> {
     let serving = owner
         .store
         .serving()?
         .ok_or_else(|| anyhow::anyhow!("no model serves"))?;
-    let fingerprint = owner.config.schema_fingerprint();
-    let ck = Checkpoint::load(
-        &checkpoint::model_dir(&owner.state.models(), serving),
-        &fingerprint,
-    )?;
+    let ck = owner.checkpoint(serving)?;
     let holdout = owner.store.rows(Split::Holdout, None, None)?;
     let backend = owner.config.training.predict_backend;
     let base = mean(&ck.model.row_losses(&holdout, backend)?);
-    let scaled = |c: f32| -> anyhow::Result<Model> {
-        let mut weights = ck.model.weights();
-        let last = weights.last_mut().expect("a network has layers");
-        for b in &mut last.bias {
-            *b += c;
+    // The weights move by c times a random direction drawn without looking
+    // at any data, with the mean output on the holdout rows kept: an error
+    // per building, unrelated to the day, so the model is worse in
+    // expectation on any night of the same process. (Shrinking the last
+    // layer was not: it pulls predictions towards the mean, which helps on
+    // nights a model over-reaches, and in several seeds that model beat its
+    // predecessor on half the fresh nights. A shifted or stretched output
+    // had the same flaw. Perturbing the last layer moved the error with
+    // the day's weather and weekday, with the same result.)
+    let values = |m: &Model| -> anyhow::Result<Vec<f32>> {
+        match m.predict(&holdout, backend)? {
+            crate::model::Predictions::Regression { values } => Ok(values),
+            _ => anyhow::bail!("the simulation is a regression"),
         }
-        Ok(Model::from_parts(
+    };
+    let original = values(&ck.model)?;
+    let build = |weights: &[crate::model::LayerWeights]| {
+        Model::from_parts(
             ck.model.spec().clone(),
             ck.model.config().clone(),
             ck.model.target_scale(),
             ck.model.backend(),
-            &weights,
+            weights,
             adam(),
-        ))
+        )
     };
-    let (mut lo, mut hi) = (0.0f32, 8.0f32);
+    let start = ck.model.weights();
+    // The rows of the first layer that read the first category column's
+    // one-hot inputs (the building): each building gets its own error,
+    // and a night has every building, so the errors do not move with the
+    // day.
+    let mut offset = 0;
+    let mut span = None;
+    for e in &ck.model.spec().inputs {
+        match e {
+            crate::schema::InputEncoding::Number { .. } => offset += 1,
+            crate::schema::InputEncoding::OneHot { width, .. } => {
+                span = Some(offset..offset + width);
+                break;
+            }
+        }
+    }
+    let span = span.ok_or_else(|| anyhow::anyhow!("the simulation has a category input"))?;
+    let first = start.first().expect("a network has layers");
+    let rows = span.start * first.outputs..span.end * first.outputs;
+    let rms = (first
+        .weight
+        .iter()
+        .map(|w| f64::from(*w).powi(2))
+        .sum::<f64>()
+        / first.weight.len().max(1) as f64)
+        .sqrt()
+        .max(1e-3);
+    let mut rng = Rng::new(0x0bad_5eed ^ serving.0);
+    let direction: Vec<f32> = rows.clone().map(|_| (rms * rng.normal()) as f32).collect();
+    let scaled = |c: f32| -> anyhow::Result<Model> {
+        let mut weights = start.clone();
+        let first = weights.first_mut().expect("a network has layers");
+        for (w, d) in first.weight[rows.clone()].iter_mut().zip(&direction) {
+            *w += c * d;
+        }
+        let moved = values(&build(&weights))?;
+        let shift = original
+            .iter()
+            .zip(&moved)
+            .map(|(a, b)| f64::from(b - a))
+            .sum::<f64>()
+            / original.len().max(1) as f64;
+        let last = weights.last_mut().expect("a network has layers");
+        last.bias[0] -= (shift / ck.model.target_scale().std) as f32;
+        Ok(build(&weights))
+    };
+    let loss_at =
+        |c: f32| -> anyhow::Result<f64> { Ok(mean(&scaled(c)?.row_losses(&holdout, backend)?)) };
+    let mut hi = 1.0f32;
+    while loss_at(hi)? < factor * base && hi < 1e6 {
+        hi *= 2.0;
+    }
+    let mut lo = 0.0f32;
     for _ in 0..40 {
         let mid = 0.5 * (lo + hi);
-        let loss = mean(&scaled(mid)?.row_losses(&holdout, backend)?);
-        if loss < factor * base {
+        if loss_at(mid)? < factor * base {
             lo = mid;
         } else {
             hi = mid;
@@ -308,7 +366,7 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         id,
         parent: Some(serving),
         created_at: Utc::now(),
-        schema_fingerprint: &fingerprint,
+        schema_fingerprint: &owner.config.schema_fingerprint(),
         vocabularies: &vocabs,
     };
     worse.save(&owner.state.models(), &ck.manifest.summary, &meta)?;
@@ -321,23 +379,12 @@ pub fn make_worse(owner: &mut Owner, factor: f64, user: &str) -> anyhow::Result<
         cycle: 0,
         holdout_loss: mean(&worse.row_losses(&holdout, backend)?),
     };
-    let evidence = crate::audit::GateEvidence {
-        baseline: "serving".into(),
-        rows: holdout.n_rows(),
-        mean_loss_baseline: base,
-        mean_loss_candidate: record.holdout_loss,
-        relative_improvement: None,
-        t: None,
-        p: 1.0,
-        batches: None,
-        batches_needed: None,
-        candidates: None,
-        p_unadjusted: None,
-        wilcoxon_p: None,
-        new_rows: 0,
-        old_rows: holdout.n_rows(),
-        reason: format!("simulation: a model made {factor}× worse, promoted on purpose"),
-    };
+    let evidence = crate::audit::GateEvidence::without_test(
+        holdout.n_rows(),
+        base,
+        record.holdout_loss,
+        format!("simulation: a model made {factor}× worse, promoted on purpose"),
+    );
     let entry = owner.store.record_with_meta(
         Event::Promoted {
             cycle: 0,
@@ -376,12 +423,17 @@ pub struct Tally {
     pub any_flag_nights: usize,
     pub rollbacks: usize,
     pub promotions: usize,
+    /// Drift flags per column, and the nights (1-based) they fell on.
+    pub drift_columns: std::collections::BTreeMap<String, Vec<usize>>,
 }
 
 impl Tally {
     pub fn add(&mut self, nights: &[Night]) {
         self.streams += 1;
-        for n in nights {
+        for (i, n) in nights.iter().enumerate() {
+            for c in &n.drift_flagged {
+                self.drift_columns.entry(c.clone()).or_default().push(i + 1);
+            }
             self.nights += 1;
             if n.verdict != "untested" {
                 self.checked_nights += 1;

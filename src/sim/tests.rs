@@ -77,12 +77,17 @@ fn nights_to_shift_flag(seed: u64, factor: f64) -> Option<usize> {
         .map(|p| p + 1)
 }
 
+/// A short version of the table's power row: most of a few streams flag
+/// the zone within 2 nights (18 of 20 in the table; at least 3 of 5 here,
+/// a property that a better default does not break).
 #[test]
-#[ignore = "measurement: a zone of six is not judged by the group check yet (see README)"]
 fn a_zone_whose_demand_rises_by_45_percent_is_flagged() {
-    let n = nights_to_shift_flag(3, 1.45);
-    println!("flagged after {n:?} batches");
-    assert!(n.is_some());
+    let nights: Vec<Option<usize>> = (0..5)
+        .map(|s| nights_to_shift_flag(300 + s, 1.45))
+        .collect();
+    println!("flagged after {nights:?} batches");
+    let within2 = nights.iter().filter(|n| n.is_some_and(|n| n <= 2)).count();
+    assert!(within2 >= 3, "{nights:?}");
 }
 
 #[test]
@@ -135,6 +140,12 @@ fn error_rates_table() {
         100.0 * t.any_flag_nights as f64 / t.nights as f64
     );
     println!("| promotions over those streams | {} |", t.promotions);
+    for (c, nights) in &t.drift_columns {
+        println!(
+            "| drift flags on `{c}` (nights) | {} {nights:?} |",
+            nights.len()
+        );
+    }
     println!(
         "| false promotions per cycle, 1 candidate (gate, 10 batches) | {:.2}% |",
         100.0 * fp1
@@ -156,4 +167,69 @@ fn error_rates_table() {
     println!(
         "| true 10% gain promoted in ≥ 80% of runs from | {to_promote:?} holdout batches of 30 rows |"
     );
+}
+
+/// Drift flags per night on stationary streams, through the real intake
+/// only (drift is judged at intake, before any model):
+/// `cargo test --release --lib sim::tests::drift_flags_per_night -- --ignored --nocapture`
+#[test]
+#[ignore = "measurement: prints drift flags per night on stationary streams"]
+fn drift_flags_per_night() {
+    let mut flagged = 0;
+    let mut nights = 0;
+    let mut columns: std::collections::BTreeMap<String, Vec<usize>> = Default::default();
+    for seed in 0..20 {
+        let dir = tempfile::tempdir().unwrap();
+        let mut run = Run::new(dir.path()).unwrap();
+        let spec = StreamSpec {
+            day_sd: [0.06, 0.12, 0.2][seed as usize % 3],
+            ..StreamSpec::stationary(500 + seed, 26)
+        };
+        for (i, (name, text)) in stream(&spec).iter().enumerate() {
+            let n = run.night(i + 1, name, text, false).unwrap();
+            nights += 1;
+            flagged += usize::from(!n.drift_flagged.is_empty());
+            for c in n.drift_flagged {
+                columns.entry(c).or_default().push(i + 1);
+            }
+        }
+    }
+    println!(
+        "drift flags: {flagged}/{nights} nights = {:.1}%",
+        100.0 * flagged as f64 / nights as f64
+    );
+    for (c, n) in columns {
+        println!("  {c}: {} {n:?}", n.len());
+    }
+}
+
+/// Flags and rollbacks on stationary streams unlike the table's: fewer
+/// rows a night and larger or smaller day effects, end to end:
+/// `cargo test --release --lib sim::tests::stationary_variants -- --ignored --nocapture`
+#[test]
+#[ignore = "measurement: prints flags on other stationary streams"]
+fn stationary_variants() {
+    for (buildings, meters, day_sd) in [(12, 4, 0.25), (38, 4, 0.05), (20, 2, 0.15)] {
+        let mut t = Tally::default();
+        for seed in 0..5 {
+            let dir = tempfile::tempdir().unwrap();
+            let spec = StreamSpec {
+                buildings,
+                meters,
+                day_sd,
+                ..StreamSpec::stationary(900 + seed, 26)
+            };
+            t.add(&run_stream(dir.path(), &spec).unwrap());
+        }
+        println!(
+            "{} rows a night, day sd {day_sd}: rollbacks {}, fresh flags {}/{}, drift nights {}/{}, promotions {}",
+            buildings * meters,
+            t.rollbacks,
+            t.fresh_flags,
+            t.nights,
+            t.drift_nights,
+            t.nights,
+            t.promotions
+        );
+    }
 }

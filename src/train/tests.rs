@@ -411,3 +411,70 @@ fn least_squares_recovers_an_exact_plane() {
         "a constant column is singular"
     );
 }
+
+#[test]
+fn a_warm_run_never_hands_back_worse_than_its_parent_on_validation() {
+    // A converged linear fit meets new rows of the same law; a warm run at
+    // a rate far too high only makes it worse, so no epoch beats the
+    // parent and the parent's weights come back unchanged (best epoch 0).
+    let spec = spec(2, Task::Regression, 1);
+    let cold = train_cold(
+        &spec,
+        &linear_model(),
+        &small_cfg(),
+        &linear_rows(400, 1),
+        Control::default(),
+    )
+    .expect("trains");
+    let reckless = TrainingConfig {
+        warm_learning_rate: Some(5.0),
+        warm_epochs: 5,
+        patience: 5,
+        ..small_cfg()
+    };
+    let warm = train_warm(
+        &cold.model,
+        &reckless,
+        &linear_rows(200, 2),
+        &linear_rows(200, 3),
+        Control::default(),
+    )
+    .expect("trains");
+    let s = &warm.summary;
+    assert_eq!(s.best_epoch, 0, "{:?}", s.validation_loss);
+    let start = s
+        .start_validation_loss
+        .expect("a warm run records its start");
+    assert!(s.validation_loss.iter().all(|v| *v >= start), "{s:?}");
+    assert_eq!(warm.model.weights_digest(), cold.model.weights_digest());
+
+    // At a sane rate on rows of a changed law, epochs beat the parent and
+    // the kept epoch's validation loss is below where the run started.
+    let mut moved = RowMatrix::new(3);
+    let mut rng = Rng::new(4);
+    for _ in 0..300 {
+        let (a, b) = (rng.normal() as f32, rng.normal() as f32);
+        let y = 2.0 * a - b + 3.0;
+        moved.push_row(&[
+            number_cell(Some(a)),
+            number_cell(Some(b)),
+            number_cell(Some(y)),
+        ]);
+    }
+    let sane = TrainingConfig {
+        warm_learning_rate: Some(1e-2),
+        warm_epochs: 20,
+        ..small_cfg()
+    };
+    let warm = train_warm(
+        &cold.model,
+        &sane,
+        &moved,
+        &linear_rows(50, 5),
+        Control::default(),
+    )
+    .expect("trains");
+    let s = &warm.summary;
+    assert!(s.best_epoch >= 1, "{s:?}");
+    assert!(s.validation_loss[s.best_epoch - 1] < s.start_validation_loss.unwrap());
+}

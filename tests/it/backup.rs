@@ -60,7 +60,7 @@ fn a_backup_restores_to_a_state_that_verifies_and_answers_the_same() {
         "train_rows",
         "holdout_rows",
         "serving",
-        "rejected_files",
+        "refused_files",
     ] {
         assert_eq!(a["summary"][key], b["summary"][key], "{key}");
     }

@@ -47,7 +47,7 @@ fn a_path_with_no_file_name_keeps_its_reasons_inside_the_state_dir() {
         outside.is_empty(),
         "written outside the state dir: {outside:?}"
     );
-    let why: Vec<String> = std::fs::read_dir(env.state().join("rejected"))
+    let why: Vec<String> = std::fs::read_dir(env.state().join("refused"))
         .unwrap()
         .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
         .filter(|n| n.ends_with(".why.json"))
@@ -126,7 +126,7 @@ fn refusal_and_error_messages_say_what_is_wrong_once_and_on_stderr() {
     let out = env.ingest(std::slice::from_ref(&latin));
     assert_eq!(code(&out), 65);
     assert!(
-        stdout(&out).contains("latin.csv: rejected")
+        stdout(&out).contains("latin.csv: refused")
             && stdout(&out).contains("not valid UTF-8")
             && stdout(&out).contains("save it as UTF-8"),
         "{}",

@@ -266,7 +266,7 @@ fn malformed_files_are_refused_whole_with_reasons() {
         let out = env.ingest(&[data(&format!("bad/{name}"))]);
         assert_eq!(code(&out), 65, "{name}: {}{}", stdout(&out), stderr(&out));
         let text = stdout(&out);
-        assert!(text.contains("refused, nothing stored"), "{name}: {text}");
+        assert!(text.contains(": refused: nothing stored"), "{name}: {text}");
         assert!(text.contains(words), "{name}: {text}");
         // The JSON form names line, column and reason.
         let out = env
@@ -276,7 +276,7 @@ fn malformed_files_are_refused_whole_with_reasons() {
             .output()
             .unwrap();
         let v: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
-        assert_eq!(v["status"], "rejected", "{name}");
+        assert_eq!(v["status"], "refused", "{name}");
         let first = &v["problems"][0];
         assert_eq!(first["line"], *line, "{name}: {first}");
         assert_eq!(first["column"].as_str(), *column, "{name}: {first}");
@@ -292,17 +292,17 @@ fn malformed_files_are_refused_whole_with_reasons() {
     );
     let s = env.status_json();
     assert_eq!(s["summary"]["batches"], 0);
-    assert_eq!(s["summary"]["rejected_files"], 2 * BAD.len());
+    assert_eq!(s["summary"]["refused_files"], 2 * BAD.len());
     // Each refused file that could be read is kept with its reasons.
     let why: serde_json::Value = serde_json::from_slice(
-        &fs::read(env.state().join("rejected/many-bad-rows.csv.why.json")).unwrap(),
+        &fs::read(env.state().join("refused/many-bad-rows.csv.why.json")).unwrap(),
     )
     .unwrap();
     assert_eq!(why["problems_total"], 150);
     assert_eq!(why["problems_listed"], 100);
     assert_eq!(why["problems"][0]["value"], "hot");
     assert_eq!(
-        fs::read(env.state().join("rejected/many-bad-rows.csv")).unwrap(),
+        fs::read(env.state().join("refused/many-bad-rows.csv")).unwrap(),
         fs::read(data("bad/many-bad-rows.csv")).unwrap()
     );
 }
@@ -315,13 +315,13 @@ fn refused_file_message_names_file_line_column_and_fix() {
     assert_eq!(
         stdout(&out).trim(),
         format!(
-            "{}: rejected: refused, nothing stored (3 problems): line 41, column \"temp_c\" (field 4), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in rejected/night-05.csv.why.json",
+            "{}: refused: nothing stored (3 problems): line 41, column \"temp_c\" (field 5), value \"n/a\": not a number; write a decimal number such as 12.5; all problems in refused/night-05.csv.why.json",
             repo("demo-data/night-05.csv").display()
         )
     );
-    let log = env.log_json(&["--kind", "batch-rejected"]);
+    let log = env.log_json(&["--kind", "batch-refused"]);
     assert_eq!(log[0]["problems"], 3);
-    assert_eq!(log[0]["kept_as"], "rejected/night-05.csv");
+    assert_eq!(log[0]["kept_as"], "refused/night-05.csv");
 }
 
 #[test]
@@ -366,11 +366,13 @@ fn demo_batches_ingest_with_the_bad_night_refused() {
     let out = env.ingest(&files);
     assert_eq!(code(&out), 65, "one file is refused");
     let text = stdout(&out);
-    assert_eq!(text.matches(": accepted:").count(), 11, "{text}");
-    assert_eq!(text.matches(": rejected:").count(), 1, "{text}");
+    // Every night but the refused one; the resent copy is a duplicate.
+    let nights = tidegate::demo::NIGHTS;
+    assert_eq!(text.matches(": accepted:").count(), nights - 1, "{text}");
+    assert_eq!(text.matches(": refused:").count(), 1, "{text}");
     assert_eq!(text.matches(": duplicate:").count(), 1, "{text}");
     let s = env.status_json();
-    assert_eq!(s["summary"]["batches"], 11);
+    assert_eq!(s["summary"]["batches"], nights - 1);
     // The new shop appears as a new category value on its first night.
     let log = env.log_json(&["--kind", "batch-accepted"]);
     let new_shop: Vec<&serde_json::Value> = log
@@ -444,7 +446,7 @@ fn log_filters_and_json_lines() {
         vec![
             "initialized",
             "batch-accepted",
-            "batch-rejected",
+            "batch-refused",
             "batch-accepted",
             "batch-duplicate"
         ]
@@ -607,7 +609,7 @@ fn a_file_over_the_size_limit_is_refused_unread_even_at_two_gigabytes() {
     assert!(started.elapsed().as_secs() < 10, "refused without reading");
     assert_eq!(env.status_json()["summary"]["rows"], 0);
     assert!(
-        !env.state().join("rejected/huge.csv").exists(),
+        !env.state().join("refused/huge.csv").exists(),
         "an oversized file is not copied"
     );
 }
@@ -694,4 +696,42 @@ fn a_bad_row_deep_in_a_large_file_is_reported_at_its_own_line() {
     assert!(message.contains("line 100002"), "{message}");
     assert!(message.contains("warm"), "{message}");
     assert_eq!(stored_rows(&env), 0);
+}
+
+#[test]
+fn twenty_thousand_new_category_values_leave_sled_no_blob_files() {
+    // Every value sled keeps must stay under its blob threshold, or sled
+    // writes it to a blob file it never fsyncs: the audit entry of a batch
+    // that brings 20,000 new values must not carry them all.
+    let (dir, env) = large_files();
+    let mut text = String::from("id,city,temp,flag,y\n");
+    for i in 0..20_000 {
+        text.push_str(&format!(
+            "{i},a-rather-long-city-name-{i:05},{}.5,,{}.25\n",
+            i % 30,
+            i % 13
+        ));
+    }
+    let file = dir.path().join("many-cities.csv");
+    fs::write(&file, &text).unwrap();
+    let out = env.ingest(std::slice::from_ref(&file));
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let blobs = env.state().join("store/blobs");
+    let count = fs::read_dir(&blobs).map(|d| d.count()).unwrap_or(0);
+    assert_eq!(count, 0, "sled wrote {count} blob files");
+    let accepted = env.log_json(&["--kind", "batch-accepted"]);
+    let e = &accepted[0];
+    assert_eq!(e["new_category_counts"]["city"], 20_000, "{e}");
+    // The entry lists the first values in the order first seen; the full
+    // list is the vocabulary, written in the same transaction.
+    let listed = e["new_categories"]["city"].as_array().unwrap();
+    assert_eq!(listed.len(), tidegate::audit::NEW_VALUES_LISTED);
+    assert_eq!(listed[0], "a-rather-long-city-name-00000");
+    assert_eq!(listed[99], "a-rather-long-city-name-00099");
+    let log = stdout(&env.run(&["log", "--kind", "batch-accepted"]));
+    assert!(log.contains("and 19900 more (20000 new values)"), "{log}");
+    let status = stdout(&env.run(&["status"]));
+    assert!(status.contains("city: 20000 values"), "{status}");
+    let out = env.run(&["verify"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
 }

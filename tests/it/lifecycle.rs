@@ -1,6 +1,6 @@
 //! Retrain cycles and predictions through the real binary on the demo data:
 //! the first model must beat the trivial predictor, later candidates face
-//! the serving model, a damaged candidate is kept, a dry run changes
+//! the serving model, a damaged candidate is shelved, a dry run changes
 //! nothing, and `predict` scores files with the serving model.
 
 use std::fs;
@@ -40,13 +40,13 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     let env = demo_with(&["01", "02", "03", "04"]);
     let r = retrain(&env, &[]);
     assert_eq!(r["outcome"], "promote", "{r}");
-    assert_eq!(r["baseline"], "trivial predictor");
+    assert_eq!(r["compared_with"], "trivial predictor");
     assert_eq!(r["candidates"].as_array().unwrap().len(), 1);
     assert_eq!(r["candidates"][0]["run"], "cold");
     assert_eq!(r["serving_after"], 1);
     assert!(
         r["candidates"][0]["holdout_loss"].as_f64().unwrap()
-            < r["baseline_loss"].as_f64().unwrap() / 2.0
+            < r["compared_with_loss"].as_f64().unwrap() / 2.0
     );
     assert_eq!(
         fs::read_to_string(env.state().join("serving")).unwrap(),
@@ -63,7 +63,7 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
     assert_eq!(code(&out), 0);
     let r = retrain(&env, &[]);
     assert_eq!(r["serving_before"], 1);
-    assert_eq!(r["baseline"], "m000001");
+    assert_eq!(r["compared_with"], "m000001");
     assert_eq!(r["candidates"][0]["run"], "warm");
     assert_eq!(r["new_batches"], serde_json::json!([5, 6]));
     // The warm parent took the values nights 6 and 7 brought: Saturday,
@@ -85,14 +85,14 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
             if decided == "promote" {
                 "promoted".into()
             } else {
-                "kept".into()
+                "shelved".into()
             }
         ]
     );
     // The reviewer's question: what changed, when, on which evidence.
     let promoted = env.log_json(&["--kind", "promoted", "--model", "m000001"]);
     assert_eq!(promoted.len(), 1);
-    assert_eq!(promoted[0]["evidence"]["baseline"], "trivial");
+    assert_eq!(promoted[0]["evidence"]["compared_with"], "trivial");
     assert!(promoted[0]["evidence"]["p"].as_f64().unwrap() < 0.05);
     // The rank test on per-batch means is recorded beside it (with a few
     // batches it cannot go below 1/2^batches).
@@ -104,7 +104,7 @@ fn first_model_beats_trivial_then_warm_cycles_face_the_serving_model() {
 }
 
 #[test]
-fn a_candidate_trained_on_scrambled_targets_is_kept() {
+fn a_candidate_trained_on_scrambled_targets_is_shelved() {
     let env = demo_with(&["01", "02", "03", "04", "06"]);
     assert_eq!(retrain(&env, &[])["outcome"], "promote");
     // Night 7 with its target column replaced by the values of another
@@ -132,11 +132,19 @@ fn a_candidate_trained_on_scrambled_targets_is_kept() {
         fs::read_to_string(env.state().join("serving")).unwrap(),
         "m000001\n"
     );
-    // The kept candidate stays on disk, and the log says why.
+    // The shelved candidate stays on disk, and the log says why (the kind's
+    // former name still selects it).
     assert!(env.state().join("models/m000002/manifest.json").exists());
-    let kept = env.log_json(&["--kind", "kept"]);
-    assert_eq!(kept.last().unwrap()["model"], 2);
-    assert!(!kept.last().unwrap()["reason"].as_str().unwrap().is_empty());
+    let shelved = env.log_json(&["--kind", "shelved"]);
+    assert_eq!(shelved.last().unwrap()["model"], 2);
+    assert_eq!(shelved.last().unwrap()["kind"], "shelved");
+    assert!(
+        !shelved.last().unwrap()["reason"]
+            .as_str()
+            .unwrap()
+            .is_empty()
+    );
+    assert_eq!(env.log_json(&["--kind", "kept"]), shelved);
 }
 
 #[test]
@@ -175,7 +183,7 @@ fn predict_scores_files_with_the_serving_model() {
     let mut lines = text.lines();
     assert_eq!(
         lines.next().unwrap(),
-        "shop,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold,predicted_loaves_sold"
+        "shop,town,bread,weekday,temp_c,rain_mm,promo,prev_day_sold,loaves_sold,predicted_loaves_sold"
     );
     let rows: Vec<(f64, f64)> = lines
         .map(|l| {
@@ -434,29 +442,31 @@ fn approval_mode_waits_for_a_person() {
 }
 
 #[test]
-#[ignore = "pins one outcome of the seeded demo under the row-by-row gate; to be rewritten as a property (issue 16)"]
 fn manual_rollback_and_the_model_list() {
+    // Whatever the gate decides on the demo nights: a first model, then a
+    // second version promoted over it (made worse on purpose, so that a
+    // person has a reason to go back).
     let env = demo_with(&["01", "02", "03", "04"]);
     assert_eq!(retrain(&env, &[])["outcome"], "promote");
-    assert_eq!(code(&env.ingest(&[night("06"), night("07")])), 0);
-    assert_eq!(
-        retrain(&env, &[])["outcome"],
-        "promote",
-        "the seeded demo promotes its first warm candidate"
-    );
+    let second = worse_serving(&env, 1.25);
+    assert_eq!(second, 2);
+    assert_eq!(env.status_json()["summary"]["serving"], 2);
     let out = env.run(&["rollback", "--reason", "complaints from the harbour shop"]);
     assert_eq!(code(&out), 0, "{}", stderr(&out));
+    // The model it replaced serves again, and the log says who and why.
     assert_eq!(
         fs::read_to_string(env.state().join("serving")).unwrap(),
         "m000001\n"
     );
     let rb = env.log_json(&["--kind", "rolled-back"]);
+    assert_eq!(rb.len(), 1);
     assert_eq!(
         (rb[0]["from"].as_u64(), rb[0]["to"].as_u64()),
         (Some(2), Some(1))
     );
     assert_eq!(rb[0]["how"], "manual");
     assert_eq!(rb[0]["user"], "tester");
+    assert_eq!(rb[0]["reason"], "complaints from the harbour shop");
     assert_eq!(env.status_json()["summary"]["serving"], 1);
     let out = env.run(&["rollback", "--to", "m000001", "--reason", "again"]);
     assert_eq!(code(&out), 1);
@@ -478,15 +488,23 @@ fn manual_rollback_and_the_model_list() {
         .map(|l| serde_json::from_str(l).unwrap())
         .collect();
     assert_eq!(models.len(), 2);
-    assert_eq!(models[0]["serving"], true);
-    assert_eq!(models[1]["parent"], 1);
-    assert_eq!(models[1]["kind"], "warm");
-    assert_eq!(models[1]["decisions"], serde_json::json!(["promoted"]));
-    assert_eq!(
-        models[0]["decisions"],
-        serde_json::json!(["promoted", "rolled-back"])
+    let by_id = |id: u64| {
+        models
+            .iter()
+            .find(|m| m["id"].as_u64() == Some(id))
+            .unwrap_or_else(|| panic!("m{id} in {models:?}"))
+    };
+    assert_eq!(by_id(1)["serving"], true);
+    assert_eq!(by_id(2)["serving"], false);
+    assert_eq!(by_id(2)["parent"], 1);
+    assert!(
+        by_id(2)["decisions"]
+            .as_array()
+            .unwrap()
+            .contains(&serde_json::json!("promoted")),
+        "{models:?}"
     );
-    assert!(models[1]["holdout_loss"].as_f64().unwrap() > 0.0);
+    assert!(by_id(1)["holdout_loss"].as_f64().unwrap() > 0.0);
     let out = env.run(&["models"]);
     assert!(stdout(&out).contains("m000001 *"), "{}", stdout(&out));
     assert_eq!(code(&env.run(&["verify"])), 0);
@@ -527,94 +545,168 @@ fn fresh_checks(env: &Env) -> Vec<serde_json::Value> {
         .collect()
 }
 
+/// Night `n` with `loaves_sold` of every shop in `town` scaled by
+/// `factor`: a strong, designed change in one town (test data derived from
+/// the invented demo).
+fn town_night(env: &Env, n: &str, town: &str, factor: f64) -> PathBuf {
+    let text = fs::read_to_string(night(n)).unwrap();
+    let mut lines = text.lines();
+    let header = lines.next().unwrap();
+    let cols: Vec<&str> = header.split(',').collect();
+    let target = cols.iter().position(|c| *c == "loaves_sold").unwrap();
+    let town_col = cols.iter().position(|c| *c == "town").unwrap();
+    let mut out = format!("{header}\n");
+    for line in lines {
+        let mut fields: Vec<String> = line.split(',').map(String::from).collect();
+        if fields[town_col] == town {
+            let v: f64 = fields[target].parse().unwrap();
+            fields[target] = format!("{}", (v * factor).round());
+        }
+        out.push_str(&fields.join(","));
+        out.push('\n');
+    }
+    let path = env.dir.path().join(format!("{town}-{n}.csv"));
+    fs::write(&path, out).unwrap();
+    path
+}
+
 #[test]
-#[ignore = "pins one outcome of the seeded demo under the row-by-row gate; to be rewritten as a property (issue 16)"]
-fn the_demand_shift_night_is_flagged_by_the_fresh_data_check() {
-    // Night 10 is the first with Corrin's demand 45% higher (demo-data/README.md).
+fn the_fresh_check_flags_a_strong_shift_in_one_town_and_nothing_on_ordinary_nights() {
     let env = demo_with(&["01", "02", "03", "04"]);
     assert_eq!(retrain(&env, &[])["outcome"], "promote");
-    assert_eq!(code(&env.ingest(&[night("09"), night("10")])), 0);
-    let checks = fresh_checks(&env);
-    assert_eq!(checks.len(), 2);
-    let (before, shift) = (&checks[0], &checks[1]);
-    assert_eq!(before["verdict"], "steady", "{before}");
+    // Nights where nothing was designed to change (demo-data/README.md):
+    // new weekdays and the new shop are new conditions, never a flag.
+    assert_eq!(
+        code(&env.ingest(&[night("06"), night("07"), night("08")])),
+        0
+    );
+    for c in fresh_checks(&env) {
+        let verdict = c["verdict"].as_str().unwrap();
+        assert!(
+            ["steady", "new-conditions", "untested"].contains(&verdict),
+            "nothing changed on this night: {c}"
+        );
+        assert!(
+            c["shifted_values"].as_array().is_none_or(|v| v.is_empty()),
+            "{c}"
+        );
+    }
+    // Night 9 with demand in Corrin doubled: the serving model's loss there
+    // is far above the rest of the town column's.
+    let doubled = town_night(&env, "09", "Corrin", 2.0);
+    assert_eq!(code(&env.ingest(&[doubled])), 0);
+    let shift = fresh_checks(&env).pop().unwrap();
     assert_eq!(shift["verdict"], "shifted", "{shift}");
-    assert!(shift["p_shift"].as_f64().unwrap() < 0.05);
+    let values: Vec<&str> = shift["shifted_values"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert!(values.contains(&"town = Corrin"), "{shift}");
+    // Only Corrin's rows moved: no other town, bread or weekday is named.
+    for v in &values {
+        assert!(
+            *v == "town = Corrin" || v.starts_with("shop = Corrin "),
+            "{v} did not change: {shift}"
+        );
+    }
     assert!(
         shift["mean_loss_serving"].as_f64().unwrap()
             > shift["mean_loss_reference"].as_f64().unwrap()
     );
-    // Where it went wrong: the shops of the town whose demand moved.
-    let spots = shift["hotspots"].as_array().unwrap();
-    assert_eq!(spots.len(), 3, "{shift}");
-    for h in spots {
-        assert_eq!(h["column"], "shop");
-        assert!(h["value"].as_str().unwrap().starts_with("Corrin "), "{h}");
-    }
-    // The first model replaced nothing, so nothing is rolled back.
+    // Where it went wrong: the hotspots with most loss are Corrin's.
+    let top = &shift["hotspots"][0];
+    assert!(
+        top["value"].as_str().unwrap().starts_with("Corrin"),
+        "{shift}"
+    );
+    // A shift blames no model: nothing is rolled back.
     assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
     let status = stdout(&env.run(&["status"]));
-    assert!(status.contains("WARNING"), "{status}");
-    assert!(status.contains("shop = Corrin"), "{status}");
+    assert!(
+        status.contains("WARNING") && status.contains("Corrin"),
+        "{status}"
+    );
     // A cycle answers the warning; status stops repeating it.
     retrain(&env, &[]);
     assert!(env.status_json()["summary"]["fresh_check"].is_null());
 }
 
-/// Night `n` with every `loaves_sold` scaled by 1.3: a short festival
-/// (test data derived from the invented demo).
-fn festival_night(env: &Env, n: &str) -> PathBuf {
-    let text = fs::read_to_string(night(n)).unwrap();
-    let mut lines = text.lines();
-    let header = lines.next().unwrap();
-    let target = header.split(',').position(|c| c == "loaves_sold").unwrap();
-    let mut out = format!("{header}\n");
-    for line in lines {
-        let mut fields: Vec<String> = line.split(',').map(String::from).collect();
-        let v: f64 = fields[target].parse().unwrap();
-        fields[target] = format!("{}", (v * 1.3).round());
-        out.push_str(&fields.join(","));
-        out.push('\n');
-    }
-    let path = env.dir.path().join(format!("festival-{n}.csv"));
-    fs::write(&path, out).unwrap();
-    path
+/// Makes the serving model `factor` times worse on the stored holdout rows
+/// (its output shifted up, as an upstream unit slip would) and promotes
+/// that version with the serving model as its predecessor, as if the gate
+/// had passed it: a regression of a known size, whatever the seed.
+fn worse_serving(env: &Env, factor: f64) -> u64 {
+    use tidegate::config::Config;
+    use tidegate::state::{self, StateDir};
+    let config = Config::load(&env.state().join("tidegate.toml")).unwrap();
+    let (mut owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+    tidegate::sim::make_worse(&mut owner, factor, "tester")
+        .unwrap()
+        .0
 }
 
-/// Nights 1–4, then two festival nights; the warm model trained on them
-/// passes the gate (it is far better on the festival rows and not
-/// significantly worse on the older ones) and serves.
-fn festival_promoted(env: &Env, approve: bool) {
-    let files: Vec<PathBuf> = ["01", "02", "03", "04"].iter().map(|n| night(n)).collect();
-    assert_eq!(code(&env.ingest(&files)), 0);
-    let winner = if approve { "await-approval" } else { "promote" };
-    assert_eq!(retrain(env, &[])["outcome"], winner);
-    if approve {
-        assert_eq!(
-            code(&env.run(&["approve", "m000001", "--reason", "first"])),
-            0
-        );
+/// Promotes a copy of the serving model made `factor` times worse (as
+/// [`worse_serving`]) and records, in the same transaction, a fresh-data
+/// monitor that has already seen 30 batches on which its loss was half
+/// again its predecessor's: the evidence is far past
+/// 1 / alpha, so the next fresh check decides on it. The monitor's power
+/// (how many nights real evidence takes) is measured in `gate::monitor` and
+/// `sim`; this sets up what the check must then do. Returns (worse, before).
+fn worse_with_evidence(env: &Env, factor: f64) -> (u64, u64) {
+    use tidegate::config::Config;
+    use tidegate::fresh::{META_MONITOR, MonitorState};
+    use tidegate::gate::monitor::{self, Prior};
+    use tidegate::state::{self, StateDir};
+    let config = Config::load(&env.state().join("tidegate.toml")).unwrap();
+    let (mut owner, _) = state::open(&StateDir::new(env.state()), &config).unwrap();
+    let before = owner.store.serving().unwrap().unwrap();
+    let worse = tidegate::sim::make_worse(&mut owner, factor, "tester").unwrap();
+    // Half the loss again: a log loss ratio of ln 1.5 on every batch.
+    let prior = Prior::new(0.01);
+    let mut observations = Vec::new();
+    for _ in 0..30 {
+        observations.push(monitor::observe(&prior, &observations, 1.5f64.ln(), 1e-4));
     }
-    let fest = [festival_night(env, "08"), festival_night(env, "09")];
-    assert_eq!(code(&env.ingest(&fest)), 0);
-    assert_eq!(retrain(env, &[])["outcome"], winner);
-    if approve {
-        assert_eq!(
-            code(&env.run(&["approve", "m000002", "--reason", "festival"])),
-            0
-        );
-    }
+    let state = MonitorState {
+        serving: worse,
+        previous: Some(before),
+        prior,
+        observations,
+    };
+    // The monitor is written with a second record of the promotion (the
+    // store writes meta only beside a log entry).
+    let event = tidegate::audit::Event::Promoted {
+        cycle: 0,
+        model: worse,
+        previous: Some(before),
+        evidence: tidegate::audit::GateEvidence::without_test(
+            100,
+            1.0,
+            factor,
+            "set up by the test: monitor evidence of a regression".into(),
+        ),
+    };
+    owner
+        .store
+        .record_with_meta(
+            event,
+            "tester",
+            chrono::Utc::now(),
+            &[(META_MONITOR, Some(state.encode()))],
+        )
+        .unwrap();
+    (worse.0, before.0)
 }
 
 #[test]
-#[ignore = "pins one outcome of the seeded demo under the row-by-row gate; to be rewritten as a property (issue 16)"]
 fn a_model_that_does_worse_on_fresh_rows_is_rolled_back_automatically() {
-    let env = Env::new(&repo("demo-data/tidegate.toml"));
-    festival_promoted(&env, false);
-    // Back to normal: the first night is not yet conclusive, the second is.
-    assert_eq!(code(&env.ingest(&[night("10")])), 0);
-    assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
-    let out = env.run(&["--json", "ingest", night("11").to_str().unwrap()]);
+    let env = demo_with(&["01", "02", "03", "04"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    let (worse, before) = worse_with_evidence(&env, 1.5);
+    // Night 8 is a Monday: every row is a condition both models know.
+    let out = env.run(&["--json", "ingest", night("08").to_str().unwrap()]);
     assert_eq!(code(&out), 0, "{}", stderr(&out));
     let answer: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
     assert_eq!(answer["fresh_check"]["verdict"], "regressed", "{answer}");
@@ -623,45 +715,76 @@ fn a_model_that_does_worse_on_fresh_rows_is_rolled_back_automatically() {
     assert_eq!(rb.len(), 1);
     assert_eq!(
         (rb[0]["from"].as_u64(), rb[0]["to"].as_u64()),
-        (Some(2), Some(1))
+        (Some(worse), Some(before))
     );
     assert_eq!(rb[0]["how"], "automatic");
     let ev = &rb[0]["evidence"];
-    assert_eq!(ev["previous"], 1);
-    assert!(ev["p_regression"].as_f64().unwrap() < 0.05, "{ev}");
-    assert!(ev["mean_loss_serving"].as_f64().unwrap() > ev["mean_loss_previous"].as_f64().unwrap());
+    assert_eq!(ev["previous"].as_u64(), Some(before));
+    assert!(
+        ev["evidence"].as_f64().unwrap() >= ev["evidence_needed"].as_f64().unwrap(),
+        "{ev}"
+    );
+    // The night's own rows agree: the version made worse did worse on them.
+    assert!(
+        ev["mean_loss_serving"].as_f64().unwrap() > ev["mean_loss_previous"].as_f64().unwrap(),
+        "{ev}"
+    );
     assert_eq!(
         fs::read_to_string(env.state().join("serving")).unwrap(),
-        "m000001\n"
+        format!("m{before:06}\n")
     );
-    // m000001 now serves by a rollback: the next batch has nothing to
+    // The model serves again by a rollback: the next batch has nothing to
     // compare it with, so there is no flip back.
-    assert_eq!(code(&env.ingest(&[night("12")])), 0);
+    assert_eq!(code(&env.ingest(&[night("09")])), 0);
     let last = fresh_checks(&env).pop().unwrap();
-    assert_eq!(last["serving"], 1);
+    assert_eq!(last["serving"].as_u64(), Some(before));
     assert!(last["previous"].is_null(), "{last}");
     assert_eq!(env.log_json(&["--kind", "rolled-back"]).len(), 1);
     assert_eq!(code(&env.run(&["verify"])), 0);
 }
 
 #[test]
-#[ignore = "pins one outcome of the seeded demo under the row-by-row gate; to be rewritten as a property (issue 16)"]
 fn in_approval_mode_a_regression_is_reported_not_acted_on() {
     let env = approval_env();
-    festival_promoted(&env, true);
-    assert_eq!(code(&env.ingest(&[night("10"), night("11")])), 0);
+    let files: Vec<PathBuf> = ["01", "02", "03", "04"].iter().map(|n| night(n)).collect();
+    assert_eq!(code(&env.ingest(&files)), 0);
+    assert_eq!(retrain(&env, &[])["outcome"], "await-approval");
+    assert_eq!(
+        code(&env.run(&["approve", "m000001", "--reason", "first"])),
+        0
+    );
+    let (worse, _) = worse_with_evidence(&env, 1.5);
+    assert_eq!(code(&env.ingest(&[night("08")])), 0);
     let last = fresh_checks(&env).pop().unwrap();
     assert_eq!(last["verdict"], "regressed", "{last}");
+    // Reported, not acted on: the same model serves, no rollback entry.
     assert!(env.log_json(&["--kind", "rolled-back"]).is_empty());
     assert_eq!(
         fs::read_to_string(env.state().join("serving")).unwrap(),
-        "m000002\n"
+        format!("m{worse:06}\n")
     );
     let status = stdout(&env.run(&["status"]));
     assert!(
         status.contains("WARNING") && status.contains("regressed"),
         "{status}"
     );
+}
+
+/// What the monitor needs today to catch a genuinely worse model on the
+/// demo nights, as a measurement (see the report of this change).
+#[test]
+#[ignore = "measurement: the monitor does not yet catch a model 3 times worse within the 4 nights both models know"]
+fn a_model_three_times_worse_is_rolled_back_within_four_nights() {
+    let env = demo_with(&["01", "02", "03", "04"]);
+    assert_eq!(retrain(&env, &[])["outcome"], "promote");
+    worse_serving(&env, 3.0);
+    // Nights 6 and 7 bring Saturday and Sunday, which neither model knows.
+    for n in ["06", "07", "08", "09", "10", "11"] {
+        assert_eq!(code(&env.ingest(&[night(n)])), 0);
+        let c = fresh_checks(&env).pop().unwrap();
+        println!("night {n}: {} evidence {}", c["verdict"], c["evidence"]);
+    }
+    assert_eq!(env.log_json(&["--kind", "rolled-back"]).len(), 1);
 }
 
 #[test]

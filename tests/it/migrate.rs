@@ -119,7 +119,7 @@ fn a_changed_schema_is_refused_until_migrated_then_a_cold_model_takes_over() {
     assert_eq!(code(&out), 0, "{}", stderr(&out));
     let r: serde_json::Value = serde_json::from_str(stdout(&out).trim()).unwrap();
     assert_eq!(r["candidates"][0]["run"], "cold", "{r}");
-    assert_eq!(r["baseline"], "trivial predictor");
+    assert_eq!(r["compared_with"], "trivial predictor");
     assert_eq!(r["outcome"], "promote", "{r}");
     let out = env.run(&[
         "predict",

@@ -303,12 +303,12 @@ fn an_inbox_file_the_daemon_cannot_read_stays_until_it_can() {
     // Not lost, not refused as bad data, nothing logged or stored.
     assert!(published.exists());
     assert_eq!(
-        fs::read_dir(env.state().join("rejected")).unwrap().count(),
+        fs::read_dir(env.state().join("refused")).unwrap().count(),
         0,
         "set aside as refused"
     );
     assert!(
-        env.log_json(&["--kind", "batch-rejected,batch-accepted"])
+        env.log_json(&["--kind", "batch-refused,batch-accepted"])
             .is_empty()
     );
     // Readable again: taken on the next look, without a restart.

@@ -117,13 +117,14 @@ fn assert_importance(html: &str) {
             "rain_mm",
             "shop",
             "temp_c",
+            "town",
             "weekday"
         ],
         "every input column once, the target never"
     );
     // Six batches are stored (night 5 was refused), so every row has an
     // interval ("a to b"), none says "one batch".
-    assert_eq!(table.matches(" to ").count(), 7, "{table}");
+    assert_eq!(table.matches(" to ").count(), 8, "{table}");
     assert!(!table.contains("one batch"));
 }
 
@@ -343,4 +344,72 @@ fn report_renders_in_headless_chromium() {
     // A blank or single-colour page has one colour; charts, the heat map
     // and text give many.
     assert!(colours > 50, "only {colours} colours in the screenshot");
+}
+
+/// The `<section id="…">` of the page.
+fn section<'a>(html: &'a str, id: &str) -> &'a str {
+    let start = html
+        .find(&format!("<section id=\"{id}\">"))
+        .unwrap_or_else(|| panic!("no section {id}"));
+    &html[start..start + html[start..].find("</section>").unwrap()]
+}
+
+/// The `<tr …>` row of a table whose first cell is `first`, or `first`
+/// followed by " (serving)".
+fn row<'a>(table: &'a str, first: &str) -> &'a str {
+    let at = [
+        format!("<td>{first}</td>"),
+        format!("<td>{first} (serving)</td>"),
+    ]
+    .iter()
+    .find_map(|cell| table.find(cell.as_str()))
+    .unwrap_or_else(|| panic!("no row {first}"));
+    let start = table[..at].rfind("<tr").unwrap();
+    &table[start..at + table[at..].find("</tr>").unwrap()]
+}
+
+#[test]
+fn report_names_the_batches_each_model_saw_and_the_models_a_set_aside_batch_reached() {
+    let env = demo_state();
+    let (_, before) = write_report(&env, &[]);
+    let models = section(&before, "holdout");
+    // m000001 (cold, nights 1–4) and m000002 (warm, also nights 6–7:
+    // batches 5–6) read every batch stored before them.
+    assert!(models.contains("<th>batches seen</th>"), "{models}");
+    let m1 = row(models, "m000001");
+    assert!(m1.contains("<td>b000001–b000004</td>"), "{m1}");
+    let m2 = row(models, "m000002");
+    assert!(m2.contains("<td>b000001–b000006</td>"), "{m2}");
+    assert!(!before.contains("class=\"saw-aside\""));
+    assert!(!before.contains("Batches set aside"));
+    assert!(before.contains("stored holdout rows from 6 batches"));
+
+    let out = env.run(&["set-aside", "b000002", "--reason", "till export was broken"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let (_, html) = write_report(&env, &[]);
+    assert_self_contained(&html);
+    let models = section(&html, "holdout");
+    for m in ["m000001", "m000002"] {
+        let r = row(models, m);
+        assert!(r.starts_with("<tr class=\"saw-aside\">"), "{r}");
+        assert!(r.contains("<td>saw b000002 (set aside)</td>"), "{r}");
+    }
+    // The batch is listed with its file, who set it aside and why, and the
+    // models that trained on it.
+    let rows = section(&html, "rows");
+    let aside = &rows[rows.find("<table class=\"aside\">").expect("aside table")..];
+    let b2 = row(aside, "b000002");
+    assert!(b2.contains("<td>night-02.csv</td>"), "{b2}");
+    assert!(b2.contains("by tester at "), "{b2}");
+    assert!(b2.contains("till export was broken"), "{b2}");
+    assert!(
+        b2.contains("<td>m000001 directly, m000002 directly</td>"),
+        "{b2}"
+    );
+    // Its rows are no longer scored for the input influence.
+    assert!(
+        html.contains("stored holdout rows from 5 batches"),
+        "{}",
+        section(&html, "influence")
+    );
 }

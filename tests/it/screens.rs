@@ -85,7 +85,7 @@ fn screens_match_their_snapshots() {
         ("models", &["models"][..]),
         (
             "log",
-            &["log", "--kind", "batch-rejected,promoted,baselines-scored"][..],
+            &["log", "--kind", "batch-refused,promoted,baselines-scored"][..],
         ),
     ] {
         let out = env.run(args);

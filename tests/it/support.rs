@@ -50,6 +50,15 @@ impl Env {
         self.command().args(args).output().unwrap()
     }
 
+    /// Runs a command that must be refused: exit code `exit`, and `needle`
+    /// in what it printed on stderr.
+    pub fn refused(&self, args: &[&str], exit: i32, needle: &str) -> Output {
+        let out = self.run(args);
+        assert_eq!(code(&out), exit, "{args:?}: {}", stderr(&out));
+        assert!(stderr(&out).contains(needle), "{args:?}: {}", stderr(&out));
+        out
+    }
+
     pub fn run_with_config(&self, config: &Path, args: &[&str]) -> Output {
         self.command()
             .arg("--config")

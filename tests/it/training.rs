@@ -274,6 +274,9 @@ fn cfg(backend: Backend) -> TrainingConfig {
         backend,
         batch_size: 32,
         learning_rate: 3e-3,
+        // Warm runs continue at the cold rate: these tests compare a
+        // continued run with an uninterrupted one.
+        warm_learning_rate: None,
         cold_epochs: 5,
         warm_epochs: 5,
         patience: 0,
