@@ -5,6 +5,7 @@ mod backup;
 mod crash;
 mod daemon;
 mod demo;
+mod endpoint;
 mod faults;
 mod former_names;
 mod holes;
