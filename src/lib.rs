@@ -28,6 +28,7 @@ pub mod intake;
 pub mod lifecycle;
 pub mod model;
 pub mod provenance;
+pub mod records;
 pub mod refold;
 pub mod report;
 pub mod rng;
