@@ -12,6 +12,7 @@ use std::path::{Path, PathBuf};
 use serde::{Deserialize, Serialize};
 
 use crate::config::ColumnKind;
+use crate::records::Records;
 use crate::schema::{self, MISSING_CODE, RowMatrix, Schema, Vocabularies};
 
 /// At most this many problems are listed for one refused file.
@@ -423,17 +424,12 @@ fn parse_rows_in_parts(
     }
     // A UTF-8 byte order mark is allowed and skipped.
     let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .from_reader(bytes);
+    let mut reader = Records::new(bytes);
     let mut header = csv::ByteRecord::new();
-    match reader.read_byte_record(&mut header) {
-        Ok(false) => return Err(Refusal::whole_file("the file has no header line")),
-        Err(e) => return Err(Refusal::header(format!("cannot read the header: {e}"))),
-        Ok(true) => {}
+    if !reader.read(&mut header) {
+        return Err(Refusal::whole_file("the file has no header line"));
     }
-    let body_start = usize::try_from(reader.position().byte()).expect("offset fits in memory");
+    let body_start = reader.consumed();
     let optional_target = (purpose == Purpose::Score).then_some(schema.target);
     let order = match map_header(&header, schema, optional_target) {
         Ok(o) => o,
@@ -454,11 +450,10 @@ fn parse_rows_in_parts(
     let parts = if context.odd_quotes { 1 } else { parts.max(1) };
     let cuts = cut_points(bytes, body_start, parts, quotes > 0);
     let results: Vec<Part> = if cuts.len() == 2 {
-        vec![parse_part(
-            &bytes[cuts[0]..cuts[1]],
-            line_of(bytes, cuts[0]),
-            &context,
-        )]
+        // One part: the header's reader goes on through the body, so a
+        // small input (a prediction request) builds one reader, not two.
+        // Its positions count from the start of `bytes`, line 1.
+        vec![parse_part(reader, bytes, 1, &context)]
     } else {
         std::thread::scope(|scope| {
             let handles: Vec<_> = cuts
@@ -466,7 +461,10 @@ fn parse_rows_in_parts(
                 .map(|w| {
                     let (from, to) = (w[0], w[1]);
                     let context = &context;
-                    scope.spawn(move || parse_part(&bytes[from..to], line_of(bytes, from), context))
+                    scope.spawn(move || {
+                        let part = &bytes[from..to];
+                        parse_part(Records::new(part), part, line_of(bytes, from), context)
+                    })
                 })
                 .collect();
             handles
@@ -543,16 +541,15 @@ fn first_non_utf8(rec: &csv::ByteRecord) -> Option<(usize, usize)> {
         .find_map(|(i, f)| std::str::from_utf8(f).err().map(|e| (i, e.valid_up_to())))
 }
 
-fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
+/// Parses the records `reader` yields from `bytes` (the part, or the whole
+/// input with the header already read); `first_line` is the line number
+/// of `bytes`' first byte.
+fn parse_part(reader: Records<'_>, bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
     let schema = cx.schema;
     let limits = cx.limits;
     let purpose = cx.purpose;
     let n_fields = cx.n_fields;
     let odd_quotes = cx.odd_quotes;
-    let reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .from_reader(bytes);
     let width = schema.width();
     let mut part = Part {
         rows: RowMatrix::with_capacity(width, count_byte(bytes, b'\n') + 1),
@@ -598,22 +595,10 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
 
     let mut reader = reader;
     let mut rec = csv::ByteRecord::new();
-    loop {
-        match reader.read_byte_record(&mut rec) {
-            Ok(true) => {}
-            Ok(false) => break,
-            Err(e) => {
-                let line = e.position().map_or(0, &mut at_line);
-                problems.push(Problem {
-                    line,
-                    column: None,
-                    field: None,
-                    value: None,
-                    reason: format!("cannot read the row: {e}"),
-                });
-                continue;
-            }
-        }
+    // Records of bytes in memory cannot fail to be read: a quote never
+    // closed runs to the end of the input, and the row-length check
+    // below names it.
+    while reader.read(&mut rec) {
         let line = rec.position().map_or(0, &mut at_line);
         if rec.len() == 1 && rec.get(0).is_some_and(|f| f.is_empty()) {
             // A blank line carries no row.
@@ -742,13 +727,23 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
                     } else {
                         // A refused file is dropped whole, so codes handed
                         // out here for a bad row never reach the store.
-                        let vocab = vocabs[ci]
-                            .get_or_insert_with(|| cx.stored.get(&ci).cloned().unwrap_or_default());
-                        let (code, added) = vocab.code_or_insert(t);
-                        if added {
-                            new_categories.entry(ci).or_default().push(t.to_string());
-                        }
-                        cells[ci] = code;
+                        // A stored value keeps its code in the part's
+                        // vocabulary too, so it is looked up without a copy
+                        // of the stored one; only a new value needs the copy.
+                        let known = cx.stored.get(&ci).and_then(|v| v.code(t));
+                        cells[ci] = match known {
+                            Some(code) => code,
+                            None => {
+                                let vocab = vocabs[ci].get_or_insert_with(|| {
+                                    cx.stored.get(&ci).cloned().unwrap_or_default()
+                                });
+                                let (code, added) = vocab.code_or_insert(t);
+                                if added {
+                                    new_categories.entry(ci).or_default().push(t.to_string());
+                                }
+                                code
+                            }
+                        };
                     }
                 }
             }
@@ -770,8 +765,11 @@ fn parse_part(bytes: &[u8], first_line: u64, cx: &Context<'_>) -> Part {
                 ColumnKind::Category => match cells[ci] {
                     MISSING_CODE => key.push(2),
                     code => {
+                        // The part's vocabulary exists once a new value
+                        // came; before that the stored one has every code.
                         let v = vocabs[ci]
                             .as_ref()
+                            .or_else(|| cx.stored.get(&ci))
                             .and_then(|v| v.value(code))
                             .unwrap_or_default();
                         key.push(1);
