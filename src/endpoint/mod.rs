@@ -346,7 +346,7 @@ async fn handle(req: Request<Incoming>, slot: &Slot, limits: Limits) -> Response
 /// Scores a request body with one model: the answer, or why not.
 pub fn predict(scorer: &Scorer, body: &[u8], max_rows: usize) -> Result<Value, Refused> {
     let rows = request::rows_to_csv(body, max_rows)?;
-    let scored = match scorer.score(&rows.bytes) {
+    let scored = match scorer.score_direct(&rows.bytes) {
         Err(e) => return Err(whole(500, format!("model {} failed: {e}", scorer.id))),
         Ok(Err(refusal)) => return Err(rows.refusal(&refusal)),
         Ok(Ok(s)) => s,

@@ -602,3 +602,94 @@ fn scoring_on_several_threads_matches_one_thread_exactly() {
     assert_eq!(threaded.len(), n);
     assert_eq!(threaded, one);
 }
+
+#[test]
+fn the_direct_forward_pass_equals_burns() {
+    // Every activation, a regression and a classification head, one-hot
+    // inputs (mostly zero) beside numbers, and rows one at a time as the
+    // endpoint sends them or several at once.
+    let codes: Vec<u32> = (0..40).map(|i| i % 5).collect();
+    let rows = mixed_rows(&codes);
+    for activation in [Activation::Relu, Activation::Tanh, Activation::Sigmoid] {
+        for (task, outputs) in [(Task::Regression, 1), (Task::Classification, 3)] {
+            let spec = FeatureSpec {
+                task,
+                outputs,
+                ..mixed_spec(4)
+            };
+            let model = Model::new(
+                spec,
+                &config(vec![64, 64], activation, 1.0),
+                TargetScale {
+                    mean: 5.6,
+                    std: 0.8,
+                },
+                Backend::Flex,
+                11,
+            )
+            .expect("valid shape");
+            let direct = model.direct();
+            let burn = model.predict(&rows, Backend::Flex).expect("width");
+            let all = model.predict_direct(&direct, &rows).expect("width");
+            let one_by_one: Vec<Predictions> = (0..rows.n_rows())
+                .map(|r| {
+                    let cells = rows.cells()[r * 4..(r + 1) * 4].to_vec();
+                    let row = RowMatrix::from_cells(4, cells);
+                    model.predict_direct(&direct, &row).expect("width")
+                })
+                .collect();
+            let close = |a: f32, b: f32| (a - b).abs() <= 1e-5 * a.abs().max(b.abs()).max(1.0);
+            match (&burn, &all) {
+                (Predictions::Regression { values: a }, Predictions::Regression { values: b }) => {
+                    assert_eq!(a.len(), 40);
+                    for (r, (p, q)) in a.iter().zip(b).enumerate() {
+                        assert!(close(*p, *q), "{activation:?} row {r}: {p} vs {q}");
+                        let Predictions::Regression { values: one } = &one_by_one[r] else {
+                            panic!("regression");
+                        };
+                        assert_eq!(one[0], *q, "one row alone gives the same value");
+                    }
+                }
+                (
+                    Predictions::Classification {
+                        classes: ca,
+                        probabilities: pa,
+                        ..
+                    },
+                    Predictions::Classification {
+                        classes: cb,
+                        probabilities: pb,
+                        ..
+                    },
+                ) => {
+                    assert_eq!(ca, cb, "{activation:?}: the same classes");
+                    for (p, q) in pa.iter().zip(pb) {
+                        assert!(close(*p, *q), "{activation:?}: {p} vs {q}");
+                    }
+                }
+                _ => panic!("tasks differ"),
+            }
+        }
+    }
+    // A network built for another width is refused, never misread.
+    let narrow = Model::new(
+        mixed_spec(2),
+        &config(vec![8], Activation::Relu, 1.0),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        1,
+    )
+    .expect("valid shape");
+    let wide = Model::new(
+        mixed_spec(4),
+        &config(vec![8], Activation::Relu, 1.0),
+        TargetScale::IDENTITY,
+        Backend::Flex,
+        1,
+    )
+    .expect("valid shape");
+    assert!(matches!(
+        wide.predict_direct(&narrow.direct(), &rows),
+        Err(ModelError::FeatureWidth { .. })
+    ));
+}
