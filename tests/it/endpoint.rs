@@ -293,6 +293,9 @@ fn the_endpoint_is_off_unless_configured_and_waits_for_a_model() {
     assert_eq!(code, 0);
 }
 
+/// A bad request: body, status, row, column, words in the reason.
+type BadCase<'a> = (Value, u16, Option<u64>, Option<&'a str>, &'a str);
+
 #[test]
 fn bad_requests_get_a_4xx_naming_the_row_column_and_reason() {
     let env = env_with_endpoint(
@@ -307,8 +310,7 @@ fn bad_requests_get_a_4xx_naming_the_row_column_and_reason() {
         bad[column] = value;
         json!({"rows": [ok.clone(), bad]})
     };
-    // (body, status, row, column, words in the reason)
-    let cases: Vec<(Value, u16, Option<u64>, Option<&str>, &str)> = vec![
+    let cases: Vec<BadCase> = vec![
         (
             with("temp", json!("warm")),
             400,
