@@ -15,7 +15,8 @@
 #   6. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
 #   7. prediction endpoint tests/it/endpoint.rs `load` (ignored test): requests/s,
 #                                                    p50/p99 at 1 and 32 rows, idle and
-#                                                    while cycles run and the model moves
+#                                                    while cycles run and the model moves;
+#                      tests/it/onnx.rs `export_time`: the ONNX export against the cycle
 #
 # Output goes to the terminal and to $OUT (default ops/bench/last-run.txt).
 # Figures vary with the machine's load: `uptime` is printed before each
@@ -64,4 +65,5 @@ cargo build --release --examples --bin tidegate
   part "7. prediction endpoint on loopback"
   if [ "$MODE" = quick ]; then export TIDEGATE_LOAD_SECONDS=3; fi
   cargo test --release --test it endpoint::load -- --ignored --nocapture
+  cargo test --release --test it onnx::export_time -- --ignored --nocapture
 } 2>&1 | tee "$OUT"

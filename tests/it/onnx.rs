@@ -550,3 +550,42 @@ fn a_crash_or_full_disk_before_the_export_is_repaired_at_the_next_start() {
         assert_eq!(leftovers.len(), 2, "file and manifest only: {leftovers:?}");
     }
 }
+
+/// The export's cost beside the cycle it follows (benchmark, not a test
+/// of speed): `cargo test --release --test it onnx::export_time --
+/// --ignored --nocapture`. A cycle trains the default network on four demo
+/// nights (the reference, timed through the real binary); then the
+/// serving model is exported 20 times in this process, each time exactly
+/// what follows a promotion: load and verify the checkpoint, build the
+/// graph, write the file and its manifest atomically with fsyncs.
+#[test]
+#[ignore]
+fn export_time() {
+    let dir = tempfile::tempdir().unwrap();
+    let config_path = export_config(dir.path());
+    let env = Env::new(&config_path);
+    let out = env.ingest(&[night("01"), night("02"), night("03"), night("04")]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let t = std::time::Instant::now();
+    let out = env.run(&["retrain"]);
+    let cycle = t.elapsed().as_secs_f64() * 1e3;
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let config = tidegate::config::Config::load(&config_path).unwrap();
+    let state = tidegate::state::StateDir::new(env.state());
+    let id: tidegate::ids::ModelId = serving(&env).to_string().parse().unwrap();
+    let target = dir.path().join("bench.onnx");
+    let mut times: Vec<f64> = (0..20)
+        .map(|_| {
+            let t = std::time::Instant::now();
+            tidegate::export::export_to(&state, &config, id, &target).unwrap();
+            t.elapsed().as_secs_f64() * 1e3
+        })
+        .collect();
+    times.sort_by(f64::total_cmp);
+    let (median, worst) = (times[times.len() / 2], times[times.len() - 1]);
+    println!(
+        "export of the serving model (default network, demo columns): median {median:.1} ms, slowest {worst:.1} ms of 20; the cycle before it {cycle:.0} ms; ratio median/cycle {:.4}",
+        median / cycle
+    );
+    assert!(fs::metadata(&target).unwrap().len() > 0);
+}
