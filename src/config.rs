@@ -782,42 +782,41 @@ impl Config {
                 format!("train_at {at:?} must be a time of day as \"HH:MM\" (24-hour)"),
             );
         }
-        if let Some(addr) = &d.metrics_addr {
+        // Both HTTP endpoints: an IP address and port, loopback unless
+        // exposing it was asked for (neither has authentication).
+        let endpoints = [
+            (
+                "metrics_addr",
+                &d.metrics_addr,
+                d.metrics_allow_remote,
+                "the endpoint",
+                EXAMPLE_METRICS_ADDR,
+            ),
+            (
+                "predict_addr",
+                &d.predict_addr,
+                d.predict_allow_remote,
+                "the prediction endpoint",
+                "127.0.0.1:9188",
+            ),
+        ];
+        for (key, addr, allow_remote, what, example) in endpoints {
+            let Some(addr) = addr else { continue };
             match addr.parse::<std::net::SocketAddr>() {
                 Err(_) => {
                     return fail(
-                        whole("metrics_addr"),
+                        whole(key),
                         format!(
-                            "metrics_addr {addr:?} must be an IP address and port, such as {EXAMPLE_METRICS_ADDR:?}"
+                            "{key} {addr:?} must be an IP address and port, such as {example:?}"
                         ),
                     );
                 }
-                Ok(a) if !a.ip().is_loopback() && !d.metrics_allow_remote => {
+                Ok(a) if !a.ip().is_loopback() && !allow_remote => {
+                    let allow = key.replace("_addr", "_allow_remote");
                     return fail(
-                        whole("metrics_addr"),
+                        whole(key),
                         format!(
-                            "metrics_addr {addr:?} is not a loopback address; the endpoint has no authentication, so use 127.0.0.1 or ::1 (or set metrics_allow_remote = true to expose it anyway)"
-                        ),
-                    );
-                }
-                Ok(_) => {}
-            }
-        }
-        if let Some(addr) = &d.predict_addr {
-            match addr.parse::<std::net::SocketAddr>() {
-                Err(_) => {
-                    return fail(
-                        whole("predict_addr"),
-                        format!(
-                            "predict_addr {addr:?} must be an IP address and port, such as \"127.0.0.1:9188\""
-                        ),
-                    );
-                }
-                Ok(a) if !a.ip().is_loopback() && !d.predict_allow_remote => {
-                    return fail(
-                        whole("predict_addr"),
-                        format!(
-                            "predict_addr {addr:?} is not a loopback address; the prediction endpoint has no authentication, so use 127.0.0.1 or ::1 (or set predict_allow_remote = true to expose it anyway)"
+                            "{key} {addr:?} is not a loopback address; {what} has no authentication, so use 127.0.0.1 or ::1 (or set {allow} = true to expose it anyway)"
                         ),
                     );
                 }

@@ -196,6 +196,19 @@ fn model_ids(state: &Path) -> Vec<String> {
     ids
 }
 
+/// A new batch and a cycle (through the daemon when one runs), so that a
+/// second model exists to move to; every model id, sorted.
+fn with_second_model(env: &Env) -> Vec<String> {
+    let file = env.dir.path().join("more.csv");
+    std::fs::write(&file, tiny_rows(600, 200)).unwrap();
+    assert_eq!(code(&env.ingest(&[file])), 0);
+    let out = env.run(&["retrain"]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let models = model_ids(&env.state());
+    assert!(models.len() >= 2, "{models:?}");
+    models
+}
+
 fn serving(env: &Env) -> String {
     std::fs::read_to_string(env.state().join("serving"))
         .unwrap()
@@ -237,13 +250,8 @@ fn answers_match_predict_and_name_the_serving_model() {
     assert_eq!(status, 200, "{new_town}");
     assert_eq!(new_town["unseen"]["town"][0], "Dunmore");
     // A rollback through the CLI moves the endpoint with it: first a
-    // second model, from a new batch and a cycle run through the daemon.
-    let file = env.dir.path().join("more.csv");
-    std::fs::write(&file, tiny_rows(600, 200)).unwrap();
-    assert_eq!(code(&env.ingest(&[file])), 0);
-    let out = env.run(&["retrain"]);
-    assert_eq!(code(&out), 0, "{}", stderr(&out));
-    let models = model_ids(&env.state());
+    // second model, from a cycle run through the daemon.
+    let models = with_second_model(&env);
     let other = models
         .iter()
         .find(|m| **m != serving(&env))
@@ -529,13 +537,7 @@ fn check_answers(env: &Env, tally: &Tally) {
 fn moves_of_the_serving_model_drop_no_request() {
     let env = env_with_endpoint("");
     // A second model to move between.
-    let file = env.dir.path().join("more.csv");
-    std::fs::write(&file, tiny_rows(600, 200)).unwrap();
-    assert_eq!(code(&env.ingest(&[file])), 0);
-    let out = env.run(&["retrain"]);
-    assert_eq!(code(&out), 0, "{}", stderr(&out));
-    let models = model_ids(&env.state());
-    assert!(models.len() >= 2, "{models:?}");
+    let models = with_second_model(&env);
     let watch = Watch::start(&env);
     let addr = endpoint_addr(&env);
     let stop = Arc::new(AtomicBool::new(false));
@@ -645,11 +647,7 @@ fn load() {
         .unwrap_or(10.0);
     // Cycles long enough to overlap the measurement.
     let env = env_with_endpoint("");
-    let file = env.dir.path().join("more.csv");
-    std::fs::write(&file, tiny_rows(600, 200)).unwrap();
-    assert_eq!(code(&env.ingest(&[file])), 0);
-    assert_eq!(code(&env.run(&["retrain"])), 0);
-    let models = model_ids(&env.state());
+    let models = with_second_model(&env);
     let watch = Watch::start(&env);
     let addr = endpoint_addr(&env);
     let next_batch = std::cell::Cell::new(1000usize);
