@@ -68,6 +68,23 @@ pub struct Baselines {
     pub cycle: u64,
     pub trivial_loss: f64,
     pub ridge_loss: Option<f64>,
+    /// The boosted trees (absent in cycles logged before they existed).
+    pub trees_loss: Option<f64>,
+    /// The model serving when the cycle scored, and its loss.
+    pub serving: Option<(ModelId, f64)>,
+    /// One-sided p that the trees do better, per network scored.
+    pub trees_p: BTreeMap<ModelId, f64>,
+}
+
+/// A network beside the boosted trees of one cycle.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VersusTrees {
+    pub cycle: u64,
+    pub network_loss: f64,
+    pub trees_loss: f64,
+    /// How much better the trees do, when that is worth telling
+    /// (`trees::advice`).
+    pub trees_better_by: Option<f64>,
 }
 
 /// What happened to one arriving file.
@@ -132,6 +149,35 @@ impl Timeline {
     }
 }
 
+impl Timeline {
+    /// `model` beside the boosted trees of the last cycle that scored both
+    /// (as a candidate of that cycle or as the model serving then).
+    pub fn versus_trees(&self, model: ModelId) -> Option<VersusTrees> {
+        self.baselines.iter().rev().find_map(|b| {
+            let trees_loss = b.trees_loss?;
+            let network_loss = match b.serving {
+                Some((m, l)) if m == model => l,
+                _ => {
+                    self.candidates
+                        .iter()
+                        .find(|c| c.model == model && c.cycle == b.cycle)?
+                        .holdout_loss
+                }
+            };
+            Some(VersusTrees {
+                cycle: b.cycle,
+                network_loss,
+                trees_loss,
+                trees_better_by: crate::trees::advice(
+                    network_loss,
+                    trees_loss,
+                    b.trees_p.get(&model).copied(),
+                ),
+            })
+        })
+    }
+}
+
 /// Builds the report's series from log entries (oldest first).
 pub fn timeline(entries: &[Entry]) -> Timeline {
     let mut t = Timeline::default();
@@ -157,11 +203,18 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                 cycle,
                 trivial_loss,
                 ridge_loss,
+                serving,
+                serving_loss,
+                trees_loss,
+                trees_versus,
                 ..
             } => t.baselines.push(Baselines {
                 cycle: *cycle,
                 trivial_loss: *trivial_loss,
                 ridge_loss: *ridge_loss,
+                trees_loss: *trees_loss,
+                serving: serving.zip(*serving_loss),
+                trees_p: trees_versus.iter().map(|v| (v.model, v.p)).collect(),
             }),
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
@@ -430,6 +483,13 @@ mod tests {
                 ridge_problem: None,
                 serving: None,
                 serving_loss: None,
+                trees_loss: Some(3.0),
+                trees_rows: Some(300),
+                trees_problem: None,
+                trees_versus: vec![crate::audit::TreesVersus {
+                    model: ModelId(1),
+                    p: 0.01,
+                }],
             },
             Event::Promoted {
                 cycle: 1,
@@ -473,6 +533,13 @@ mod tests {
         assert_eq!(t.candidates[1].holdout_loss, 3.0);
         assert_eq!(t.baselines.len(), 1);
         assert_eq!(t.baselines[0].ridge_loss, Some(5.0));
+        // Model 1 (loss 4.0) against trees at 3.0 with p = 0.01 in its
+        // own cycle: 25% better, worth telling; model 2 was never scored
+        // beside the trees.
+        let v = t.versus_trees(ModelId(1)).unwrap();
+        assert_eq!((v.cycle, v.network_loss, v.trees_loss), (1, 4.0, 3.0));
+        assert!((v.trees_better_by.unwrap() - 0.25).abs() < 1e-12);
+        assert_eq!(t.versus_trees(ModelId(2)), None);
         let stored: Vec<u64> = t.files.iter().map(|f| f.rows_stored).collect();
         assert_eq!(stored, vec![10, 10, 15, 15]);
         assert!(matches!(

@@ -22,4 +22,5 @@ mod support;
 mod suspect;
 mod tamper;
 mod training;
+mod trees;
 mod wine_stream;
