@@ -12,7 +12,9 @@
 #   3. warm versus cold    examples/bench_warm.rs    time to quality
 #   4. cycle scaling       ops/bench/scaling.sh      100k / 1M / 5M stores, RSS
 #   5. gate on 1M rows     examples/bench_gate_rows.rs
-#   6. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
+#   6. boosted trees       examples/bench_trees.rs   fit + score against ridge,
+#                                                    20k and 100k stored rows
+#   7. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
 #
 # Output goes to the terminal and to $OUT (default ops/bench/last-run.txt).
 # Figures vary with the machine's load: `uptime` is printed before each
@@ -55,6 +57,9 @@ cargo build --release --examples --bin tidegate
   part "5. the gate's decision on 1M paired rows"
   "$TARGET/release/examples/bench_gate_rows"
 
-  part "6. PyTorch peer (optional)"
+  part "6. the boosted-tree reference model"
+  "$TARGET/release/examples/bench_trees"
+
+  part "7. PyTorch peer (optional)"
   python3 ops/bench/peer_pytorch.py || true
 } 2>&1 | tee "$OUT"

@@ -476,8 +476,9 @@ fn trees_lines(v: &VersusTrees) -> String {
     match (v.trees_better_by, v.p) {
         (Some(share), Some(p)) => {
             out.push_str(&format!(
-                "(trees {:.1}% lower, one-sided p = {p:.3})\n",
-                100.0 * share
+                "(trees {:.1}% lower, one-sided {})\n",
+                100.0 * share,
+                p_text(p)
             ));
             out.push_str(&format!(
                 "advice      boosted trees do {:.0}% better than the network on cycle {}'s holdout \
@@ -680,7 +681,7 @@ mod tests {
         two.push(scored(2, Some((1, 0.5)), 0.4, vec![(1, 0.3)]));
         let v = fold(two).versus_trees.unwrap();
         assert_eq!((v.cycle, v.trees_better_by), (2, None));
-        assert!(!trees_lines(&v).contains("advice"));
+        assert!(!trees_lines(&v).contains("advice      "));
         // A clear but small gap (4%) is not advice either.
         let mut three = one;
         three.push(scored(2, Some((1, 0.5)), 0.48, vec![(1, 0.001)]));
