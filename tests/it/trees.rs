@@ -110,6 +110,15 @@ fn trees_that_do_clearly_better_are_advice_and_the_network_keeps_serving() {
             && line.contains("better than m000001"),
         "{log}"
     );
+    // The report draws the trees' line and gives the advice.
+    let page = env.dir.path().join("report.html");
+    let out = env.run(&["report", "--out", page.to_str().unwrap()]);
+    assert_eq!(code(&out), 0, "{}", stderr(&out));
+    let html = std::fs::read_to_string(&page).unwrap();
+    assert!(
+        html.contains("Advice: boosted trees do") && html.contains(">\nboosted trees\n</text>"),
+        "no advice or trees line in the report"
+    );
     assert_eq!(code(&env.run(&["verify"])), 0);
 }
 
@@ -132,4 +141,11 @@ fn no_advice_when_the_trees_do_not_do_clearly_better() {
     );
     let models = stdout(&env.run(&["models"]));
     assert!(!models.contains("% better)"), "{models}");
+    let page = env.dir.path().join("report.html");
+    assert_eq!(
+        code(&env.run(&["report", "--out", page.to_str().unwrap()])),
+        0
+    );
+    let html = std::fs::read_to_string(&page).unwrap();
+    assert!(html.contains("against boosted trees") && !html.contains("Advice: boosted trees"));
 }
