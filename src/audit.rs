@@ -331,10 +331,18 @@ pub struct SuspectReference {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TreesVersus {
     pub model: ModelId,
-    /// One-sided p that the trees' mean per-row loss is below the
-    /// network's, batches as clusters (`trees::p_lower`).
+    /// The network's mean loss on the same holdout rows.
     #[serde(with = "number")]
-    pub p: f64,
+    pub loss: f64,
+    /// One-sided p that the trees' mean per-row loss is below the
+    /// network's, batches as clusters (`trees::p_lower`); absent with
+    /// fewer than two batches.
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub p: Option<f64>,
 }
 
 /// The fresh-data check's numbers as written in the log.
@@ -780,15 +788,17 @@ impl Event {
                     {
                         s.push_str(" (does not beat ridge)");
                     }
-                    let p = trees_versus.iter().find(|v| v.model == *m).map(|v| v.p);
-                    if let Some(t) = trees_loss
-                        && let Some(share) = crate::trees::advice(*l, *t, p)
-                    {
-                        s.push_str(&format!(
-                            "; boosted trees do {:.0}% better than {m}",
-                            100.0 * share
-                        ));
-                    }
+                }
+                let networks: Vec<(f64, Option<f64>)> =
+                    trees_versus.iter().map(|v| (v.loss, v.p)).collect();
+                if let Some(t) = trees_loss
+                    && let Some((i, share)) = crate::trees::best_network_advice(*t, &networks)
+                {
+                    s.push_str(&format!(
+                        "; boosted trees do {:.0}% better than the best network ({})",
+                        100.0 * share,
+                        trees_versus[i].model
+                    ));
                 }
                 s
             }
@@ -1642,10 +1652,18 @@ mod tests {
             trees_loss: Some(0.3),
             trees_rows: Some(20_000),
             trees_problem: None,
-            trees_versus: vec![TreesVersus {
-                model: ModelId(2),
-                p: 0.001,
-            }],
+            trees_versus: vec![
+                TreesVersus {
+                    model: ModelId(2),
+                    loss: 0.4,
+                    p: Some(0.001),
+                },
+                TreesVersus {
+                    model: ModelId(3),
+                    loss: 0.42,
+                    p: None,
+                },
+            ],
         };
         let entry = Entry::seal(AuditSeq(2), Utc::now(), "ana", event, &parsed[0].hash);
         let again = check(&[line, entry.line().into_bytes()]).unwrap();
@@ -1653,7 +1671,7 @@ mod tests {
         assert_eq!(
             entry.event.summary(),
             "cycle 4 baselines: ridge 0.4100, trees 0.3000, trivial 0.9000; serving m000002 0.4000; \
-             boosted trees do 25% better than m000002"
+             boosted trees do 25% better than the best network (m000002)"
         );
     }
 

@@ -101,8 +101,9 @@ pub struct Report {
     /// Mean holdout loss of the boosted trees (`None` if they could not be
     /// fitted).
     pub trees_loss: Option<f64>,
-    /// How much lower the trees' holdout loss is than the network serving
-    /// after the cycle, when that is worth telling (`trees::advice`).
+    /// How much lower the trees' holdout loss is than the best network
+    /// scored in the cycle (candidates and the serving model), when that is
+    /// worth telling (`trees::best_network_advice`).
     pub trees_better_by: Option<f64>,
     pub holdout_rows: usize,
     /// Batches the holdout rows came from, and the batches a decision needs.
@@ -848,10 +849,11 @@ pub fn record(
             trees_versus: match &scored.trees {
                 Ok(t) => ids
                     .iter()
+                    .zip(&scored.candidates)
                     .zip(&t.p_candidates)
-                    .map(|(id, p)| (*id, *p))
-                    .chain(serving_id.map(|id| (id, t.p_serving)))
-                    .filter_map(|(model, p)| Some(crate::audit::TreesVersus { model, p: p? }))
+                    .map(|((id, c), p)| (*id, c.loss, *p))
+                    .chain(serving_id.map(|id| (id, baseline_loss, t.p_serving)))
+                    .map(|(model, loss, p)| crate::audit::TreesVersus { model, loss, p })
                     .collect(),
                 Err(_) => Vec::new(),
             },
@@ -957,17 +959,16 @@ pub fn record(
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
-    // Advice about the network that serves after the cycle: a promoted
-    // candidate, else the model that served before.
+    // Advice against the best network of the cycle: every candidate and
+    // the model that served.
     let trees_better_by = scored.trees.as_ref().ok().and_then(|t| {
-        let (loss, p) = if serving_after.is_some() && serving_after != serving_id {
-            (candidates[chosen].holdout_loss, t.p_candidates[chosen])
-        } else if serving_id.is_some() {
-            (baseline_loss, t.p_serving)
-        } else {
-            return None;
-        };
-        crate::trees::advice(loss, t.loss, p)
+        let networks: Vec<(f64, Option<f64>)> = candidates
+            .iter()
+            .map(|c| c.holdout_loss)
+            .zip(t.p_candidates.iter().copied())
+            .chain(serving_id.map(|_| (baseline_loss, t.p_serving)))
+            .collect();
+        crate::trees::best_network_advice(t.loss, &networks).map(|(_, share)| share)
     });
     Ok(Report {
         cycle,

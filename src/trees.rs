@@ -785,6 +785,25 @@ pub fn p_lower(trees: &[f64], network: &[f64], batches: &[u64]) -> Option<f64> {
         .filter(|p| p.is_finite())
 }
 
+/// The advice of one cycle: the trees against the network with the lowest
+/// mean loss on its holdout rows (`networks` as mean loss and `p_lower`;
+/// the candidates trained on the cycle's rows and the serving model).
+/// Returns that network's index and how much better the trees do, when
+/// worth telling. Judging against the best network, not the serving one
+/// alone, keeps a serving model that has gone stale (the gate's business)
+/// from reading as "networks are the wrong tool".
+pub fn best_network_advice(
+    trees_loss: f64,
+    networks: &[(f64, Option<f64>)],
+) -> Option<(usize, f64)> {
+    let (i, &(loss, p)) = networks
+        .iter()
+        .enumerate()
+        .filter(|(_, n)| n.0.is_finite())
+        .min_by(|a, b| a.1.0.total_cmp(&b.1.0))?;
+    advice(loss, trees_loss, p).map(|share| (i, share))
+}
+
 /// How much lower the trees' mean holdout loss is than a network's, as a
 /// share of the network's, when that is worth telling a user: at least
 /// `ADVICE_MARGIN` lower and `p_lower` at most `ADVICE_ALPHA`. `None`
@@ -1163,6 +1182,18 @@ mod tests {
         assert_eq!(advice(0.5, 0.3, None), None);
         assert_eq!(advice(0.5, 0.6, Some(0.01)), None);
         assert_eq!(advice(0.0, 0.0, Some(0.01)), None);
+        // Against the best network of the cycle: a stale serving model far
+        // behind (0.9) does not make advice when a fresh candidate (0.42)
+        // is close to the trees.
+        assert_eq!(
+            best_network_advice(0.4, &[(0.9, Some(0.001)), (0.42, Some(0.2))]),
+            None
+        );
+        let (i, share) =
+            best_network_advice(0.3, &[(0.9, Some(0.001)), (0.42, Some(0.01))]).unwrap();
+        assert_eq!(i, 1);
+        assert!((share - 0.12 / 0.42).abs() < 1e-12);
+        assert_eq!(best_network_advice(0.3, &[]), None);
     }
 
     #[test]

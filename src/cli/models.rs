@@ -131,7 +131,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                     row.trees_p = trees_versus
                         .iter()
                         .find(|v| Some(v.model) == row.id)
-                        .map(|v| v.p);
+                        .and_then(|v| v.p);
                     row.trees_better_by = row
                         .holdout_loss
                         .and_then(|l| crate::trees::advice(l, *trees, row.trees_p));

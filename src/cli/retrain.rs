@@ -265,10 +265,10 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
             "warning: the best network ({best:.4}) does not beat the ridge baseline ({r:.4}) on the holdout rows\n"
         ));
     }
-    if let (Some(share), Some(s)) = (report.trees_better_by, report.serving_after) {
+    if let Some(share) = report.trees_better_by {
         out.push_str(&format!(
-            "advice: boosted trees do {:.0}% better than the serving network {s} on these holdout rows; \
-             the network may be the wrong tool for this data (it keeps serving: this is advice only)\n",
+            "advice: boosted trees do {:.0}% better than the best network on these holdout rows; \
+             the network may be the wrong tool for this data (the network serves: this is advice only)\n",
             100.0 * share
         ));
     }

@@ -96,8 +96,12 @@ pub struct VersusTrees {
     /// One-sided p that the trees do better, batches as clusters (`None`:
     /// fewer than two batches).
     pub p: Option<f64>,
-    /// How much lower the trees' loss is, as a share of the network's, when
-    /// that is worth telling (`trees::advice`); advice, never a switch.
+    /// The network with the lowest loss in that cycle (a candidate trained
+    /// on its rows, or this one), which the advice is judged against.
+    pub best_network: Option<ModelId>,
+    /// How much lower the trees' loss is than the best network's, as a
+    /// share of it, when that is worth telling
+    /// (`trees::best_network_advice`); advice, never a switch.
     pub trees_better_by: Option<f64>,
 }
 
@@ -222,7 +226,13 @@ impl Summary {
                             );
                         }
                         if let Some(trees) = trees_loss {
-                            let p = trees_versus.iter().find(|v| v.model == model).map(|v| v.p);
+                            let networks: Vec<(f64, Option<f64>)> =
+                                trees_versus.iter().map(|v| (v.loss, v.p)).collect();
+                            let best = networks
+                                .iter()
+                                .enumerate()
+                                .min_by(|a, b| a.1.0.total_cmp(&b.1.0))
+                                .map(|(i, _)| trees_versus[i].model);
                             vs_trees.insert(
                                 model,
                                 VersusTrees {
@@ -230,8 +240,15 @@ impl Summary {
                                     cycle: *cycle,
                                     network_loss: loss,
                                     trees_loss: *trees,
-                                    p,
-                                    trees_better_by: crate::trees::advice(loss, *trees, p),
+                                    p: trees_versus
+                                        .iter()
+                                        .find(|v| v.model == model)
+                                        .and_then(|v| v.p),
+                                    best_network: best,
+                                    trees_better_by: crate::trees::best_network_advice(
+                                        *trees, &networks,
+                                    )
+                                    .map(|(_, share)| share),
                                 },
                             );
                         }
@@ -473,20 +490,25 @@ fn trees_lines(v: &VersusTrees) -> String {
         "vs trees    {} holdout loss {:.4} vs boosted trees {:.4} in cycle {} ",
         v.model, v.network_loss, v.trees_loss, v.cycle
     );
-    match (v.trees_better_by, v.p) {
-        (Some(share), Some(p)) => {
-            out.push_str(&format!(
+    if let Some(share) = v.trees_better_by {
+        out.push_str(&match v.p {
+            Some(p) => format!(
                 "(trees {:.1}% lower, one-sided {})\n",
-                100.0 * share,
+                100.0 * gap,
                 p_text(p)
-            ));
-            out.push_str(&format!(
-                "advice      boosted trees do {:.0}% better than the network on cycle {}'s holdout \
-                 rows: the network may be the wrong tool for this data; it keeps serving\n",
-                100.0 * share,
-                v.cycle
-            ));
-        }
+            ),
+            None => format!("(trees {:.1}% lower)\n", 100.0 * gap),
+        });
+        out.push_str(&format!(
+            "advice      boosted trees do {:.0}% better than the best network on cycle {}'s holdout \
+             rows ({}): the network may be the wrong tool for this data; it keeps serving\n",
+            100.0 * share,
+            v.cycle,
+            v.best_network.map_or_else(String::new, |m| m.to_string())
+        ));
+        return out;
+    }
+    match (v.trees_better_by, v.p) {
         _ if gap <= 0.0 => out.push_str(&format!("(network {:.1}% lower)\n", -100.0 * gap)),
         (_, Some(p)) => out.push_str(&format!(
             "(trees {:.1}% lower, one-sided {}; advice needs ≥ {:.0}% and p ≤ {})\n",
@@ -629,7 +651,7 @@ mod tests {
             widened: BTreeMap::new(),
             rescaled: Vec::new(),
         };
-        let scored = |cycle, serving: Option<(u64, f64)>, trees: f64, p: Vec<(u64, f64)>| {
+        let scored = |cycle, serving: Option<(u64, f64)>, trees: f64, p: Vec<(u64, f64, f64)>| {
             Event::BaselinesScored {
                 cycle,
                 holdout_rows: 100,
@@ -644,9 +666,10 @@ mod tests {
                 trees_problem: None,
                 trees_versus: p
                     .into_iter()
-                    .map(|(m, p)| crate::audit::TreesVersus {
+                    .map(|(m, loss, p)| crate::audit::TreesVersus {
                         model: ModelId(m),
-                        p,
+                        loss,
+                        p: Some(p),
                     })
                     .collect(),
             }
@@ -668,7 +691,7 @@ mod tests {
         // Cycle 1: m1 (0.5) promoted; trees 0.4 with p = 0.01: 20% better.
         let one = vec![
             trained(1, 1, 0.5),
-            scored(1, None, 0.4, vec![(1, 0.01)]),
+            scored(1, None, 0.4, vec![(1, 0.5, 0.01)]),
             promoted(1, 1, None),
         ];
         let s = fold(one.clone());
@@ -678,15 +701,33 @@ mod tests {
         assert!(trees_lines(&v).contains("advice      boosted trees do 20% better"));
         // Cycle 2 scores m1 again as the serving model: 20% but p = 0.3.
         let mut two = one.clone();
-        two.push(scored(2, Some((1, 0.5)), 0.4, vec![(1, 0.3)]));
+        two.push(scored(2, Some((1, 0.5)), 0.4, vec![(1, 0.5, 0.3)]));
         let v = fold(two).versus_trees.unwrap();
         assert_eq!((v.cycle, v.trees_better_by), (2, None));
         assert!(!trees_lines(&v).contains("advice      "));
         // A clear but small gap (4%) is not advice either.
         let mut three = one;
-        three.push(scored(2, Some((1, 0.5)), 0.48, vec![(1, 0.001)]));
+        let mut stale = three.clone();
+        three.push(scored(2, Some((1, 0.5)), 0.48, vec![(1, 0.5, 0.001)]));
         let v = fold(three).versus_trees.unwrap();
         assert_eq!(v.trees_better_by, None);
         assert!(trees_lines(&v).contains("advice needs ≥ 10% and p ≤ 0.05"));
+        // The serving model has gone stale (0.9, far behind the trees), but
+        // this cycle's candidate m2, trained on the same rows, is close to
+        // them: no advice, the network is not the wrong tool.
+        stale.push(trained(2, 2, 0.42));
+        stale.push(scored(
+            2,
+            Some((1, 0.9)),
+            0.4,
+            vec![(2, 0.42, 0.2), (1, 0.9, 0.001)],
+        ));
+        let v = fold(stale).versus_trees.unwrap();
+        assert_eq!(
+            (v.model, v.network_loss, v.best_network),
+            (ModelId(1), 0.9, Some(ModelId(2)))
+        );
+        assert_eq!(v.trees_better_by, None);
+        assert!(!trees_lines(&v).contains("advice      "));
     }
 }

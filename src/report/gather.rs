@@ -70,20 +70,20 @@ pub struct Baselines {
     pub ridge_loss: Option<f64>,
     /// The boosted trees (absent in cycles logged before they existed).
     pub trees_loss: Option<f64>,
-    /// The model serving when the cycle scored, and its loss.
-    pub serving: Option<(ModelId, f64)>,
-    /// One-sided p that the trees do better, per network scored.
-    pub trees_p: BTreeMap<ModelId, f64>,
+    /// Every network scored in the cycle: its mean loss and the one-sided
+    /// p that the trees do better.
+    pub networks: Vec<(ModelId, f64, Option<f64>)>,
 }
 
-/// A network beside the boosted trees of one cycle.
+/// The boosted trees beside the best network of one cycle.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct VersusTrees {
     pub cycle: u64,
+    pub network: ModelId,
     pub network_loss: f64,
     pub trees_loss: f64,
     /// How much better the trees do, when that is worth telling
-    /// (`trees::advice`).
+    /// (`trees::best_network_advice`).
     pub trees_better_by: Option<f64>,
 }
 
@@ -150,30 +150,24 @@ impl Timeline {
 }
 
 impl Timeline {
-    /// `model` beside the boosted trees of the last cycle that scored both
-    /// (as a candidate of that cycle or as the model serving then).
-    pub fn versus_trees(&self, model: ModelId) -> Option<VersusTrees> {
-        self.baselines.iter().rev().find_map(|b| {
-            let trees_loss = b.trees_loss?;
-            let network_loss = match b.serving {
-                Some((m, l)) if m == model => l,
-                _ => {
-                    self.candidates
-                        .iter()
-                        .find(|c| c.model == model && c.cycle == b.cycle)?
-                        .holdout_loss
-                }
-            };
-            Some(VersusTrees {
-                cycle: b.cycle,
-                network_loss,
-                trees_loss,
-                trees_better_by: crate::trees::advice(
-                    network_loss,
-                    trees_loss,
-                    b.trees_p.get(&model).copied(),
-                ),
-            })
+    /// The last cycle's boosted trees beside its best network (the
+    /// candidates trained on its rows and the model serving then).
+    pub fn versus_trees(&self) -> Option<VersusTrees> {
+        let b = self
+            .baselines
+            .iter()
+            .rev()
+            .find(|b| b.trees_loss.is_some())?;
+        let trees_loss = b.trees_loss?;
+        let &(network, network_loss, _) = b.networks.iter().min_by(|x, y| x.1.total_cmp(&y.1))?;
+        let pairs: Vec<(f64, Option<f64>)> = b.networks.iter().map(|n| (n.1, n.2)).collect();
+        Some(VersusTrees {
+            cycle: b.cycle,
+            network,
+            network_loss,
+            trees_loss,
+            trees_better_by: crate::trees::best_network_advice(trees_loss, &pairs)
+                .map(|(_, share)| share),
         })
     }
 }
@@ -203,8 +197,6 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                 cycle,
                 trivial_loss,
                 ridge_loss,
-                serving,
-                serving_loss,
                 trees_loss,
                 trees_versus,
                 ..
@@ -213,8 +205,10 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                 trivial_loss: *trivial_loss,
                 ridge_loss: *ridge_loss,
                 trees_loss: *trees_loss,
-                serving: serving.zip(*serving_loss),
-                trees_p: trees_versus.iter().map(|v| (v.model, v.p)).collect(),
+                networks: trees_versus
+                    .iter()
+                    .map(|v| (v.model, v.loss, v.p))
+                    .collect(),
             }),
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
@@ -488,7 +482,8 @@ mod tests {
                 trees_problem: None,
                 trees_versus: vec![crate::audit::TreesVersus {
                     model: ModelId(1),
-                    p: 0.01,
+                    loss: 4.0,
+                    p: Some(0.01),
                 }],
             },
             Event::Promoted {
@@ -533,13 +528,15 @@ mod tests {
         assert_eq!(t.candidates[1].holdout_loss, 3.0);
         assert_eq!(t.baselines.len(), 1);
         assert_eq!(t.baselines[0].ridge_loss, Some(5.0));
-        // Model 1 (loss 4.0) against trees at 3.0 with p = 0.01 in its
-        // own cycle: 25% better, worth telling; model 2 was never scored
-        // beside the trees.
-        let v = t.versus_trees(ModelId(1)).unwrap();
-        assert_eq!((v.cycle, v.network_loss, v.trees_loss), (1, 4.0, 3.0));
+        // Model 1 (loss 4.0), the only network of cycle 1, against trees at
+        // 3.0 with p = 0.01: 25% better, worth telling. Cycle 2 logged no
+        // baselines.
+        let v = t.versus_trees().unwrap();
+        assert_eq!(
+            (v.cycle, v.network, v.network_loss, v.trees_loss),
+            (1, ModelId(1), 4.0, 3.0)
+        );
         assert!((v.trees_better_by.unwrap() - 0.25).abs() < 1e-12);
-        assert_eq!(t.versus_trees(ModelId(2)), None);
         let stored: Vec<u64> = t.files.iter().map(|f| f.rows_stored).collect();
         assert_eq!(stored, vec![10, 10, 15, 15]);
         assert!(matches!(

@@ -56,13 +56,14 @@ fn maybe(v: Option<f64>) -> String {
     v.map_or_else(|| "-".into(), |p| format!("{p:.4}"))
 }
 
-/// The serving network beside the boosted trees, with the advice when the
+/// The last cycle's best network beside the boosted trees, with the advice when the
 /// trees do clearly better (advice only: the network keeps serving).
-fn trees_note(model: ModelId, v: &gather::VersusTrees) -> String {
+fn trees_note(v: &gather::VersusTrees) -> String {
+    let model = v.network;
     match v.trees_better_by {
         Some(share) => note(&format!(
-            "Advice: boosted trees do {:.0}% better than the serving network {model} on cycle {}'s \
-             holdout rows (mean loss {} against {}; at least {:.0}% lower, one-sided p ≤ {} with \
+            "Advice: boosted trees do {:.0}% better than the best network of cycle {} ({model}) on \
+             its holdout rows (mean loss {} against {}; at least {:.0}% lower, one-sided p ≤ {} with \
              batches as clusters). The network may be the wrong tool for this data. It keeps \
              serving: the trees are a reference, never a candidate.",
             100.0 * share,
@@ -73,8 +74,8 @@ fn trees_note(model: ModelId, v: &gather::VersusTrees) -> String {
             crate::trees::ADVICE_ALPHA
         )),
         None => note(&format!(
-            "The serving network {model} against boosted trees on cycle {}'s holdout rows: mean \
-             loss {} against the trees' {}; no clear gap in the trees' favour.",
+            "The best network of cycle {} ({model}) against boosted trees on its holdout rows: \
+             mean loss {} against the trees' {}; no clear gap in the trees' favour.",
             v.cycle,
             loss(v.network_loss),
             loss(v.trees_loss)
@@ -110,8 +111,8 @@ pub fn build(
          it carries only through the weights it was warm-started from. A model that saw a batch \
          now set aside is marked.",
     );
-    if let Some(v) = serving.and_then(|m| Some((m, t.versus_trees(m)?))) {
-        s.push_str(&trees_note(v.0, &v.1));
+    if let Some(v) = t.versus_trees() {
+        s.push_str(&trees_note(&v));
     }
     match charts::holdout(&t)? {
         Some(svg) => {
