@@ -144,6 +144,25 @@ pub enum Event {
         serving: Option<ModelId>,
         #[serde(default, with = "maybe_number")]
         serving_loss: Option<f64>,
+        /// Mean holdout loss of the boosted trees (`trees`), fitted on a
+        /// sample of the same training rows; absent in entries written
+        /// before they existed, and when they could not be fitted
+        /// (`trees_problem` says why).
+        #[serde(
+            default,
+            skip_serializing_if = "Option::is_none",
+            with = "maybe_number"
+        )]
+        trees_loss: Option<f64>,
+        /// Training rows the trees were fitted on (the sample).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        trees_rows: Option<usize>,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        trees_problem: Option<String>,
+        /// For each network scored on these rows (candidates and the
+        /// serving model), how clearly the trees do better.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        trees_versus: Vec<TreesVersus>,
     },
     /// A cycle that started was cut short (crash, kill, cancel); the serving
     /// model was not changed by it.
@@ -306,6 +325,24 @@ pub struct SuspectReference {
     )]
     pub p: Option<f64>,
     pub history: usize,
+}
+
+/// The boosted trees against one network on a cycle's holdout rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TreesVersus {
+    pub model: ModelId,
+    /// The network's mean loss on the same holdout rows.
+    #[serde(with = "number")]
+    pub loss: f64,
+    /// One-sided p that the trees' mean per-row loss is below the
+    /// network's, batches as clusters (`trees::p_lower`); absent with
+    /// fewer than two batches.
+    #[serde(
+        default,
+        skip_serializing_if = "Option::is_none",
+        with = "maybe_number"
+    )]
+    pub p: Option<f64>,
 }
 
 /// The fresh-data check's numbers as written in the log.
@@ -725,6 +762,9 @@ impl Event {
                 ridge_problem,
                 serving,
                 serving_loss,
+                trees_loss,
+                trees_problem,
+                trees_versus,
                 ..
             } => {
                 let ridge = match (ridge_loss, ridge_problem) {
@@ -732,7 +772,15 @@ impl Event {
                     (None, Some(p)) => format!("ridge not fitted ({p})"),
                     (None, None) => "ridge not fitted".to_string(),
                 };
-                let mut s = format!("cycle {cycle} baselines: {ridge}, trivial {trivial_loss:.4}");
+                // Entries from before the trees existed have neither field
+                // and say nothing about them.
+                let trees = match (trees_loss, trees_problem) {
+                    (Some(t), _) => format!(", trees {t:.4}"),
+                    (None, Some(p)) => format!(", trees not fitted ({p})"),
+                    (None, None) => String::new(),
+                };
+                let mut s =
+                    format!("cycle {cycle} baselines: {ridge}{trees}, trivial {trivial_loss:.4}");
                 if let (Some(m), Some(l)) = (serving, serving_loss) {
                     s.push_str(&format!("; serving {m} {l:.4}"));
                     if let Some(r) = ridge_loss
@@ -740,6 +788,17 @@ impl Event {
                     {
                         s.push_str(" (does not beat ridge)");
                     }
+                }
+                let networks: Vec<(f64, Option<f64>)> =
+                    trees_versus.iter().map(|v| (v.loss, v.p)).collect();
+                if let Some(t) = trees_loss
+                    && let Some((i, share)) = crate::trees::best_network_advice(*t, &networks)
+                {
+                    s.push_str(&format!(
+                        "; boosted trees do {:.0}% better than the best network ({})",
+                        100.0 * share,
+                        trees_versus[i].model
+                    ));
                 }
                 s
             }
@@ -1545,6 +1604,75 @@ mod tests {
             assert!(same(check.hotspots[0].excess_loss, -x));
             assert_eq!(check.mean_loss_reference, None);
         }
+    }
+
+    #[test]
+    fn a_baselines_entry_from_before_the_trees_reads_and_verifies_and_new_ones_round_trip() {
+        // A line exactly as builds before the boosted trees wrote it.
+        let mut value = serde_json::json!({"kind": "baselines-scored", "cycle": 3,
+            "holdout_rows": 120, "trivial_loss": 0.9, "ridge_loss": 0.41, "ridge_lambda": 1.0,
+            "serving": 2, "serving_loss": 0.4, "seq": 1, "time": "2026-11-30T05:00:00.000Z",
+            "user": "ana", "prev": GENESIS});
+        value["hash"] = serde_json::json!(content_hash(&value));
+        let line = serde_json::to_vec(&value).unwrap();
+        let parsed = check(std::slice::from_ref(&line)).unwrap();
+        let Event::BaselinesScored {
+            trees_loss,
+            trees_rows,
+            trees_problem,
+            trees_versus,
+            ..
+        } = &parsed[0].event
+        else {
+            panic!("{:?}", parsed[0].event)
+        };
+        assert_eq!(
+            (trees_loss, trees_rows, trees_problem),
+            (&None, &None, &None)
+        );
+        assert!(trees_versus.is_empty());
+        assert_eq!(
+            parsed[0].event.summary(),
+            "cycle 3 baselines: ridge 0.4100, trivial 0.9000; serving m000002 0.4000"
+        );
+        // Written again it has the same fields and values, so its hash
+        // still holds: no new key appears in an old entry.
+        let rewritten: serde_json::Value = serde_json::from_str(&parsed[0].line()).unwrap();
+        assert_eq!(rewritten, value);
+        // A new entry with the trees: clearly better than the serving model.
+        let event = Event::BaselinesScored {
+            cycle: 4,
+            holdout_rows: 120,
+            trivial_loss: 0.9,
+            ridge_loss: Some(0.41),
+            ridge_lambda: 1.0,
+            ridge_problem: None,
+            serving: Some(ModelId(2)),
+            serving_loss: Some(0.4),
+            trees_loss: Some(0.3),
+            trees_rows: Some(20_000),
+            trees_problem: None,
+            trees_versus: vec![
+                TreesVersus {
+                    model: ModelId(2),
+                    loss: 0.4,
+                    p: Some(0.001),
+                },
+                TreesVersus {
+                    model: ModelId(3),
+                    loss: 0.42,
+                    p: None,
+                },
+            ],
+        };
+        let entry = Entry::seal(AuditSeq(2), Utc::now(), "ana", event, &parsed[0].hash);
+        let again = check(&[line, entry.line().into_bytes()]).unwrap();
+        assert_eq!(again[1], entry);
+        assert_eq!(
+            entry.event.summary(),
+            "cycle 4 baselines: ridge 0.4100, trees 0.3000, trivial 0.9000; serving m000002 0.4000; \
+             boosted trees do 25% better than the best network (m000002)"
+        );
     }
 
     #[test]

@@ -98,6 +98,13 @@ pub struct Report {
     pub trivial_loss: f64,
     /// Mean holdout loss of the ridge baseline (`None` if it could not be fitted).
     pub ridge_loss: Option<f64>,
+    /// Mean holdout loss of the boosted trees (`None` if they could not be
+    /// fitted).
+    pub trees_loss: Option<f64>,
+    /// How much lower the trees' holdout loss is than the best network
+    /// scored in the cycle (candidates and the serving model), when that is
+    /// worth telling (`trees::best_network_advice`).
+    pub trees_better_by: Option<f64>,
     pub holdout_rows: usize,
     /// Batches the holdout rows came from, and the batches a decision needs.
     pub holdout_batches: usize,
@@ -581,8 +588,21 @@ pub struct Scored {
     pub trivial: Vec<f64>,
     pub trivial_loss: f64,
     pub ridge: Result<f64, String>,
+    /// The boosted trees, or why they were not fitted.
+    pub trees: Result<TreesScore, String>,
     pub widened_columns: BTreeMap<String, usize>,
     pub rescaled_columns: Vec<String>,
+}
+
+/// The boosted trees of a cycle on its holdout rows.
+pub struct TreesScore {
+    pub loss: f64,
+    /// Training rows sampled for the fit.
+    pub rows: usize,
+    /// One-sided p that the trees do better than each candidate (in
+    /// `candidates` order) and than the serving model (`trees::p_lower`).
+    pub p_candidates: Vec<Option<f64>>,
+    pub p_serving: Option<f64>,
 }
 
 impl Scored {
@@ -635,6 +655,28 @@ pub fn score(
     if let Err(e) = &ridge {
         tracing::warn!("ridge baseline not fitted: {e}");
     }
+    let trees_step = std::time::Instant::now();
+    let trees = crate::trees::Boosted::fit(&spec, &parts, &crate::trees::Settings::default())
+        .and_then(|t| Ok((t.rows(), t.row_losses(&data.holdout)?)))
+        .map(|(rows, losses)| {
+            let p = |net: &[f64]| crate::trees::p_lower(&losses, net, &data.holdout_batches);
+            TreesScore {
+                loss: mean(&losses),
+                rows,
+                p_candidates: candidates.iter().map(|c| p(&c.losses)).collect(),
+                p_serving: serving.as_deref().and_then(p),
+            }
+        })
+        .map_err(|e| e.to_string());
+    match &trees {
+        Ok(t) => tracing::debug!(
+            "cycle {}: boosted trees fitted on {} rows and scored in {:.3} s",
+            plan.cycle,
+            t.rows,
+            trees_step.elapsed().as_secs_f64()
+        ),
+        Err(e) => tracing::warn!("boosted trees not fitted: {e}"),
+    }
     tracing::debug!(
         "cycle {}: scored {} candidate(s), the serving model and the baselines on {} holdout rows in {:.3} s (peak RSS {} MB)",
         plan.cycle,
@@ -649,6 +691,7 @@ pub fn score(
         trivial,
         trivial_loss,
         ridge,
+        trees,
         widened_columns: trained.widened_columns,
         rescaled_columns: trained.rescaled_columns,
     })
@@ -706,6 +749,7 @@ pub fn record(
     let chosen = judgement.chosen;
     let decision = judgement.decision().clone();
     let ridge_loss = scored.ridge.as_ref().ok().copied();
+    let trees_loss = scored.trees.as_ref().ok().map(|t| t.loss);
     let mut serving_after = serving_id;
     let mut candidates = Vec::new();
     if options.dry_run {
@@ -799,6 +843,20 @@ pub fn record(
             ridge_problem: scored.ridge.as_ref().err().cloned(),
             serving: serving_id,
             serving_loss: serving_id.map(|_| baseline_loss),
+            trees_loss,
+            trees_rows: scored.trees.as_ref().ok().map(|t| t.rows),
+            trees_problem: scored.trees.as_ref().err().cloned(),
+            trees_versus: match &scored.trees {
+                Ok(t) => ids
+                    .iter()
+                    .zip(&scored.candidates)
+                    .zip(&t.p_candidates)
+                    .map(|((id, c), p)| (*id, c.loss, *p))
+                    .chain(serving_id.map(|id| (id, baseline_loss, t.p_serving)))
+                    .map(|(model, loss, p)| crate::audit::TreesVersus { model, loss, p })
+                    .collect(),
+                Err(_) => Vec::new(),
+            },
         };
         let entry = owner.store.record_with_meta(event, user, Utc::now(), &[])?;
         owner.mirror.append(&[entry.line().as_bytes()])?;
@@ -901,12 +959,25 @@ pub fn record(
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
+    // Advice against the best network of the cycle: every candidate and
+    // the model that served.
+    let trees_better_by = scored.trees.as_ref().ok().and_then(|t| {
+        let networks: Vec<(f64, Option<f64>)> = candidates
+            .iter()
+            .map(|c| c.holdout_loss)
+            .zip(t.p_candidates.iter().copied())
+            .chain(serving_id.map(|_| (baseline_loss, t.p_serving)))
+            .collect();
+        crate::trees::best_network_advice(t.loss, &networks).map(|(_, share)| share)
+    });
     Ok(Report {
         cycle,
         serving_before: serving_id,
         baseline_loss,
         trivial_loss: scored.trivial_loss,
         ridge_loss,
+        trees_loss,
+        trees_better_by,
         holdout_rows: data.holdout.n_rows(),
         holdout_batches: data
             .holdout_batches

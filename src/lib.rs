@@ -40,4 +40,5 @@ pub mod state;
 pub mod store;
 pub mod suspect;
 pub mod train;
+pub mod trees;
 pub mod verify;

@@ -12,8 +12,10 @@
 #   3. warm versus cold    examples/bench_warm.rs    time to quality
 #   4. cycle scaling       ops/bench/scaling.sh      100k / 1M / 5M stores, RSS
 #   5. gate on 1M rows     examples/bench_gate_rows.rs
-#   6. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
-#   7. prediction endpoint tests/it/endpoint.rs `load` (ignored test): requests/s,
+#   6. boosted trees       examples/bench_trees.rs   fit + score against ridge,
+#                                                    20k and 100k stored rows
+#   7. PyTorch peer        ops/bench/peer_pytorch.py (only when torch is installed)
+#   8. prediction endpoint tests/it/endpoint.rs `load` (ignored test): requests/s,
 #                                                    p50/p99 at 1 and 32 rows, idle and
 #                                                    while cycles run and the model moves;
 #                      tests/it/onnx.rs `export_time`: the ONNX export against the cycle
@@ -59,10 +61,13 @@ cargo build --release --examples --bin tidegate
   part "5. the gate's decision on 1M paired rows"
   "$TARGET/release/examples/bench_gate_rows"
 
-  part "6. PyTorch peer (optional)"
+  part "6. the boosted-tree reference model"
+  "$TARGET/release/examples/bench_trees"
+
+  part "7. PyTorch peer (optional)"
   python3 ops/bench/peer_pytorch.py || true
 
-  part "7. prediction endpoint on loopback"
+  part "8. prediction endpoint on loopback"
   if [ "$MODE" = quick ]; then export TIDEGATE_LOAD_SECONDS=3; fi
   cargo test --release --test it endpoint::load -- --ignored --nocapture
   cargo test --release --test it onnx::export_time -- --ignored --nocapture

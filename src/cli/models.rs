@@ -35,6 +35,17 @@ struct Row {
     /// The ridge baseline's holdout loss in the same cycle, on the same rows.
     ridge_loss: Option<f64>,
     beats_ridge: Option<bool>,
+    /// The boosted trees' holdout loss in the same cycle, on the same rows
+    /// (absent before the trees existed or when they were not fitted).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    trees_loss: Option<f64>,
+    /// One-sided p that the trees do better than this model.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    trees_p: Option<f64>,
+    /// How much lower the trees' loss is, as a share of this model's, when
+    /// that is worth telling (`trees::advice`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    trees_better_by: Option<f64>,
     /// What the log says became of it, latest last.
     decisions: Vec<String>,
     serving: bool,
@@ -104,13 +115,27 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     for e in &entries {
         if let Event::BaselinesScored {
             cycle,
-            ridge_loss: Some(ridge),
+            ridge_loss,
+            trees_loss,
+            trees_versus,
             ..
         } = &e.event
         {
             for row in rows.values_mut().filter(|r| r.cycle == Some(*cycle)) {
-                row.ridge_loss = Some(*ridge);
-                row.beats_ridge = row.holdout_loss.map(|l| l < *ridge);
+                if let Some(ridge) = ridge_loss {
+                    row.ridge_loss = Some(*ridge);
+                    row.beats_ridge = row.holdout_loss.map(|l| l < *ridge);
+                }
+                if let Some(trees) = trees_loss {
+                    row.trees_loss = Some(*trees);
+                    row.trees_p = trees_versus
+                        .iter()
+                        .find(|v| Some(v.model) == row.id)
+                        .and_then(|v| v.p);
+                    row.trees_better_by = row
+                        .holdout_loss
+                        .and_then(|l| crate::trees::advice(l, *trees, row.trees_p));
+                }
             }
             continue;
         }
@@ -165,6 +190,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                     (Some(l), _) => format!("{l:.4} (NOT beaten)"),
                     (None, _) => "-".into(),
                 },
+                match (r.trees_loss, r.trees_better_by) {
+                    (Some(l), Some(share)) => format!("{l:.4} ({:.0}% better)", 100.0 * share),
+                    (Some(l), None) => format!("{l:.4}"),
+                    (None, _) => "-".into(),
+                },
                 r.batches_seen.as_ref().map_or_else(
                     || "-".into(),
                     |b| crate::provenance::ranges_text(&b.iter().copied().collect()),
@@ -184,6 +214,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
             "epochs",
             "holdout loss",
             "ridge loss",
+            "trees loss",
             "batches seen",
             "decisions",
         ],
@@ -191,6 +222,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         cli.colored(),
     );
     out.push_str("* serving\n");
+    if rows.values().any(|r| r.trees_better_by.is_some()) {
+        out.push_str(&format!(
+            "\"better\": boosted trees on the same holdout rows did at least {:.0}% better, \
+                 one-sided p ≤ {} with batches as clusters; the network may be the wrong tool for \
+                 this data (advice only: the network serves)\n",
+            100.0 * crate::trees::ADVICE_MARGIN,
+            crate::trees::ADVICE_ALPHA
+        ));
+    }
     if let Some(batch) = args.trained_on {
         let mut by: Vec<String> = rows
             .values()

@@ -162,6 +162,7 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
             "new_batches": report.new_batches, "candidates": candidates, "judged": report.judged,
             "evidence": evidence, "reason": report.decision.reason(),
             "ridge_loss": report.ridge_loss, "trivial_loss": report.trivial_loss,
+            "trees_loss": report.trees_loss, "trees_better_by": report.trees_better_by,
         });
         return format!("{v}\n");
     }
@@ -190,6 +191,15 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
         "-".into(),
         report
             .ridge_loss
+            .map_or_else(|| "not fitted".into(), |l| format!("{l:.4}")),
+    ]);
+    rows.push(vec![
+        "boosted trees".into(),
+        "baseline".into(),
+        "-".into(),
+        "-".into(),
+        report
+            .trees_loss
             .map_or_else(|| "not fitted".into(), |l| format!("{l:.4}")),
     ]);
     for (i, c) in report.candidates.iter().enumerate() {
@@ -253,6 +263,13 @@ pub(crate) fn render(outcome: Outcome, json: bool) -> String {
     {
         out.push_str(&format!(
             "warning: the best network ({best:.4}) does not beat the ridge baseline ({r:.4}) on the holdout rows\n"
+        ));
+    }
+    if let Some(share) = report.trees_better_by {
+        out.push_str(&format!(
+            "advice: boosted trees do {:.0}% better than the best network on these holdout rows; \
+             the network may be the wrong tool for this data (the network serves: this is advice only)\n",
+            100.0 * share
         ));
     }
     out

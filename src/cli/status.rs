@@ -41,6 +41,9 @@ pub struct Summary {
     /// The serving network against the ridge baseline, from the last cycle
     /// that scored both on the same holdout rows.
     pub versus_ridge: Option<VersusRidge>,
+    /// The serving network against the boosted trees, from the last cycle
+    /// that scored both on the same holdout rows.
+    pub versus_trees: Option<VersusTrees>,
     /// The last fresh-data check, unless a cycle has started since.
     pub fresh_check: Option<FreshEvidence>,
     /// The last accepted batch's drift report.
@@ -83,6 +86,25 @@ pub struct VersusRidge {
     pub beats_ridge: bool,
 }
 
+/// A network's holdout loss beside the boosted trees' on the same rows.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct VersusTrees {
+    pub model: ModelId,
+    pub cycle: u64,
+    pub network_loss: f64,
+    pub trees_loss: f64,
+    /// One-sided p that the trees do better, batches as clusters (`None`:
+    /// fewer than two batches).
+    pub p: Option<f64>,
+    /// The network with the lowest loss in that cycle (a candidate trained
+    /// on its rows, or this one), which the advice is judged against.
+    pub best_network: Option<ModelId>,
+    /// How much lower the trees' loss is than the best network's, as a
+    /// share of it, when that is worth telling
+    /// (`trees::best_network_advice`); advice, never a switch.
+    pub trees_better_by: Option<f64>,
+}
+
 impl Summary {
     /// Folds the log into totals.
     pub fn from_entries(entries: &[Entry]) -> Summary {
@@ -94,6 +116,7 @@ impl Summary {
         // comparison with ridge.
         let mut cycle_losses: BTreeMap<ModelId, f64> = BTreeMap::new();
         let mut vs_ridge: BTreeMap<ModelId, VersusRidge> = BTreeMap::new();
+        let mut vs_trees: BTreeMap<ModelId, VersusTrees> = BTreeMap::new();
         for e in entries {
             match &e.event {
                 Event::BatchAccepted {
@@ -178,9 +201,11 @@ impl Summary {
                 }
                 Event::BaselinesScored {
                     cycle,
-                    ridge_loss: Some(ridge),
+                    ridge_loss,
                     serving,
                     serving_loss,
+                    trees_loss,
+                    trees_versus,
                     ..
                 } => {
                     let mut scored = std::mem::take(&mut cycle_losses);
@@ -188,16 +213,45 @@ impl Summary {
                         scored.insert(*m, *l);
                     }
                     for (model, loss) in scored {
-                        vs_ridge.insert(
-                            model,
-                            VersusRidge {
+                        if let Some(ridge) = ridge_loss {
+                            vs_ridge.insert(
                                 model,
-                                cycle: *cycle,
-                                network_loss: loss,
-                                ridge_loss: *ridge,
-                                beats_ridge: loss < *ridge,
-                            },
-                        );
+                                VersusRidge {
+                                    model,
+                                    cycle: *cycle,
+                                    network_loss: loss,
+                                    ridge_loss: *ridge,
+                                    beats_ridge: loss < *ridge,
+                                },
+                            );
+                        }
+                        if let Some(trees) = trees_loss {
+                            let networks: Vec<(f64, Option<f64>)> =
+                                trees_versus.iter().map(|v| (v.loss, v.p)).collect();
+                            let best = networks
+                                .iter()
+                                .enumerate()
+                                .min_by(|a, b| a.1.0.total_cmp(&b.1.0))
+                                .map(|(i, _)| trees_versus[i].model);
+                            vs_trees.insert(
+                                model,
+                                VersusTrees {
+                                    model,
+                                    cycle: *cycle,
+                                    network_loss: loss,
+                                    trees_loss: *trees,
+                                    p: trees_versus
+                                        .iter()
+                                        .find(|v| v.model == model)
+                                        .and_then(|v| v.p),
+                                    best_network: best,
+                                    trees_better_by: crate::trees::best_network_advice(
+                                        *trees, &networks,
+                                    )
+                                    .map(|(_, share)| share),
+                                },
+                            );
+                        }
                     }
                 }
                 Event::CycleStarted { .. } => {
@@ -208,13 +262,13 @@ impl Summary {
                 Event::Initialized { .. }
                 | Event::BackupMade { .. }
                 | Event::Restored { .. }
-                | Event::BaselinesScored { .. }
                 | Event::CycleAbandoned { .. }
                 | Event::ModelExported { .. }
                 | Event::FolderRenamed { .. } => {}
             }
         }
         s.versus_ridge = s.serving.and_then(|m| vs_ridge.get(&m).copied());
+        s.versus_trees = s.serving.and_then(|m| vs_trees.get(&m).copied());
         s.seen = crate::provenance::lineages(entries)
             .into_iter()
             .map(|(m, l)| (m, l.saw))
@@ -307,6 +361,9 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
                 v.model, v.network_loss, v.ridge_loss, v.cycle
             ));
         }
+    }
+    if let Some(v) = &summary.versus_trees {
+        out.push_str(&trees_lines(v));
     }
     if let Some(d) = &summary.last_drift {
         if !d.flagged.is_empty() {
@@ -425,6 +482,57 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
     Ok(Exit::Ok)
 }
 
+/// The serving network beside the boosted trees: one line, and a second
+/// with the advice when the trees do clearly better.
+fn trees_lines(v: &VersusTrees) -> String {
+    let gap = (v.network_loss - v.trees_loss) / v.network_loss.abs().max(f64::MIN_POSITIVE);
+    let mut out = format!(
+        "vs trees    {} holdout loss {:.4} vs boosted trees {:.4} in cycle {} ",
+        v.model, v.network_loss, v.trees_loss, v.cycle
+    );
+    if let Some(share) = v.trees_better_by {
+        out.push_str(&match v.p {
+            Some(p) => format!(
+                "(trees {:.1}% lower, one-sided {})\n",
+                100.0 * gap,
+                p_text(p)
+            ),
+            None => format!("(trees {:.1}% lower)\n", 100.0 * gap),
+        });
+        out.push_str(&format!(
+            "advice      boosted trees do {:.0}% better than the best network on cycle {}'s holdout \
+             rows ({}): the network may be the wrong tool for this data; it keeps serving\n",
+            100.0 * share,
+            v.cycle,
+            v.best_network.map_or_else(String::new, |m| m.to_string())
+        ));
+        return out;
+    }
+    match (v.trees_better_by, v.p) {
+        _ if gap <= 0.0 => out.push_str(&format!("(network {:.1}% lower)\n", -100.0 * gap)),
+        (_, Some(p)) => out.push_str(&format!(
+            "(trees {:.1}% lower, one-sided {}; advice needs ≥ {:.0}% and p ≤ {})\n",
+            100.0 * gap,
+            p_text(p),
+            100.0 * crate::trees::ADVICE_MARGIN,
+            crate::trees::ADVICE_ALPHA
+        )),
+        (_, None) => out.push_str(&format!(
+            "(trees {:.1}% lower; too few batches to test)\n",
+            100.0 * gap
+        )),
+    }
+    out
+}
+
+fn p_text(p: f64) -> String {
+    if p < 0.001 {
+        "p < 0.001".to_string()
+    } else {
+        format!("p = {p:.3}")
+    }
+}
+
 /// What the running daemon is doing, in one line.
 fn daemon_line(d: Option<&crate::daemon::DaemonStatus>) -> String {
     let Some(d) = d else {
@@ -522,5 +630,104 @@ mod tests {
         assert_eq!((s.refused_files, s.duplicate_files), (1, 1));
         assert_eq!(s.vocabularies["shop"], ["Quay", "Harbour"]);
         assert_eq!(s.vocabulary_sizes["shop"], 251);
+        assert_eq!(s.versus_trees, None);
+    }
+
+    #[test]
+    fn the_trees_advice_follows_the_serving_model_and_needs_a_clear_gap() {
+        let t = chrono::Utc::now();
+        let trained = |cycle, model, holdout_loss| Event::CandidateTrained {
+            cycle,
+            model: ModelId(model),
+            run: "cold".into(),
+            parent: None,
+            trained_through: BatchId(1),
+            epochs: 3,
+            seconds: 1.0,
+            stop: "Patience".into(),
+            holdout_rows: 100,
+            holdout_loss,
+            manifest_hash: "h".into(),
+            widened: BTreeMap::new(),
+            rescaled: Vec::new(),
+        };
+        let scored = |cycle, serving: Option<(u64, f64)>, trees: f64, p: Vec<(u64, f64, f64)>| {
+            Event::BaselinesScored {
+                cycle,
+                holdout_rows: 100,
+                trivial_loss: 1.0,
+                ridge_loss: Some(0.6),
+                ridge_lambda: 1.0,
+                ridge_problem: None,
+                serving: serving.map(|s| ModelId(s.0)),
+                serving_loss: serving.map(|s| s.1),
+                trees_loss: Some(trees),
+                trees_rows: Some(100),
+                trees_problem: None,
+                trees_versus: p
+                    .into_iter()
+                    .map(|(m, loss, p)| crate::audit::TreesVersus {
+                        model: ModelId(m),
+                        loss,
+                        p: Some(p),
+                    })
+                    .collect(),
+            }
+        };
+        let promoted = |cycle, model, previous: Option<u64>| Event::Promoted {
+            cycle,
+            model: ModelId(model),
+            previous: previous.map(ModelId),
+            evidence: crate::provenance::fixtures::gate_evidence(100),
+        };
+        let fold = |events: Vec<Event>| {
+            let entries: Vec<Entry> = events
+                .into_iter()
+                .enumerate()
+                .map(|(i, ev)| Entry::seal(AuditSeq(i as u64 + 1), t, "u", ev, "p"))
+                .collect();
+            Summary::from_entries(&entries)
+        };
+        // Cycle 1: m1 (0.5) promoted; trees 0.4 with p = 0.01: 20% better.
+        let one = vec![
+            trained(1, 1, 0.5),
+            scored(1, None, 0.4, vec![(1, 0.5, 0.01)]),
+            promoted(1, 1, None),
+        ];
+        let s = fold(one.clone());
+        let v = s.versus_trees.unwrap();
+        assert_eq!((v.model, v.cycle, v.p), (ModelId(1), 1, Some(0.01)));
+        assert!((v.trees_better_by.unwrap() - 0.2).abs() < 1e-12);
+        assert!(trees_lines(&v).contains("advice      boosted trees do 20% better"));
+        // Cycle 2 scores m1 again as the serving model: 20% but p = 0.3.
+        let mut two = one.clone();
+        two.push(scored(2, Some((1, 0.5)), 0.4, vec![(1, 0.5, 0.3)]));
+        let v = fold(two).versus_trees.unwrap();
+        assert_eq!((v.cycle, v.trees_better_by), (2, None));
+        assert!(!trees_lines(&v).contains("advice      "));
+        // A clear but small gap (4%) is not advice either.
+        let mut three = one;
+        let mut stale = three.clone();
+        three.push(scored(2, Some((1, 0.5)), 0.48, vec![(1, 0.5, 0.001)]));
+        let v = fold(three).versus_trees.unwrap();
+        assert_eq!(v.trees_better_by, None);
+        assert!(trees_lines(&v).contains("advice needs ≥ 10% and p ≤ 0.05"));
+        // The serving model has gone stale (0.9, far behind the trees), but
+        // this cycle's candidate m2, trained on the same rows, is close to
+        // them: no advice, the network is not the wrong tool.
+        stale.push(trained(2, 2, 0.42));
+        stale.push(scored(
+            2,
+            Some((1, 0.9)),
+            0.4,
+            vec![(2, 0.42, 0.2), (1, 0.9, 0.001)],
+        ));
+        let v = fold(stale).versus_trees.unwrap();
+        assert_eq!(
+            (v.model, v.network_loss, v.best_network),
+            (ModelId(1), 0.9, Some(ModelId(2)))
+        );
+        assert_eq!(v.trees_better_by, None);
+        assert!(!trees_lines(&v).contains("advice      "));
     }
 }

@@ -23,6 +23,7 @@ const GRID_LINE: RGBColor = RGBColor(0xe3, 0xe6, 0xe8);
 const FAINT_LINE: RGBColor = RGBColor(0xf3, 0xf4, 0xf5);
 const TRIVIAL: RGBColor = RGBColor(0xb0, 0x7d, 0x2b);
 const RIDGE: RGBColor = RGBColor(0x6b, 0x4f, 0xa0);
+const TREES: RGBColor = RGBColor(0x2e, 0x86, 0x8c);
 const GREEN: RGBColor = RGBColor(0x2a, 0x9d, 0x6f);
 const GREY: RGBColor = RGBColor(0x8a, 0x8f, 0x98);
 const RED: RGBColor = RGBColor(0xc8, 0x45, 0x3b);
@@ -161,14 +162,16 @@ fn integer_label(v: &f64) -> String {
 }
 
 /// Holdout loss of every candidate per cycle, marked by what became of it,
-/// with the cycle's ridge and trivial baselines as reference lines.
+/// with the cycle's ridge, boosted-trees and trivial baselines as
+/// reference lines.
 pub fn holdout(t: &Timeline) -> anyhow::Result<Option<String>> {
     let Some((lo, hi)) = log_bounds(
         t.candidates
             .iter()
             .map(|c| c.holdout_loss)
             .chain(t.baselines.iter().map(|b| b.trivial_loss))
-            .chain(t.baselines.iter().filter_map(|b| b.ridge_loss)),
+            .chain(t.baselines.iter().filter_map(|b| b.ridge_loss))
+            .chain(t.baselines.iter().filter_map(|b| b.trees_loss)),
     ) else {
         return Ok(None);
     };
@@ -212,9 +215,15 @@ pub fn holdout(t: &Timeline) -> anyhow::Result<Option<String>> {
                 .iter()
                 .filter_map(|b| Some((b.cycle as f64, b.ridge_loss.filter(|l| *l > 0.0)?)))
                 .collect();
+            let trees: Vec<(f64, f64)> = t
+                .baselines
+                .iter()
+                .filter_map(|b| Some((b.cycle as f64, b.trees_loss.filter(|l| *l > 0.0)?)))
+                .collect();
             for (points, colour, name) in [
                 (trivial, TRIVIAL, "trivial predictor"),
                 (ridge, RIDGE, "ridge baseline"),
+                (trees, TREES, "boosted trees"),
             ] {
                 if points.is_empty() {
                     continue;

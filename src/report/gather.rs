@@ -68,6 +68,23 @@ pub struct Baselines {
     pub cycle: u64,
     pub trivial_loss: f64,
     pub ridge_loss: Option<f64>,
+    /// The boosted trees (absent in cycles logged before they existed).
+    pub trees_loss: Option<f64>,
+    /// Every network scored in the cycle: its mean loss and the one-sided
+    /// p that the trees do better.
+    pub networks: Vec<(ModelId, f64, Option<f64>)>,
+}
+
+/// The boosted trees beside the best network of one cycle.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VersusTrees {
+    pub cycle: u64,
+    pub network: ModelId,
+    pub network_loss: f64,
+    pub trees_loss: f64,
+    /// How much better the trees do, when that is worth telling
+    /// (`trees::best_network_advice`).
+    pub trees_better_by: Option<f64>,
 }
 
 /// What happened to one arriving file.
@@ -132,6 +149,29 @@ impl Timeline {
     }
 }
 
+impl Timeline {
+    /// The last cycle's boosted trees beside its best network (the
+    /// candidates trained on its rows and the model serving then).
+    pub fn versus_trees(&self) -> Option<VersusTrees> {
+        let b = self
+            .baselines
+            .iter()
+            .rev()
+            .find(|b| b.trees_loss.is_some())?;
+        let trees_loss = b.trees_loss?;
+        let &(network, network_loss, _) = b.networks.iter().min_by(|x, y| x.1.total_cmp(&y.1))?;
+        let pairs: Vec<(f64, Option<f64>)> = b.networks.iter().map(|n| (n.1, n.2)).collect();
+        Some(VersusTrees {
+            cycle: b.cycle,
+            network,
+            network_loss,
+            trees_loss,
+            trees_better_by: crate::trees::best_network_advice(trees_loss, &pairs)
+                .map(|(_, share)| share),
+        })
+    }
+}
+
 /// Builds the report's series from log entries (oldest first).
 pub fn timeline(entries: &[Entry]) -> Timeline {
     let mut t = Timeline::default();
@@ -157,11 +197,18 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                 cycle,
                 trivial_loss,
                 ridge_loss,
+                trees_loss,
+                trees_versus,
                 ..
             } => t.baselines.push(Baselines {
                 cycle: *cycle,
                 trivial_loss: *trivial_loss,
                 ridge_loss: *ridge_loss,
+                trees_loss: *trees_loss,
+                networks: trees_versus
+                    .iter()
+                    .map(|v| (v.model, v.loss, v.p))
+                    .collect(),
             }),
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
@@ -430,6 +477,14 @@ mod tests {
                 ridge_problem: None,
                 serving: None,
                 serving_loss: None,
+                trees_loss: Some(3.0),
+                trees_rows: Some(300),
+                trees_problem: None,
+                trees_versus: vec![crate::audit::TreesVersus {
+                    model: ModelId(1),
+                    loss: 4.0,
+                    p: Some(0.01),
+                }],
             },
             Event::Promoted {
                 cycle: 1,
@@ -473,6 +528,15 @@ mod tests {
         assert_eq!(t.candidates[1].holdout_loss, 3.0);
         assert_eq!(t.baselines.len(), 1);
         assert_eq!(t.baselines[0].ridge_loss, Some(5.0));
+        // Model 1 (loss 4.0), the only network of cycle 1, against trees at
+        // 3.0 with p = 0.01: 25% better, worth telling. Cycle 2 logged no
+        // baselines.
+        let v = t.versus_trees().unwrap();
+        assert_eq!(
+            (v.cycle, v.network, v.network_loss, v.trees_loss),
+            (1, ModelId(1), 4.0, 3.0)
+        );
+        assert!((v.trees_better_by.unwrap() - 0.25).abs() < 1e-12);
         let stored: Vec<u64> = t.files.iter().map(|f| f.rows_stored).collect();
         assert_eq!(stored, vec![10, 10, 15, 15]);
         assert!(matches!(

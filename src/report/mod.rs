@@ -56,6 +56,33 @@ fn maybe(v: Option<f64>) -> String {
     v.map_or_else(|| "-".into(), |p| format!("{p:.4}"))
 }
 
+/// The last cycle's best network beside the boosted trees, with the advice when the
+/// trees do clearly better (advice only: the network keeps serving).
+fn trees_note(v: &gather::VersusTrees) -> String {
+    let model = v.network;
+    match v.trees_better_by {
+        Some(share) => note(&format!(
+            "Advice: boosted trees do {:.0}% better than the best network of cycle {} ({model}) on \
+             its holdout rows (mean loss {} against {}; at least {:.0}% lower, one-sided p ≤ {} with \
+             batches as clusters). The network may be the wrong tool for this data. It keeps \
+             serving: the trees are a reference, never a candidate.",
+            100.0 * share,
+            v.cycle,
+            loss(v.trees_loss),
+            loss(v.network_loss),
+            100.0 * crate::trees::ADVICE_MARGIN,
+            crate::trees::ADVICE_ALPHA
+        )),
+        None => note(&format!(
+            "The best network of cycle {} ({model}) against boosted trees on its holdout rows: \
+             mean loss {} against the trees' {}; no clear gap in the trees' favour.",
+            v.cycle,
+            loss(v.network_loss),
+            loss(v.trees_loss)
+        )),
+    }
+}
+
 /// Builds the report of `state` (read-only).
 pub fn build(
     state: &StateDir,
@@ -77,11 +104,16 @@ pub fn build(
         "Mean loss on the holdout rows of every candidate, by the retrain cycle that trained it; \
          the marker says what the log records as its latest fate, each fate with a shape of its own \
          as well as a colour. Dashed lines: the cycle's ridge \
-         regression and trivial predictor, fitted on the same rows and scored on the same holdout rows. \
+         regression, boosted trees and trivial predictor, fitted on the same rows (the trees on a \
+         sample of at most 20,000 of them) and scored on the same holdout rows; they are references, \
+         never candidates. \
          The table names the batches each model saw: those its own training could read, and those \
          it carries only through the weights it was warm-started from. A model that saw a batch \
          now set aside is marked.",
     );
+    if let Some(v) = t.versus_trees() {
+        s.push_str(&trees_note(&v));
+    }
     match charts::holdout(&t)? {
         Some(svg) => {
             charts += 1;

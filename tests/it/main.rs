@@ -23,4 +23,5 @@ mod support;
 mod suspect;
 mod tamper;
 mod training;
+mod trees;
 mod wine_stream;
