@@ -152,11 +152,17 @@ fn main() -> anyhow::Result<()> {
         return Ok(());
     }
 
-    // A model to score with (two quick epochs: speed, not quality).
+    // A model to score with (two quick epochs: speed, not quality). One
+    // file is one batch, too few for the gate to promote anything, so the
+    // benchmark scores with the cycle's candidate, promoted or not.
     let t = Instant::now();
-    cycle::run(&mut owner, cycle::Options::default(), "bench", None, None)?;
+    let outcome = cycle::run(&mut owner, cycle::Options::default(), "bench", None, None)?;
     println!("(cold model trained in {:.1} s)", t.elapsed().as_secs_f64());
-    let serving = owner.store.serving()?.expect("a model serves");
+    let serving = match outcome {
+        cycle::Outcome::Decided(report) => report.candidates.iter().find_map(|c| c.id),
+        cycle::Outcome::NothingNew { serving } => Some(serving),
+    }
+    .ok_or_else(|| anyhow::anyhow!("the cycle saved no candidate to score with"))?;
     let ck = tidegate::model::checkpoint::Checkpoint::load(
         &tidegate::model::checkpoint::model_dir(&state.models(), serving),
         &config.schema_fingerprint(),
