@@ -904,13 +904,26 @@ fn map_header(
     if !unknown.is_empty() {
         parts.push(format!("unknown column(s): {}", unknown.join(", ")));
     }
-    let expected: Vec<&str> = schema.columns.iter().map(|c| c.name.as_str()).collect();
+    let expected: Vec<&str> = schema
+        .columns
+        .iter()
+        .enumerate()
+        .filter(|(i, _)| Some(*i) != optional)
+        .map(|(_, c)| c.name.as_str())
+        .collect();
+    let and_maybe = optional.map_or_else(String::new, |t| {
+        format!(", and optionally the target {}", schema.columns[t].name)
+    });
     Err(format!(
-        "the header does not match the config: {}; expected these columns (any order): {}",
+        "{HEADER_MISMATCH}: {}; expected these columns (any order): {}{and_maybe}",
         parts.join("; "),
         expected.join(", ")
     ))
 }
+
+/// How a refusal for a header that names the wrong columns begins (the
+/// prediction endpoint, whose "header" is the rows' keys, rewords it).
+pub const HEADER_MISMATCH: &str = "the header does not match the config";
 
 #[cfg(test)]
 mod tests {

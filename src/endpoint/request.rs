@@ -124,7 +124,13 @@ impl CsvRows {
                 },
                 column: p.column.clone(),
                 value: p.value.clone(),
-                reason: p.reason.clone(),
+                // The CSV's header is made from the rows' keys.
+                reason: match p.reason.strip_prefix(crate::ingest::HEADER_MISMATCH) {
+                    Some(rest) if p.line <= 1 => {
+                        format!("the rows' keys do not match the config's columns{rest}")
+                    }
+                    _ => p.reason.clone(),
+                },
             })
             .collect();
         let first = problems.first().map_or_else(String::new, |p| {
@@ -449,6 +455,21 @@ mod tests {
                 .starts_with("2 problems in the rows, nothing was scored; first: row 2, column \"a\": not a number"),
             "{}",
             r.error
+        );
+        // A header that names the wrong columns is the rows' keys here.
+        let keys = rows.refusal(&Refusal {
+            problems: vec![Problem {
+                line: 1,
+                column: None,
+                field: None,
+                value: None,
+                reason: format!("{}: missing column(s): b", crate::ingest::HEADER_MISMATCH),
+            }],
+            total: 1,
+        });
+        assert_eq!(
+            keys.problems[0].reason,
+            "the rows' keys do not match the config's columns: missing column(s): b"
         );
         let body = r.to_json();
         assert_eq!(body["problems"][0]["row"], 2);

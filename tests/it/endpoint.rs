@@ -396,6 +396,19 @@ fn bad_requests_get_a_4xx_naming_the_row_column_and_reason() {
             assert_eq!(rows, vec![*r], "{body}: {v}");
         }
     }
+    // Keys that do not match the columns are named as keys, with what the
+    // endpoint expects (the target may be left out).
+    client.conn = None;
+    let (status, v) = client.post(&json!({"rows": [{"count": 0.1, "temp": 5}]}));
+    assert_eq!(status, 400);
+    let reason = v["problems"][0]["reason"].as_str().unwrap();
+    for words in [
+        "rows' keys",
+        "missing column(s): town",
+        "optionally the target y",
+    ] {
+        assert!(reason.contains(words), "{words:?} not in {reason}");
+    }
     // Not JSON; a body over the byte limit; the wrong method and path.
     let (status, text) = client.send("POST", "/predict", b"{\"rows\": [").unwrap();
     assert_eq!(status, 400);
