@@ -582,7 +582,12 @@ impl<C: Clock> Daemon<C> {
                 &mut fatal,
             ),
         };
+        // The prediction endpoint follows a rollback or approval before the
+        // command answers, so a client that rolled back is answered by the
+        // model it rolled back to from then on.
+        let folded = self.fold_audit();
         reply.send(answer);
+        folded?;
         // A command may have added rows or settled a waiting candidate.
         self.blocked_at = None;
         self.refresh()?;
@@ -766,10 +771,15 @@ impl<C: Clock> Daemon<C> {
                 answer
             }
         };
+        self.owner = Some(owner);
+        // The prediction endpoint moves to a promoted model before `retrain`
+        // answers, so a client that waited for the command is answered by
+        // the model it promoted.
+        let folded = self.fold_audit();
         if let Some((reply, _)) = running.and_then(|r| r.reply) {
             reply.send(answer);
         }
-        self.owner = Some(owner);
+        folded?;
         self.shared.lock().status.progress = None;
         self.refresh()?;
         if let Some(e) = fatal {
