@@ -345,6 +345,21 @@ pub struct TreesVersus {
     pub p: Option<f64>,
 }
 
+impl TreesVersus {
+    /// The network of a `baselines-scored` entry that the trees' advice is
+    /// judged against: the lowest mean loss (`trees::best_network`).
+    pub fn best(versus: &[TreesVersus]) -> Option<&TreesVersus> {
+        crate::trees::best_network(versus.iter().map(|v| v.loss)).map(|i| &versus[i])
+    }
+
+    /// The advice of a `baselines-scored` entry: the best network and how
+    /// much better the trees do, when worth telling (`trees::advice`).
+    pub fn advice(trees_loss: f64, versus: &[TreesVersus]) -> Option<(ModelId, f64)> {
+        let best = TreesVersus::best(versus)?;
+        crate::trees::advice(best.loss, trees_loss, best.p).map(|share| (best.model, share))
+    }
+}
+
 /// The fresh-data check's numbers as written in the log.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct FreshEvidence {
@@ -789,15 +804,12 @@ impl Event {
                         s.push_str(" (does not beat ridge)");
                     }
                 }
-                let networks: Vec<(f64, Option<f64>)> =
-                    trees_versus.iter().map(|v| (v.loss, v.p)).collect();
                 if let Some(t) = trees_loss
-                    && let Some((i, share)) = crate::trees::best_network_advice(*t, &networks)
+                    && let Some((best, share)) = TreesVersus::advice(*t, trees_versus)
                 {
                     s.push_str(&format!(
-                        "; boosted trees do {:.0}% better than the best network ({})",
+                        "; boosted trees do {:.0}% better than the best network ({best})",
                         100.0 * share,
-                        trees_versus[i].model
                     ));
                 }
                 s

@@ -796,12 +796,19 @@ pub fn best_network_advice(
     trees_loss: f64,
     networks: &[(f64, Option<f64>)],
 ) -> Option<(usize, f64)> {
-    let (i, &(loss, p)) = networks
-        .iter()
-        .enumerate()
-        .filter(|(_, n)| n.0.is_finite())
-        .min_by(|a, b| a.1.0.total_cmp(&b.1.0))?;
+    let i = best_network(networks.iter().map(|n| n.0))?;
+    let (loss, p) = networks[i];
     advice(loss, trees_loss, p).map(|share| (i, share))
+}
+
+/// Index of the network with the lowest finite mean loss, the one the
+/// trees' advice is judged against.
+pub fn best_network(losses: impl Iterator<Item = f64>) -> Option<usize> {
+    losses
+        .enumerate()
+        .filter(|(_, l)| l.is_finite())
+        .min_by(|a, b| a.1.total_cmp(&b.1))
+        .map(|(i, _)| i)
 }
 
 /// How much lower the trees' mean holdout loss is than a network's, as a

@@ -6,7 +6,7 @@ use std::collections::{BTreeMap, BTreeSet};
 use serde::Serialize;
 
 use super::{Cli, Exit, emit};
-use crate::audit::{Entry, Event, FreshEvidence};
+use crate::audit::{Entry, Event, FreshEvidence, TreesVersus};
 use crate::ids::{BatchId, ModelId};
 use crate::state::{self, StateDir};
 
@@ -101,7 +101,7 @@ pub struct VersusTrees {
     pub best_network: Option<ModelId>,
     /// How much lower the trees' loss is than the best network's, as a
     /// share of it, when that is worth telling
-    /// (`trees::best_network_advice`); advice, never a switch.
+    /// (`audit::TreesVersus::advice`); advice, never a switch.
     pub trees_better_by: Option<f64>,
 }
 
@@ -226,13 +226,6 @@ impl Summary {
                             );
                         }
                         if let Some(trees) = trees_loss {
-                            let networks: Vec<(f64, Option<f64>)> =
-                                trees_versus.iter().map(|v| (v.loss, v.p)).collect();
-                            let best = networks
-                                .iter()
-                                .enumerate()
-                                .min_by(|a, b| a.1.0.total_cmp(&b.1.0))
-                                .map(|(i, _)| trees_versus[i].model);
                             vs_trees.insert(
                                 model,
                                 VersusTrees {
@@ -244,11 +237,9 @@ impl Summary {
                                         .iter()
                                         .find(|v| v.model == model)
                                         .and_then(|v| v.p),
-                                    best_network: best,
-                                    trees_better_by: crate::trees::best_network_advice(
-                                        *trees, &networks,
-                                    )
-                                    .map(|(_, share)| share),
+                                    best_network: TreesVersus::best(trees_versus).map(|v| v.model),
+                                    trees_better_by: TreesVersus::advice(*trees, trees_versus)
+                                        .map(|(_, share)| share),
                                 },
                             );
                         }

@@ -72,7 +72,7 @@ pub struct Baselines {
     pub trees_loss: Option<f64>,
     /// Every network scored in the cycle: its mean loss and the one-sided
     /// p that the trees do better.
-    pub networks: Vec<(ModelId, f64, Option<f64>)>,
+    pub networks: Vec<crate::audit::TreesVersus>,
 }
 
 /// The boosted trees beside the best network of one cycle.
@@ -83,7 +83,7 @@ pub struct VersusTrees {
     pub network_loss: f64,
     pub trees_loss: f64,
     /// How much better the trees do, when that is worth telling
-    /// (`trees::best_network_advice`).
+    /// (`audit::TreesVersus::advice`).
     pub trees_better_by: Option<f64>,
 }
 
@@ -159,14 +159,13 @@ impl Timeline {
             .rev()
             .find(|b| b.trees_loss.is_some())?;
         let trees_loss = b.trees_loss?;
-        let &(network, network_loss, _) = b.networks.iter().min_by(|x, y| x.1.total_cmp(&y.1))?;
-        let pairs: Vec<(f64, Option<f64>)> = b.networks.iter().map(|n| (n.1, n.2)).collect();
+        let best = crate::audit::TreesVersus::best(&b.networks)?;
         Some(VersusTrees {
             cycle: b.cycle,
-            network,
-            network_loss,
+            network: best.model,
+            network_loss: best.loss,
             trees_loss,
-            trees_better_by: crate::trees::best_network_advice(trees_loss, &pairs)
+            trees_better_by: crate::audit::TreesVersus::advice(trees_loss, &b.networks)
                 .map(|(_, share)| share),
         })
     }
@@ -205,10 +204,7 @@ pub fn timeline(entries: &[Entry]) -> Timeline {
                 trivial_loss: *trivial_loss,
                 ridge_loss: *ridge_loss,
                 trees_loss: *trees_loss,
-                networks: trees_versus
-                    .iter()
-                    .map(|v| (v.model, v.loss, v.p))
-                    .collect(),
+                networks: trees_versus.clone(),
             }),
             Event::Promoted { model, .. } => {
                 fates.insert(*model, Fate::Promoted);
