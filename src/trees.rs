@@ -558,20 +558,11 @@ fn sample(spec: &FeatureSpec, parts: &[&RowMatrix], limit: usize) -> RowMatrix {
                 .map(|r| (p, r)),
         );
     }
-    if at.len() > limit {
-        // Partial Fisher–Yates: the first `limit` places are a uniform
-        // sample without replacement.
-        let mut rng = Rng::new(SAMPLE_SEED);
-        for i in 0..limit {
-            let j = i + rng.below(at.len() - i);
-            at.swap(i, j);
-        }
-        at.truncate(limit);
-        at.sort_unstable();
-    }
+    let chosen = crate::sample::choose(at.len(), limit, &mut Rng::new(SAMPLE_SEED));
     let width = parts.first().map_or(1, |p| p.width());
-    let mut out = RowMatrix::with_capacity(width, at.len());
-    for (p, r) in at {
+    let mut out = RowMatrix::with_capacity(width, chosen.len());
+    for i in chosen {
+        let (p, r) = at[i];
         out.push_row(parts[p].row(r));
     }
     out
