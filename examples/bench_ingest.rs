@@ -106,11 +106,7 @@ fn main() -> anyhow::Result<()> {
     let text = config_text();
     let config = Config::parse(&text, &dir.join("bench.toml"))?;
     let schema = tidegate::schema::Schema::from_config(&config);
-    let limits = ingest::Limits {
-        max_file_bytes: config.data.max_file_bytes,
-        max_field_bytes: config.data.max_field_bytes,
-        holdout_fraction: *config.data.holdout_fraction.get_ref(),
-    };
+    let limits = ingest::Limits::of(&config);
     let t = Instant::now();
     let parsed_batch = ingest::parse(&bytes, &schema, &Default::default(), &limits)
         .map_err(|r| anyhow::anyhow!("{:?}", r.problems.first()))?;

@@ -26,6 +26,17 @@ pub struct Limits {
     pub holdout_fraction: f64,
 }
 
+impl Limits {
+    /// The limits and split of `config`'s `[data]`.
+    pub fn of(config: &crate::config::Config) -> Limits {
+        Limits {
+            max_file_bytes: config.data.max_file_bytes,
+            max_field_bytes: config.data.max_field_bytes,
+            holdout_fraction: *config.data.holdout_fraction.get_ref(),
+        }
+    }
+}
+
 /// The bytes of one file as they were read, and their identity.
 #[derive(Debug, Clone)]
 pub struct RawFile {

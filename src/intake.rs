@@ -128,11 +128,7 @@ pub fn take_file(
     user: &str,
     now: DateTime<Utc>,
 ) -> Result<Outcome, StateError> {
-    let limits = Limits {
-        max_file_bytes: owner.config.data.max_file_bytes,
-        max_field_bytes: owner.config.data.max_field_bytes,
-        holdout_fraction: *owner.config.data.holdout_fraction.get_ref(),
-    };
+    let limits = Limits::of(&owner.config);
     let name = display_name(path);
     let raw = match ingest::read_file(path, limits.max_file_bytes) {
         Ok(r) => r,

@@ -71,11 +71,7 @@ impl Scorer {
             checkpoint,
             schema: Schema::from_config(config),
             vocabs,
-            limits: Limits {
-                max_file_bytes: config.data.max_file_bytes,
-                max_field_bytes: config.data.max_field_bytes,
-                holdout_fraction: *config.data.holdout_fraction.get_ref(),
-            },
+            limits: Limits::of(config),
             backend: config.training.predict_backend,
         })
     }

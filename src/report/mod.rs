@@ -272,11 +272,7 @@ pub fn build(
     let served = match loaded {
         Err(why) => Err(why),
         Ok(cp) => {
-            let limits = Limits {
-                max_file_bytes: config.data.max_file_bytes,
-                max_field_bytes: config.data.max_field_bytes,
-                holdout_fraction: *config.data.holdout_fraction.get_ref(),
-            };
+            let limits = Limits::of(config);
             let mut vocabs = cp.manifest.vocabularies();
             // Rows set aside are read (their new values keep the codes in
             // step with the store's) but not drawn or scored.
