@@ -75,11 +75,6 @@ impl Slot {
         }
     }
 
-    /// The id of the model in service, if any.
-    pub fn model(&self) -> Option<ModelId> {
-        self.current().ok().map(|s| s.id)
-    }
-
     fn put(&self, holding: Holding) {
         *self.holding.write().unwrap_or_else(|e| e.into_inner()) = holding;
     }
