@@ -32,6 +32,7 @@ pub mod records;
 pub mod refold;
 pub mod report;
 pub mod rng;
+pub mod rowfile;
 pub mod sample;
 pub mod schema;
 pub mod scoring;
