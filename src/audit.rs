@@ -65,6 +65,19 @@ pub enum Event {
         /// batch is stored and set aside in this same entry.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         suspect: Option<SuspectEvidence>,
+        /// The batch's row file, written before this entry (absent in
+        /// entries from before rows were kept in files; their rows were
+        /// moved to a file later, under a `rows-written` entry).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        rows_file: Option<crate::rowfile::FileRef>,
+    },
+    /// A stored batch's rows were written to a new row file: when a store
+    /// from before row files is upgraded, or when a schema migration
+    /// rewrites every batch. The file named here replaces any earlier one.
+    RowsWritten {
+        batch: BatchId,
+        rows_file: crate::rowfile::FileRef,
+        reason: String,
     },
     /// An operator set a stored batch aside: its rows stay stored and
     /// archived, and nothing reads them until it is brought back.
@@ -587,6 +600,7 @@ impl Event {
             Event::RolledBack { .. } => "rolled-back",
             Event::ModelExported { .. } => "model-exported",
             Event::FolderRenamed { .. } => "folder-renamed",
+            Event::RowsWritten { .. } => "rows-written",
         }
     }
 
@@ -614,6 +628,7 @@ impl Event {
         "rolled-back",
         "model-exported",
         "folder-renamed",
+        "rows-written",
     ];
 
     /// Kind names that older versions wrote, and what they are called now:
@@ -657,7 +672,8 @@ impl Event {
         match self {
             Event::BatchAccepted { batch, .. }
             | Event::BatchSetAside { batch, .. }
-            | Event::BatchBroughtBack { batch, .. } => Some(*batch),
+            | Event::BatchBroughtBack { batch, .. }
+            | Event::RowsWritten { batch, .. } => Some(*batch),
             Event::BatchDuplicate { duplicate_of, .. } => Some(*duplicate_of),
             Event::FreshChecked { check } => Some(check.batch),
             _ => None,
@@ -909,6 +925,14 @@ impl Event {
             } => {
                 format!("{to} serves again instead of {from} ({how}): {reason}")
             }
+            Event::RowsWritten {
+                batch,
+                rows_file,
+                reason,
+            } => format!(
+                "rows of {batch} written to rows/{} ({} bytes): {reason}",
+                rows_file.name, rows_file.bytes
+            ),
             Event::FolderRenamed { from, to, files } => format!(
                 "{from}/ renamed to {to}/ ({files} file{}); earlier entries' {from}/ paths are now under {to}/",
                 if *files == 1 { "" } else { "s" }

@@ -29,7 +29,7 @@ const FORMAT: u32 = 1;
 /// Folders copied file by file (the store is copied by `Store::copy_to`).
 /// ("rejected" is the refused files' folder in state dirs from before the name
 /// was settled: copied as it is, moved by the restored dir's first owner.)
-const FOLDERS: [&str; 4] = ["archive", "refused", "rejected", "models"];
+const FOLDERS: [&str; 5] = ["archive", "refused", "rejected", "models", "rows"];
 /// Single files copied when present.
 const FILES: [&str; 3] = ["tidegate.toml", "audit.jsonl", "serving"];
 

@@ -506,6 +506,15 @@ impl Config {
                     ),
                 );
             }
+            if crate::rowfile::RESERVED.contains(&name.as_str()) {
+                return fail(
+                    col.name.span(),
+                    format!(
+                        "column name {name:?} is reserved: the row files carry a column of that name; rename the column (e.g. {:?})",
+                        format!("{name}_value")
+                    ),
+                );
+            }
             if !seen.insert(name.as_str()) {
                 return fail(
                     col.name.span(),
@@ -1133,6 +1142,16 @@ kind = "number"
         let (line, _, msg) = err_at(&text);
         assert_eq!(line, 11);
         assert!(msg.contains("twice"), "{msg}");
+    }
+
+    #[test]
+    fn reserved_column_names_are_refused() {
+        for reserved in crate::rowfile::RESERVED {
+            let text = MINIMAL.replace("name = \"x\"", &format!("name = \"{reserved}\""));
+            let (line, col, msg) = err_at(&text);
+            assert_eq!((line, col), (7, 8), "{msg}");
+            assert!(msg.contains("reserved"), "{msg}");
+        }
     }
 
     #[test]

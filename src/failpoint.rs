@@ -25,6 +25,10 @@ pub const POINTS: &[&str] = &[
     // Intake of one file (`intake::take_file`).
     "intake:after-validate",
     "intake:after-pending",
+    // After a batch's row file is written and synced, before the store
+    // transaction that names it (`store::write_rows_file`; also when an old
+    // store's rows are moved to files, or a migration rewrites them).
+    "store:after-row-file",
     // Inside the store transaction, after some of its writes are staged:
     // nothing of it may become visible.
     "store:mid-transaction",

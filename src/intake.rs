@@ -41,7 +41,7 @@ pub enum Source {
 #[derive(Debug, Clone)]
 pub enum Outcome {
     Accepted {
-        batch: BatchRecord,
+        batch: Box<BatchRecord>,
         entry: Entry,
     },
     Duplicate {
@@ -312,7 +312,7 @@ fn commit_and_archive(
     crate::failpoint::hit("intake:after-archive").map_err(io_at(&archived))?;
     remove_source(path, source)?;
     Ok(Outcome::Accepted {
-        batch: record,
+        batch: Box::new(record),
         entry,
     })
 }

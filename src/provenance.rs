@@ -291,6 +291,7 @@ pub(crate) mod fixtures {
             new_category_counts: Default::default(),
             drift: None,
             suspect: suspect.then(flagged),
+            rows_file: None,
         }
     }
 

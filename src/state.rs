@@ -43,6 +43,10 @@ impl StateDir {
     pub fn archive(&self) -> PathBuf {
         self.root.join("archive")
     }
+    /// The row files: one Parquet file per accepted batch.
+    pub fn rows(&self) -> PathBuf {
+        crate::store::rows_dir_of(&self.store())
+    }
     /// Refused files and their reasons.
     pub fn refused(&self) -> PathBuf {
         self.root.join(REFUSED)
@@ -260,6 +264,12 @@ pub struct Recovery {
     /// Batches stored without their fresh-data check (a crash or failure
     /// between the commit and the check) whose check ran now.
     pub fresh_checks_run: usize,
+    /// Row files no batch record named (written by a commit a crash cut
+    /// short, or replaced since), deleted.
+    pub row_files_dropped: usize,
+    /// Batches of a store from before row files whose rows were moved to
+    /// row files now.
+    pub rows_moved: usize,
 }
 
 /// Opens a state dir as its owner: takes the lock, opens the store, then
@@ -301,6 +311,7 @@ fn open_with(
         state.refused(),
         state.former_refused(),
         state.models(),
+        state.rows(),
     ] {
         if dir.is_dir() {
             rec.stale_temps += fsutil::remove_stale_temps(&dir).map_err(io_at(&dir))?;
@@ -310,6 +321,7 @@ fn open_with(
     let (archived, dropped) = crate::intake::settle_pending(state, &store)?;
     rec.pending_archived = archived;
     rec.pending_dropped = dropped;
+    rec.row_files_dropped = store.drop_unnamed_row_files()?;
     // The store is the authority on which model serves; the `serving` file
     // is its mirror for read-only commands, rewritten if a crash left it behind.
     if let Some(id) = store.serving()? {
@@ -326,6 +338,10 @@ fn open_with(
     }
     crate::failpoint::hit("state:before-catch-up").map_err(io_at(&state.audit()))?;
     if catch_up_log {
+        // Before the log is caught up, so that the mirror gets the entries.
+        rec.rows_moved = store
+            .move_rows_to_files(&current_user(), chrono::Utc::now())?
+            .len();
         rec.audit_reappended = mirror.catch_up(&store.audit_entries()?)?;
         rec.abandoned_cycle = close_open_cycle(&mut store, &mirror, &current_user())?;
         rec.refused_moved = rename_refused_folder(state, &mut store, &mirror, &current_user())?;

@@ -1,5 +1,20 @@
-//! The only user of sled: typed keys, trees, one transaction per change,
-//! durable flushes, and the read-back API for rows.
+//! The only user of sled, and the keeper of the row files: typed keys,
+//! trees, one transaction per change, durable flushes, and the read-back
+//! API for rows.
+//!
+//! Rows live in one Parquet file per accepted batch in the `rows/` folder
+//! beside the store (`rowfile` has the layout). A file is written and
+//! fsynced before the transaction that records it in the batch record and
+//! the audit entry; a file that no batch record names (a crash between the
+//! two) is deleted by the next owner's start (`drop_unnamed_row_files`).
+//! sled keeps the index, vocabularies, running statistics, the serving
+//! pointer and the audit tree.
+//!
+//! Stores written before row files kept rows in the `chunks` tree; they
+//! are read as before until the owner's start moves each batch to a file
+//! (`move_rows_to_files`, one transaction and one `rows-written` entry per
+//! batch, so a crash at any point leaves every batch in one place or the
+//! other).
 //!
 //! Trees and their keys (integers big-endian, so scans come back in order):
 //!
@@ -10,7 +25,7 @@
 //! | `meta`    | `arrival/` + `ModelId`                | previous `ModelId` (0: none), rollback byte |
 //! | `batches` | `BatchId`                             | JSON `BatchRecord`             |
 //! | `hashes`  | blake3 of the file (32 bytes)         | `BatchId`                      |
-//! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s    |
+//! | `chunks`  | `BatchId`, split byte, chunk `u32`    | cells, little-endian `u32`s (stores from before row files, until moved) |
 //! | `vocab`   | column `u32`, code `u32`              | the category text              |
 //! | `audit`   | `AuditSeq`                            | the entry's JSON line          |
 //!
@@ -28,14 +43,8 @@ use sled::{Transactional, Tree};
 use crate::audit::{self, Entry, Event};
 use crate::ids::{AuditSeq, BatchId, ModelId};
 use crate::ingest::Batch;
+use crate::rowfile::{self, FileRef, RowFile, RowFileError};
 use crate::schema::{ColumnStats, RowMatrix, Schema, Vocab, Vocabularies};
-
-/// Largest number of cells in one chunk value (6 KiB). sled keeps up to 17
-/// values in one leaf and writes a leaf larger than 128 KiB (a quarter of
-/// its 512 KiB segment) to a separate blob file that it never fsyncs; at
-/// 6 KiB a full leaf stays near 105 KiB, inside the synced log. Stores
-/// written with larger chunks read the same (a chunk is any whole rows).
-const CHUNK_CELLS: usize = 1536;
 
 /// Which side of the holdout split.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -66,6 +75,10 @@ pub struct BatchRecord {
     pub audit_seq: AuditSeq,
     /// Number-column statistics of the batch's training rows.
     pub train_stats: ColumnStats,
+    /// The batch's row file in `rows/`; absent in a store from before row
+    /// files until its rows are moved (their chunks are read meanwhile).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rows_file: Option<FileRef>,
     /// Set when the batch is set aside: stored, but not read by training,
     /// holdout scoring, baselines, drift or the fresh-data check. Absent in
     /// records written before batches could be set aside.
@@ -140,6 +153,8 @@ pub enum StoreError {
 /// The open store of one state dir. Holding it means holding `state/LOCK`.
 pub struct Store {
     path: PathBuf,
+    /// The row files' folder (`rows/` beside the store's folder).
+    rows_dir: PathBuf,
     db: sled::Db,
     meta: Tree,
     batches: Tree,
@@ -251,6 +266,7 @@ impl Store {
         let tree = |name: &str| db.open_tree(name).map_err(sl);
         Ok(Store {
             path: path.to_path_buf(),
+            rows_dir: rows_dir_of(path),
             meta: tree("meta")?,
             batches: tree("batches")?,
             hashes: tree("hashes")?,
@@ -270,6 +286,13 @@ impl Store {
         StoreError::Sled {
             path: self.path.clone(),
             source,
+        }
+    }
+
+    fn row_file_err(&self, e: RowFileError) -> StoreError {
+        match e {
+            RowFileError::Io { path, source } => StoreError::Io { path, source },
+            RowFileError::Bad { path, what } => StoreError::Corrupt { path, what },
         }
     }
 
@@ -383,51 +406,25 @@ impl Store {
         BatchId(self.totals.batches + 1)
     }
 
-    /// About `max` rows of one side of the split, spread over the whole
-    /// store: whole chunks at an even stride, then thinned evenly. Only the
-    /// chosen chunks are decoded, so the cost does not grow with the store.
-    /// Deterministic; all rows when there are at most `max`.
+    /// About `max` rows of one side of the split, spread evenly over the
+    /// whole store (set-aside batches left out): only the row groups that
+    /// hold the chosen rows are decoded, so the cost grows with the
+    /// sample, not with the store. Deterministic; all rows when there are
+    /// at most `max`.
     pub fn sample_rows(&self, split: Split, max: usize) -> Result<RowMatrix, StoreError> {
-        let total = match split {
-            Split::Train => self.totals.train_rows,
-            Split::Holdout => self.totals.holdout_rows,
-        };
-        let total = usize::try_from(total).unwrap_or(usize::MAX);
+        let total = self.row_count(split, None, None)?;
         if max == 0 || total <= max {
             return self.rows(split, None, None);
         }
-        let width = self.schema.width();
-        let per_chunk = rows_per_chunk(width);
-        // Batches end in part-filled chunks, so there are at least this many.
-        let chunks = total.div_ceil(per_chunk);
-        let wanted = (2 * max).div_ceil(per_chunk).max(1);
-        let stride = (chunks / wanted).max(1);
-        let mut out = RowMatrix::new(width);
-        // Chunk keys come from the batch records, so only the chosen chunks
-        // are read from sled (a store written with larger chunks just
-        // yields fewer, fuller ones).
-        let mut index = 0usize;
-        for rec in self.batches_in(None, None)? {
-            let n = split_rows(&rec, split);
-            for chunk in 0..n.div_ceil(per_chunk) {
-                index += 1;
-                if !(index - 1).is_multiple_of(stride) {
-                    continue;
-                }
-                let Some(v) = self
-                    .chunks
-                    .get(chunk_key(rec.id, split, chunk))
-                    .map_err(|e| self.sled_err(e))?
-                else {
-                    continue;
-                };
-                out.extend(&self.decode_chunk(rec.id, &v)?);
-            }
-        }
-        Ok(crate::drift::thin(&out, max))
+        // Even spacing: row i * total / max for i < max, strictly ascending
+        // because total > max.
+        let positions: Vec<usize> = (0..max)
+            .map(|i| (i as u128 * total as u128 / max as u128) as usize)
+            .collect();
+        self.rows_at(split, None, None, &positions)
     }
 
-    /// The rows of one stored chunk value.
+    /// The rows of one stored chunk value (stores from before row files).
     fn decode_chunk(&self, batch: BatchId, value: &[u8]) -> Result<RowMatrix, StoreError> {
         let width = self.schema.width();
         if !value.len().is_multiple_of(4 * width) {
@@ -440,6 +437,83 @@ impl Store {
         Ok(RowMatrix::from_cells(width, cells))
     }
 
+    /// Rows of one split of a batch whose rows are still in `chunks`.
+    fn chunk_rows(&self, batch: BatchId, split: Split) -> Result<RowMatrix, StoreError> {
+        let mut prefix = batch.key().to_vec();
+        prefix.push(split.byte());
+        let mut out = RowMatrix::new(self.schema.width());
+        for kv in self.chunks.scan_prefix(prefix) {
+            let (_, v) = kv.map_err(|e| self.sled_err(e))?;
+            out.extend(&self.decode_chunk(batch, &v)?);
+        }
+        Ok(out)
+    }
+
+    /// The path of a row file.
+    pub fn row_file_path(&self, file: &FileRef) -> PathBuf {
+        self.rows_dir.join(&file.name)
+    }
+
+    /// The folder of the row files.
+    pub fn rows_dir(&self) -> &Path {
+        &self.rows_dir
+    }
+
+    /// Appends the rows of `split` of one batch to `out`: all of them, or
+    /// those at `wanted` (strictly ascending positions within the batch's
+    /// split).
+    fn read_batch(
+        &self,
+        rec: &BatchRecord,
+        split: Split,
+        wanted: Option<&[usize]>,
+        out: &mut RowMatrix,
+    ) -> Result<(), StoreError> {
+        let n = split_rows(rec, split);
+        if n == 0 || wanted.is_some_and(<[usize]>::is_empty) {
+            return Ok(());
+        }
+        match &rec.rows_file {
+            Some(file) => {
+                let f = RowFile::open(
+                    &self.row_file_path(file),
+                    &self.schema,
+                    rec.id,
+                    rec.train_rows as usize,
+                    rec.holdout_rows as usize,
+                )
+                .map_err(|e| self.row_file_err(e))?;
+                f.read(&self.schema, &self.vocabs, split, wanted, out)
+                    .map_err(|e| self.row_file_err(e))
+            }
+            None => {
+                let rows = self.chunk_rows(rec.id, split)?;
+                if rows.n_rows() != n {
+                    return Err(self.corrupt(format!(
+                        "batch {} holds {} {split:?} rows, its record says {n}",
+                        rec.id,
+                        rows.n_rows()
+                    )));
+                }
+                match wanted {
+                    None => out.extend(&rows),
+                    Some(w) => {
+                        if let Some(&last) = w.last()
+                            && last >= n
+                        {
+                            return Err(self.corrupt(format!(
+                                "position {last} is past the {n} rows of batch {}",
+                                rec.id
+                            )));
+                        }
+                        out.extend(&rows.select(w));
+                    }
+                }
+                Ok(())
+            }
+        }
+    }
+
     /// Rows of one split, for batches in `from..=to` (all when `None`),
     /// leaving out batches set aside.
     pub fn rows(
@@ -448,41 +522,19 @@ impl Store {
         from: Option<BatchId>,
         to: Option<BatchId>,
     ) -> Result<RowMatrix, StoreError> {
-        self.rows_of(split, from, to, false)
+        let mut out = RowMatrix::new(self.schema.width());
+        for rec in self.records_in(from, to, false)? {
+            self.read_batch(&rec, split, None, &mut out)?;
+        }
+        Ok(out)
     }
 
     /// Rows of one split of one batch, also when it is set aside (for
     /// checking, verifying and migrating the stored rows themselves).
     pub fn batch_rows(&self, split: Split, batch: BatchId) -> Result<RowMatrix, StoreError> {
-        self.rows_of(split, Some(batch), Some(batch), true)
-    }
-
-    fn rows_of(
-        &self,
-        split: Split,
-        from: Option<BatchId>,
-        to: Option<BatchId>,
-        with_aside: bool,
-    ) -> Result<RowMatrix, StoreError> {
-        let width = self.schema.width();
-        let mut out = RowMatrix::new(width);
-        let lo = from.unwrap_or(BatchId(0));
-        let hi = to.unwrap_or(BatchId(u64::MAX));
-        for kv in self.chunks.range(lo.key()..) {
-            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
-            // A key too short for its batch id and split byte is damage,
-            // not a reason to panic.
-            let (Some(id), Some(&split_byte)) = (k.get(..8).and_then(BatchId::from_key), k.get(8))
-            else {
-                return Err(self.corrupt(format!("bad chunk key {:02x?}", &k[..])));
-            };
-            if id > hi {
-                break;
-            }
-            if split_byte != split.byte() || (!with_aside && self.aside.contains(&id)) {
-                continue;
-            }
-            out.extend(&self.decode_chunk(id, &v)?);
+        let mut out = RowMatrix::new(self.schema.width());
+        for rec in self.records_in(Some(batch), Some(batch), true)? {
+            self.read_batch(&rec, split, None, &mut out)?;
         }
         Ok(out)
     }
@@ -494,6 +546,17 @@ impl Store {
         from: Option<BatchId>,
         to: Option<BatchId>,
     ) -> Result<Vec<BatchRecord>, StoreError> {
+        self.records_in(from, to, false)
+    }
+
+    /// Batch records with ids in `from..=to`, with or without the batches
+    /// set aside, in order.
+    fn records_in(
+        &self,
+        from: Option<BatchId>,
+        to: Option<BatchId>,
+        with_aside: bool,
+    ) -> Result<Vec<BatchRecord>, StoreError> {
         let lo = from.unwrap_or(BatchId(0));
         let hi = to.unwrap_or(BatchId(u64::MAX));
         if lo > hi {
@@ -504,7 +567,7 @@ impl Store {
             let (_, v) = kv.map_err(|e| self.sled_err(e))?;
             let rec: BatchRecord = serde_json::from_slice(&v)
                 .map_err(|e| self.corrupt(format!("batch record: {e}")))?;
-            if !self.aside.contains(&rec.id) {
+            if with_aside || !self.aside.contains(&rec.id) {
                 out.push(rec);
             }
         }
@@ -542,10 +605,10 @@ impl Store {
     }
 
     /// The rows at `positions` (strictly ascending indices into what
-    /// `rows(split, from, to)` returns) in that order, reading only the
-    /// chunks that hold them: memory and decoding grow with the sample, not
-    /// with the store. Panics when `positions` is not ascending or reaches
-    /// past the last row.
+    /// `rows(split, from, to)` returns) in that order, decoding only the
+    /// row groups that hold them: memory and decoding grow with the
+    /// sample, not with the store. Panics when `positions` is not
+    /// ascending or reaches past the last row.
     pub fn rows_at(
         &self,
         split: Split,
@@ -558,60 +621,18 @@ impl Store {
             "positions must be strictly ascending"
         );
         let width = self.schema.width();
-        let row_bytes = 4 * width;
         let mut out = RowMatrix::with_capacity(width, positions.len());
         let mut next = positions.iter().copied().peekable();
-        let mut cells = vec![0u32; width];
         let mut base = 0;
+        let mut local = Vec::new();
         for rec in self.batches_in(from, to)? {
             let n = split_rows(&rec, split);
-            let mut held: Option<(usize, sled::IVec)> = None;
-            // Rows per chunk as this batch was written (stores from before
-            // the chunk size changed hold larger chunks): every chunk but
-            // the last is full, so the first one tells.
-            let mut per_chunk = 0;
+            local.clear();
             while let Some(pos) = next.next_if(|&p| p < base + n) {
-                if per_chunk == 0 {
-                    let first = self
-                        .chunks
-                        .get(chunk_key(rec.id, split, 0))
-                        .map_err(|e| self.sled_err(e))?
-                        .ok_or_else(|| {
-                            self.corrupt(format!("batch {} lacks row chunk 0", rec.id))
-                        })?;
-                    per_chunk = (first.len() / row_bytes).max(1);
-                    held = Some((0, first));
-                }
-                let r = pos - base;
-                let chunk = r / per_chunk;
-                if held.as_ref().is_none_or(|(c, _)| *c != chunk) {
-                    let key = chunk_key(rec.id, split, chunk);
-                    let value = self
-                        .chunks
-                        .get(key)
-                        .map_err(|e| self.sled_err(e))?
-                        .ok_or_else(|| {
-                            self.corrupt(format!("batch {} lacks row chunk {chunk}", rec.id))
-                        })?;
-                    if value.len() % row_bytes != 0 {
-                        return Err(
-                            self.corrupt(format!("chunk of batch {} is not whole rows", rec.id))
-                        );
-                    }
-                    held = Some((chunk, value));
-                }
-                let (_, value) = held.as_ref().expect("a chunk is held");
-                let at = (r % per_chunk) * row_bytes;
-                let bytes = value.get(at..at + row_bytes).ok_or_else(|| {
-                    self.corrupt(format!(
-                        "batch {} holds fewer rows than its record says",
-                        rec.id
-                    ))
-                })?;
-                for (c, b) in cells.iter_mut().zip(bytes.chunks_exact(4)) {
-                    *c = u32::from_le_bytes(b.try_into().expect("4 bytes"));
-                }
-                out.push_row(&cells);
+                local.push(pos - base);
+            }
+            if !local.is_empty() {
+                self.read_batch(&rec, split, Some(&local), &mut out)?;
             }
             base += n;
         }
@@ -656,11 +677,162 @@ impl Store {
 
     /// Seals the next audit entry for `event` onto the chain.
     fn seal(&self, event: Event, user: &str, time: chrono::DateTime<chrono::Utc>) -> Entry {
-        let (seq, prev) = match &self.last_audit {
-            Some((s, h)) => (s.next(), h.clone()),
-            None => (AuditSeq(1), audit::GENESIS.to_string()),
+        seal_after(self.last_audit.as_ref(), event, user, time)
+    }
+
+    /// Writes a batch's row file into `rows/` and makes it durable (file
+    /// and folder synced) before any transaction names it. `texts` gives
+    /// the text of every category code the rows use.
+    fn write_rows_file(
+        &self,
+        batch: BatchId,
+        schema: &Schema,
+        texts: &dyn rowfile::Texts,
+        train: &RowMatrix,
+        holdout: &RowMatrix,
+    ) -> Result<FileRef, StoreError> {
+        let bytes = rowfile::encode(schema, texts, batch, train, holdout)
+            .map_err(|e| self.row_file_err(e))?;
+        let hash = blake3::hash(&bytes);
+        let file = FileRef {
+            name: rowfile::file_name(batch, &hash),
+            hash: hash.to_hex().to_string(),
+            bytes: bytes.len() as u64,
         };
-        Entry::seal(seq, time, user, event, &prev)
+        let io = |path: PathBuf| move |source| StoreError::Io { path, source };
+        if !self.rows_dir.is_dir() {
+            std::fs::create_dir_all(&self.rows_dir).map_err(io(self.rows_dir.clone()))?;
+            if let Some(parent) = self.rows_dir.parent() {
+                crate::fsutil::sync_dir(parent).map_err(io(parent.to_path_buf()))?;
+            }
+        }
+        let path = self.row_file_path(&file);
+        crate::fsutil::write_atomic(&path, &bytes).map_err(io(path.clone()))?;
+        crate::failpoint::hit("store:after-row-file").map_err(io(path))?;
+        Ok(file)
+    }
+
+    /// Deletes files in `rows/` that no batch record names: row files a
+    /// crash left between their write and their transaction, and the old
+    /// files of batches rewritten since. Returns how many were deleted.
+    pub fn drop_unnamed_row_files(&self) -> Result<usize, StoreError> {
+        let entries = match std::fs::read_dir(&self.rows_dir) {
+            Ok(e) => e,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(0),
+            Err(source) => {
+                return Err(StoreError::Io {
+                    path: self.rows_dir.clone(),
+                    source,
+                });
+            }
+        };
+        let named: std::collections::BTreeSet<String> = self
+            .batches()?
+            .into_iter()
+            .filter_map(|r| r.rows_file.map(|f| f.name))
+            .collect();
+        let mut dropped = 0;
+        for entry in entries {
+            let entry = entry.map_err(|source| StoreError::Io {
+                path: self.rows_dir.clone(),
+                source,
+            })?;
+            let name = entry.file_name().to_string_lossy().into_owned();
+            if name.ends_with(".parquet") && !named.contains(&name) {
+                std::fs::remove_file(entry.path()).map_err(|source| StoreError::Io {
+                    path: entry.path(),
+                    source,
+                })?;
+                dropped += 1;
+            }
+        }
+        if dropped > 0 {
+            crate::fsutil::sync_dir(&self.rows_dir).map_err(|source| StoreError::Io {
+                path: self.rows_dir.clone(),
+                source,
+            })?;
+        }
+        Ok(dropped)
+    }
+
+    /// Moves the rows of every batch still kept in `chunks` (a store from
+    /// before row files) to a row file: per batch, the file is written and
+    /// synced, then one transaction names it in the batch record, removes
+    /// the batch's chunks and records a `rows-written` entry. A crash
+    /// leaves each batch either in its chunks (the unnamed file is deleted
+    /// at the next start, which moves it again) or in its file. Returns
+    /// the entries written, in order.
+    pub fn move_rows_to_files(
+        &mut self,
+        user: &str,
+        time: chrono::DateTime<chrono::Utc>,
+    ) -> Result<Vec<Entry>, StoreError> {
+        let mut entries = Vec::new();
+        for mut rec in self.batches()? {
+            if rec.rows_file.is_some() {
+                continue;
+            }
+            let train = self.chunk_rows(rec.id, Split::Train)?;
+            let holdout = self.chunk_rows(rec.id, Split::Holdout)?;
+            if train.n_rows() as u64 != rec.train_rows
+                || holdout.n_rows() as u64 != rec.holdout_rows
+            {
+                return Err(self.corrupt(format!(
+                    "batch {} holds {} training and {} holdout rows, its record says {} and {}",
+                    rec.id,
+                    train.n_rows(),
+                    holdout.n_rows(),
+                    rec.train_rows,
+                    rec.holdout_rows
+                )));
+            }
+            let file =
+                self.write_rows_file(rec.id, &self.schema, &self.vocabs, &train, &holdout)?;
+            let entry = self.seal(
+                Event::RowsWritten {
+                    batch: rec.id,
+                    rows_file: file.clone(),
+                    reason: "upgrade: rows moved from the store's chunks to a row file".into(),
+                },
+                user,
+                time,
+            );
+            rec.rows_file = Some(file);
+            let record_json = json(&rec);
+            let line = entry.line().into_bytes();
+            let mut prefix = rec.id.key().to_vec();
+            let mut old_keys = Vec::new();
+            for kv in self.chunks.scan_prefix(&prefix) {
+                old_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
+            }
+            prefix.clear();
+            let store_path = self.path.clone();
+            let result: Result<(), TransactionError<StoreError>> =
+                (&self.batches, &self.chunks, &self.audit).transaction(
+                    |(batches, chunks, audit): &(
+                        TransactionalTree,
+                        TransactionalTree,
+                        TransactionalTree,
+                    )| {
+                        batches.insert(&rec.id.key()[..], record_json.as_slice())?;
+                        for k in &old_keys {
+                            chunks.remove(k.as_slice())?;
+                        }
+                        crate::failpoint::hit("store:mid-transaction").map_err(|source| {
+                            ConflictableTransactionError::Abort(StoreError::Io {
+                                path: store_path.clone(),
+                                source,
+                            })
+                        })?;
+                        audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                        Ok(())
+                    },
+                );
+            self.settle(result)?;
+            self.last_audit = Some((entry.seq, entry.hash.clone()));
+            entries.push(entry);
+        }
+        Ok(entries)
     }
 
     /// Records an event together with changes to `meta` keys (`None`
@@ -816,6 +988,13 @@ impl Store {
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<(BatchRecord, Entry), StoreError> {
         let id = self.next_batch_id();
+        // The row file first: durable before the transaction that names it.
+        let texts = BatchTexts {
+            stored: &self.vocabs,
+            new: &batch.new_categories,
+        };
+        let rows_file =
+            self.write_rows_file(id, &self.schema, &texts, &batch.train, &batch.holdout)?;
         let aside = suspect.as_ref().is_some_and(|s| s.suspect);
         let (drift, history) = match drift {
             // A suspect batch's distances would widen every column's idea
@@ -861,6 +1040,7 @@ impl Store {
             new_category_counts,
             drift,
             suspect: suspect.clone(),
+            rows_file: Some(rows_file.clone()),
         };
         let entry = self.seal(event, user, time);
         let record = BatchRecord {
@@ -872,6 +1052,7 @@ impl Store {
             holdout_rows: batch.holdout.n_rows() as u64,
             audit_seq: entry.seq,
             train_stats: train_stats.clone(),
+            rows_file: Some(rows_file),
             set_aside: suspect.filter(|s| s.suspect).map(|s| SetAside {
                 automatic: true,
                 reason: s.why.join("; "),
@@ -886,8 +1067,6 @@ impl Store {
             holdout_rows: self.totals.holdout_rows + record.holdout_rows,
             train_stats: self.totals.train_stats.merge(&train_stats),
         };
-        let mut chunk_values = chunk_entries(id, Split::Train, &batch.train);
-        chunk_values.extend(chunk_entries(id, Split::Holdout, &batch.holdout));
         let mut vocab_values: Vec<([u8; 8], Vec<u8>)> = Vec::new();
         for (ci, values) in &batch.new_categories {
             let start = self.vocabs.get(ci).map_or(0, Vocab::len);
@@ -906,13 +1085,11 @@ impl Store {
             &self.meta,
             &self.batches,
             &self.hashes,
-            &self.chunks,
             &self.vocab,
             &self.audit,
         )
             .transaction(
-                |(meta, batches, hashes, chunks, vocab, audit): &(
-                    TransactionalTree,
+                |(meta, batches, hashes, vocab, audit): &(
                     TransactionalTree,
                     TransactionalTree,
                     TransactionalTree,
@@ -924,9 +1101,6 @@ impl Store {
                             path: PathBuf::new(),
                             what: "file hash already stored".into(),
                         }));
-                    }
-                    for (k, v) in &chunk_values {
-                        chunks.insert(k.as_slice(), v.as_slice())?;
                     }
                     crate::failpoint::hit("store:mid-transaction").map_err(|source| {
                         ConflictableTransactionError::Abort(StoreError::Io {
@@ -1013,8 +1187,11 @@ impl Store {
 
     /// Rewrites every stored row, vocabulary and column statistic for a new
     /// schema (see `schema::plan_migration`), in one transaction with the
-    /// audit entry `event`; the serving pointer is cleared (checkpoints
-    /// belong to the old schema). Chunks are re-cut for the new row width.
+    /// audit entry `event` and one `rows-written` entry per batch; the
+    /// serving pointer is cleared (checkpoints belong to the old schema).
+    /// Each batch gets a new row file, written and synced before the
+    /// transaction; the old files are deleted after it (or, after a crash,
+    /// by the next start). Returns the entries in order, `event`'s first.
     pub fn migrate(
         &mut self,
         new_schema: &Schema,
@@ -1023,20 +1200,38 @@ impl Store {
         event: Event,
         user: &str,
         time: chrono::DateTime<chrono::Utc>,
-    ) -> Result<Entry, StoreError> {
-        let entry = self.seal(event, user, time);
+    ) -> Result<Vec<Entry>, StoreError> {
+        let mut entries = vec![self.seal(event, user, time)];
         let mut old_keys = Vec::new();
         for kv in self.chunks.iter() {
             old_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
         }
-        let mut chunk_values: Vec<(Vec<u8>, Vec<u8>)> = Vec::new();
+        // Carried category columns keep their codes: the new column's
+        // vocabulary is the old column's.
+        let mut new_vocabs = Vocabularies::new();
+        for (j, from) in plan.from_old.iter().enumerate() {
+            if let Some(v) = from.and_then(|i| self.vocabs.get(&i)) {
+                new_vocabs.insert(j, v.clone());
+            }
+        }
         let mut records = Vec::new();
         for rec in self.batches()? {
-            for split in [Split::Train, Split::Holdout] {
-                let moved = plan.rows(&self.batch_rows(split, rec.id)?, new_schema);
-                chunk_values.extend(chunk_entries(rec.id, split, &moved));
-            }
+            let train = plan.rows(&self.batch_rows(Split::Train, rec.id)?, new_schema);
+            let holdout = plan.rows(&self.batch_rows(Split::Holdout, rec.id)?, new_schema);
+            let file = self.write_rows_file(rec.id, new_schema, &new_vocabs, &train, &holdout)?;
+            let last = entries.last().expect("the migration entry");
+            entries.push(seal_after(
+                Some(&(last.seq, last.hash.clone())),
+                Event::RowsWritten {
+                    batch: rec.id,
+                    rows_file: file.clone(),
+                    reason: "schema migration: rows rewritten for the new columns".into(),
+                },
+                user,
+                time,
+            ));
             let mut rec = rec;
+            rec.rows_file = Some(file);
             rec.train_stats = plan.stats(&rec.train_stats);
             records.push(rec);
         }
@@ -1045,13 +1240,10 @@ impl Store {
             old_vocab_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
         }
         let mut vocab_values: Vec<([u8; 8], Vec<u8>)> = Vec::new();
-        for (j, from) in plan.from_old.iter().enumerate() {
-            let Some(v) = from.and_then(|i| self.vocabs.get(&i)) else {
-                continue;
-            };
+        for (j, v) in &new_vocabs {
             for (code, value) in v.values().iter().enumerate() {
                 let mut key = [0u8; 8];
-                key[..4].copy_from_slice(&u32::try_from(j).expect("column index").to_be_bytes());
+                key[..4].copy_from_slice(&u32::try_from(*j).expect("column index").to_be_bytes());
                 key[4..].copy_from_slice(&u32::try_from(code).expect("code").to_be_bytes());
                 vocab_values.push((key, value.as_bytes().to_vec()));
             }
@@ -1062,7 +1254,10 @@ impl Store {
         };
         let totals_json = json(&totals);
         let schema_json = json(new_schema);
-        let line = entry.line().into_bytes();
+        let lines: Vec<(AuditSeq, Vec<u8>)> = entries
+            .iter()
+            .map(|e| (e.seq, e.line().into_bytes()))
+            .collect();
         let result: Result<(), TransactionError<StoreError>> = (
             &self.meta,
             &self.batches,
@@ -1081,9 +1276,6 @@ impl Store {
                     for k in &old_keys {
                         chunks.remove(k.as_slice())?;
                     }
-                    for (k, v) in &chunk_values {
-                        chunks.insert(k.as_slice(), v.as_slice())?;
-                    }
                     for k in &old_vocab_keys {
                         vocab.remove(k.as_slice())?;
                     }
@@ -1098,15 +1290,19 @@ impl Store {
                     meta.insert(META_FINGERPRINT, new_fingerprint.as_bytes())?;
                     meta.remove(META_SERVING)?;
                     meta.remove(&b"pending"[..])?;
-                    audit.insert(&entry.seq.key()[..], line.as_slice())?;
+                    for (seq, line) in &lines {
+                        audit.insert(&seq.key()[..], line.as_slice())?;
+                    }
                     Ok(())
                 },
             );
         self.settle(result)?;
         self.schema = new_schema.clone();
-        self.last_audit = Some((entry.seq, entry.hash.clone()));
+        let last = entries.last().expect("the migration entry");
+        self.last_audit = Some((last.seq, last.hash.clone()));
         self.load_state()?;
-        Ok(entry)
+        self.drop_unnamed_row_files()?;
+        Ok(entries)
     }
 
     /// Writes a logically identical copy of every tree to a new store at
@@ -1169,44 +1365,49 @@ impl Store {
     }
 }
 
+/// Seals the audit entry that follows `last` (the first when `None`).
+fn seal_after(
+    last: Option<&(AuditSeq, String)>,
+    event: Event,
+    user: &str,
+    time: chrono::DateTime<chrono::Utc>,
+) -> Entry {
+    let (seq, prev) = match last {
+        Some((s, h)) => (s.next(), h.clone()),
+        None => (AuditSeq(1), audit::GENESIS.to_string()),
+    };
+    Entry::seal(seq, time, user, event, &prev)
+}
+
+/// The row files' folder of the store at `store`: `rows/` beside it.
+pub fn rows_dir_of(store: &Path) -> PathBuf {
+    store
+        .parent()
+        .map_or_else(|| PathBuf::from("rows"), |p| p.join("rows"))
+}
+
+/// Category text while a batch is committed: its new values follow the
+/// stored vocabulary's codes.
+struct BatchTexts<'a> {
+    stored: &'a Vocabularies,
+    new: &'a BTreeMap<usize, Vec<String>>,
+}
+
+impl rowfile::Texts for BatchTexts<'_> {
+    fn text(&self, column: usize, code: u32) -> Option<&str> {
+        let have = self.stored.get(&column).map_or(0, Vocab::len);
+        match (code as usize).checked_sub(have) {
+            None => self.stored.get(&column)?.value(code),
+            Some(k) => self.new.get(&column)?.get(k).map(String::as_str),
+        }
+    }
+}
+
 /// The `arrival/` key and value an event writes, if it moves the pointer.
 fn entry_arrival(event: &Event) -> Option<(Vec<u8>, Vec<u8>)> {
     event.arrival().map(|(model, previous, by_rollback)| {
         (arrival_key(model), encode_arrival(previous, by_rollback))
     })
-}
-
-/// A batch's rows on one side of the split as `chunks` entries: keys
-/// (batch, split byte, chunk number) and values of whole rows of at most
-/// `CHUNK_CELLS` cells.
-fn chunk_entries(id: BatchId, split: Split, rows: &RowMatrix) -> Vec<(Vec<u8>, Vec<u8>)> {
-    let per_chunk = rows_per_chunk(rows.width()) * rows.width().max(1);
-    rows.cells()
-        .chunks(per_chunk)
-        .enumerate()
-        .map(|(i, cells)| {
-            let val: Vec<u8> = cells.iter().flat_map(|c| c.to_le_bytes()).collect();
-            (chunk_key(id, split, i), val)
-        })
-        .collect()
-}
-
-/// Rows per `chunks` value for rows of `width` cells, as `chunk_entries`
-/// cuts them (every chunk of a batch's split is full but the last).
-fn rows_per_chunk(width: usize) -> usize {
-    (CHUNK_CELLS / width.max(1)).max(1)
-}
-
-fn chunk_key(id: BatchId, split: Split, chunk: usize) -> Vec<u8> {
-    let mut key = Vec::with_capacity(13);
-    key.extend_from_slice(&id.key());
-    key.push(split.byte());
-    key.extend_from_slice(
-        &u32::try_from(chunk)
-            .expect("fewer than 2^32 chunks")
-            .to_be_bytes(),
-    );
-    key
 }
 
 fn split_rows(record: &BatchRecord, split: Split) -> usize {

@@ -99,6 +99,26 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
     let mut seen = 0u64;
     let mut checkpoints = 0u64;
     let mut rows_total = 0u64;
+    // The row file each batch has by the log: the last entry that wrote
+    // one (its acceptance, or a later move or rewrite).
+    let mut files_by_log: BTreeMap<BatchId, (u64, crate::rowfile::FileRef)> = BTreeMap::new();
+    for e in &entries {
+        match &e.event {
+            Event::BatchAccepted {
+                batch,
+                rows_file: Some(f),
+                ..
+            }
+            | Event::RowsWritten {
+                batch,
+                rows_file: f,
+                ..
+            } => {
+                files_by_log.insert(*batch, (e.seq.0, f.clone()));
+            }
+            _ => {}
+        }
+    }
     for e in &entries {
         let Event::BatchAccepted {
             batch,
@@ -127,6 +147,9 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
                     "batch {batch}: the store's record (hash, row counts) differs from the log"
                 ),
             )));
+        }
+        if let Err(why) = check_row_file(&owner.store, rec, files_by_log.get(batch)) {
+            return Ok(Err(problem(seq, why)));
         }
         for (split, want) in [
             (Split::Train, rec.train_rows),
@@ -250,4 +273,43 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
         rows: rows_total,
         checkpoints,
     }))
+}
+
+/// A batch's row file against the log: the store's record names the file
+/// the last writing entry logged, and the file still has the bytes whose
+/// hash that entry recorded. A store from before row files (its rows still
+/// in chunks, the log naming no file) passes.
+fn check_row_file(
+    store: &crate::store::Store,
+    rec: &crate::store::BatchRecord,
+    logged: Option<&(u64, crate::rowfile::FileRef)>,
+) -> Result<(), String> {
+    let batch = rec.id;
+    match (&rec.rows_file, logged) {
+        (None, None) => Ok(()),
+        (None, Some((seq, _))) => Err(format!(
+            "batch {batch}: entry {seq} logged a row file, the store's record names none"
+        )),
+        (Some(f), None) => Err(format!(
+            "batch {batch}: the store's record names row file {}, which no audit entry logged",
+            f.name
+        )),
+        (Some(f), Some((seq, want))) => {
+            if f != want {
+                return Err(format!(
+                    "batch {batch}: the store's record names row file {}, entry {seq} logged {}",
+                    f.name, want.name
+                ));
+            }
+            let path = store.row_file_path(f);
+            match std::fs::read(&path) {
+                Ok(bytes) if blake3::hash(&bytes).to_hex().as_str() == want.hash => Ok(()),
+                Ok(_) => Err(format!(
+                    "{} no longer holds the rows of batch {batch} (its blake3 differs from the one entry {seq} logged)",
+                    path.display()
+                )),
+                Err(e) => Err(format!("{}: {e}", path.display())),
+            }
+        }
+    }
 }

@@ -95,7 +95,7 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         config_hash: blake3::hash(text.as_bytes()).to_hex().to_string(),
         reason: args.reason.trim().to_string(),
     };
-    let entry = owner.store.migrate(
+    let entries = owner.store.migrate(
         &new_schema,
         &new_fp,
         &plan,
@@ -103,7 +103,11 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         &state::current_user(),
         chrono::Utc::now(),
     )?;
-    owner.mirror.append(&[entry.line().as_bytes()])?;
+    let lines: Vec<String> = entries.iter().map(|e| e.line()).collect();
+    owner
+        .mirror
+        .append(&lines.iter().map(|l| l.as_bytes()).collect::<Vec<_>>())?;
+    let entry = &entries[0];
     write_copy()?;
     if state.serving().exists() {
         std::fs::remove_file(state.serving())

@@ -255,6 +255,7 @@ impl Summary {
                 | Event::Restored { .. }
                 | Event::CycleAbandoned { .. }
                 | Event::ModelExported { .. }
+                | Event::RowsWritten { .. }
                 | Event::FolderRenamed { .. } => {}
             }
         }
@@ -581,6 +582,7 @@ mod tests {
                 new_category_counts: BTreeMap::new(),
                 drift: None,
                 suspect: None,
+                rows_file: None,
             },
             Event::BatchRefused {
                 file: "b".into(),
@@ -606,6 +608,7 @@ mod tests {
                 new_category_counts: [("shop".to_string(), 250)].into(),
                 drift: None,
                 suspect: None,
+                rows_file: None,
             },
         ];
         let entries: Vec<Entry> = events

@@ -407,6 +407,7 @@ mod tests {
                 new_category_counts: Default::default(),
                 drift: None,
                 suspect: None,
+                rows_file: None,
             },
         );
         c.fold(&accepted);
