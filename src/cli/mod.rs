@@ -5,6 +5,7 @@
 mod approve;
 mod aside;
 mod backup;
+mod columns;
 mod completions;
 mod decline;
 mod demo;
@@ -98,6 +99,8 @@ pub enum Command {
     Retrain(retrain::Args),
     /// Model versions with their parents, holdout loss and decisions.
     Models(models::Args),
+    /// What the stored rows hold, column by column, read from the row files.
+    Columns(columns::Args),
     /// Make an earlier model serve again.
     Rollback(rollback::Args),
     /// Let the candidate waiting for approval serve.
@@ -152,6 +155,7 @@ pub fn run(cli: &Cli) -> anyhow::Result<Exit> {
         Command::Onnx(a) => onnx::run(cli, &state, a),
         Command::Retrain(a) => retrain::run(cli, &state, a),
         Command::Models(a) => models::run(cli, &state, a),
+        Command::Columns(a) => columns::run(cli, &state, a),
         Command::Rollback(a) => rollback::run(cli, &state, a),
         Command::Approve(a) => approve::run(cli, &state, a),
         Command::Decline(a) => decline::run(cli, &state, a),
