@@ -1,29 +1,36 @@
 //! Holes found by review and by running the CLI as a new user: a damaged
-//! store key, a path with no file name, numbers that overflow into the
+//! row file, a path with no file name, numbers that overflow into the
 //! audit log, the acting user of a routed command.
 
 use crate::support::{Env, TINY_CONFIG, code, stderr, stdout, tiny_rows};
 
 #[test]
-fn a_short_chunk_key_is_reported_as_a_damaged_store_not_a_panic() {
+fn a_damaged_row_file_is_reported_as_a_damaged_store_not_a_panic() {
     let env = Env::with_config_text(TINY_CONFIG);
     let file = env.dir.path().join("rows.csv");
     std::fs::write(&file, tiny_rows(0, 300)).unwrap();
     assert_eq!(code(&env.ingest(&[file])), 0);
-    {
-        // A key too short to hold a batch id, sorting after every real one.
-        let db = sled::open(env.state().join("store")).unwrap();
-        let chunks = db.open_tree("chunks").unwrap();
-        chunks.insert([0xffu8], &[0u8; 4][..]).unwrap();
-        db.flush().unwrap();
+    let row_file = std::fs::read_dir(env.state().join("rows"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.extension().is_some_and(|x| x == "parquet"))
+        .expect("a row file");
+    // Bytes that are no Parquet file at all, then a file cut short.
+    for damage in [b"not parquet at all".to_vec(), {
+        let mut b = std::fs::read(&row_file).unwrap();
+        b.truncate(b.len() / 2);
+        b
+    }] {
+        std::fs::write(&row_file, &damage).unwrap();
+        let out = env.run(&["retrain"]);
+        assert_eq!(code(&out), 1, "{}", stderr(&out));
+        let name = row_file.file_name().unwrap().to_string_lossy().into_owned();
+        assert!(
+            stderr(&out).contains("is damaged") && stderr(&out).contains(&name),
+            "{}",
+            stderr(&out)
+        );
     }
-    let out = env.run(&["retrain"]);
-    assert_eq!(code(&out), 1, "{}", stderr(&out));
-    assert!(
-        stderr(&out).contains("is damaged") && stderr(&out).contains("chunk key"),
-        "{}",
-        stderr(&out)
-    );
 }
 
 #[test]

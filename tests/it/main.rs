@@ -18,6 +18,7 @@ mod paths;
 mod perms;
 mod powerloss;
 mod report;
+mod rowfiles;
 mod screens;
 mod support;
 mod suspect;
