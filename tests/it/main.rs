@@ -19,6 +19,7 @@ mod perms;
 mod powerloss;
 mod report;
 mod screens;
+mod streaming;
 mod support;
 mod suspect;
 mod tamper;
