@@ -413,9 +413,59 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
     // new or older relative to the serving model, which the gate compares
     // with.
     let through = plan.warm_through();
-    let new_train = store.rows(Split::Train, Some(through.next()), None)?;
+    let new_n = store.row_count(Split::Train, Some(through.next()), None)?;
     let older_n = store.row_count(Split::Train, None, Some(through))?;
-    let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
+    let holdout_counts = store.split_counts(Split::Holdout, None, None)?;
+    let holdout_rows: usize = holdout_counts.iter().map(|(_, n)| n).sum();
+    let cold = if plan.want_cold {
+        let columns = store.schema().width();
+        let width = cold_spec(owner)?.width();
+        // What the cycle holds besides a cold candidate's rows: the warm
+        // candidate's (read and encoded), or with none the baselines'
+        // samples; and one holdout slice being scored.
+        let beside = if plan.want_warm {
+            new_n + older_sample_size(new_n, older_n, &owner.config.training)
+        } else {
+            new_n.min(OLDER_SAMPLE_MIN) + older_n.min(OLDER_SAMPLE_MIN)
+        };
+        let others = streaming::held_bytes(beside, columns, width)
+            + streaming::held_bytes(SCORE_ROWS.min(holdout_rows), columns, width);
+        // The cold candidate gets what the rest leaves, but never less than
+        // half the budget: a budget the rest nearly fills is exceeded
+        // rather than streamed through a window of a few rows.
+        let budget = owner.config.memory.cycle_bytes();
+        let left = budget.saturating_sub(others).max(budget / 2);
+        Some(streaming::cold_rows(
+            left,
+            older_n + new_n,
+            columns,
+            width,
+            owner.config.training.batch_size.max(1),
+        ))
+    } else {
+        None
+    };
+    // A streamed cold candidate alone: the new rows serve only the
+    // baselines, which a uniform sample of them serves as well.
+    let sampled = !plan.want_warm && matches!(cold, Some(ColdRows::Streamed(_)));
+    let new_train = if sampled {
+        let picks = sample::choose(
+            new_n,
+            OLDER_SAMPLE_MIN,
+            &mut Rng::new(sample::seed_for(
+                owner.config.training.seed,
+                &[&b"new-train/"[..], &through.key()].concat(),
+            )),
+        );
+        store.rows_at(Split::Train, Some(through.next()), None, &picks)?
+    } else {
+        store.rows(Split::Train, Some(through.next()), None)?
+    };
+    let want_older = if sampled {
+        OLDER_SAMPLE_MIN.min(older_n)
+    } else {
+        older_sample_size(new_train.n_rows(), older_n, &owner.config.training)
+    };
     let picks = sample::choose(
         older_n,
         want_older,
@@ -424,26 +474,6 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
             &[&b"older-train/"[..], &through.key()].concat(),
         )),
     );
-    let holdout_counts = store.split_counts(Split::Holdout, None, None)?;
-    let holdout_rows: usize = holdout_counts.iter().map(|(_, n)| n).sum();
-    let cold = if plan.want_cold {
-        let columns = store.schema().width();
-        let width = cold_spec(owner)?.width();
-        // What the cycle holds besides a cold candidate's rows: the warm
-        // candidate's (read and encoded) and one holdout slice being scored.
-        let others = streaming::held_bytes(new_train.n_rows() + want_older, columns, width)
-            + streaming::held_bytes(SCORE_ROWS.min(holdout_rows), columns, width);
-        let left = owner.config.memory.cycle_bytes().saturating_sub(others);
-        Some(streaming::cold_rows(
-            left,
-            older_n + new_train.n_rows(),
-            columns,
-            width,
-            owner.config.training.batch_size.max(1),
-        ))
-    } else {
-        None
-    };
     let (older_train, all_train, cold_stream) = match cold {
         Some(ColdRows::Held) => {
             let mut all = store.rows(Split::Train, None, Some(through))?;
@@ -483,6 +513,8 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
         older_train.n_rows(),
         if all_train.is_some() {
             " (all older rows for the cold candidate)"
+        } else if sampled {
+            " (samples for the baselines; the cold candidate streams every training row)"
         } else if cold_stream.is_some() {
             " (the cold candidate streams every training row)"
         } else {

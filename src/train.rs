@@ -338,6 +338,10 @@ pub(crate) struct Run<'a> {
     pub(crate) started: Instant,
 }
 
+/// What an epoch hands each mini-batch to: inputs row-major and scaled
+/// targets; `false` back ends the epoch (the run is out of time).
+pub(crate) type Step<'a> = dyn FnMut(&[f32], &[f32]) -> Result<bool, TrainError> + 'a;
+
 /// Where a run's epochs come from: rows held in memory ([`Held`]) or read
 /// from the store block by block (`stream::Streamed`).
 pub(crate) trait Epochs {
@@ -348,11 +352,7 @@ pub(crate) trait Epochs {
     /// Runs one epoch: hands each mini-batch, inputs row-major and scaled
     /// targets, to `step` in this epoch's order, until the rows run out or
     /// `step` answers `false`. Returns the rows handed over.
-    fn epoch(
-        &mut self,
-        batch_size: usize,
-        step: &mut dyn FnMut(&[f32], &[f32]) -> Result<bool, TrainError>,
-    ) -> Result<usize, TrainError>;
+    fn epoch(&mut self, batch_size: usize, step: &mut Step<'_>) -> Result<usize, TrainError>;
 
     /// How the rows were streamed, for the summary (`None`: all in memory).
     fn streamed(&self) -> Option<crate::model::checkpoint::Streamed> {
@@ -391,11 +391,7 @@ impl Epochs for Held<'_> {
         (self.fixed, self.replay)
     }
 
-    fn epoch(
-        &mut self,
-        batch_size: usize,
-        step: &mut dyn FnMut(&[f32], &[f32]) -> Result<bool, TrainError>,
-    ) -> Result<usize, TrainError> {
+    fn epoch(&mut self, batch_size: usize, step: &mut Step<'_>) -> Result<usize, TrainError> {
         let (data, fixed, replay) = (self.data, self.fixed, self.replay);
         let width = data.width;
         self.order.clear();

@@ -20,7 +20,7 @@
 
 use std::time::Instant;
 
-use super::{Data, Epochs, INIT, Run, SPLIT, TrainError, Trained, no_rows, stream};
+use super::{Data, Epochs, INIT, Run, SPLIT, Step, TrainError, Trained, no_rows, stream};
 use crate::config::{ModelConfig, Task, TrainingConfig};
 use crate::ids::BatchId;
 use crate::model::checkpoint::Streamed;
@@ -119,16 +119,22 @@ const BLOCK_ROWS: (usize, usize) = (64, 8192);
 /// batches' rows.
 const WINDOW_BLOCKS: usize = 16;
 
+/// Fewest validation rows a streamed run holds (unless `validation_fraction`
+/// asks for fewer), whatever the budget: early stopping on a handful of
+/// rows stops at a chance dip. A fixed cost, not one that grows with the
+/// store (common practice, no source).
+pub const VALIDATION_MIN: usize = 2000;
+
 /// Sizes for a streamed run within `budget` bytes: a quarter for the
-/// validation rows, the rest for the window and the block being read. Set
-/// by the budget and the row width alone, so the memory a run takes does
-/// not grow with the store. A budget too small for one block still gets
-/// one block of the smallest size per window (at least a mini-batch is
-/// always held).
+/// validation rows (at least [`VALIDATION_MIN`]), the rest for the window
+/// and the block being read. Set by the budget and the row width alone, so
+/// the memory a run takes does not grow with the store. A budget too small
+/// for one block still gets one block of the smallest size per window (at
+/// least a mini-batch is always held).
 pub fn sizes(budget: u64, columns: usize, width: usize, batch_size: usize) -> Sizes {
     let enc = encoded_bytes(width);
     let read = 4 * columns as u64 + 2 * enc;
-    let validation_cap = (budget / 4 / read).max(1) as usize;
+    let validation_cap = ((budget / 4 / read) as usize).max(VALIDATION_MIN);
     let window_budget = budget - budget / 4;
     let window_rows = (window_budget / (enc + 8)) as usize;
     let block_rows = (window_rows / WINDOW_BLOCKS).clamp(BLOCK_ROWS.0, BLOCK_ROWS.1);
@@ -332,11 +338,7 @@ impl Epochs for Window<'_> {
         (self.rows, 0)
     }
 
-    fn epoch(
-        &mut self,
-        batch_size: usize,
-        step: &mut dyn FnMut(&[f32], &[f32]) -> Result<bool, TrainError>,
-    ) -> Result<usize, TrainError> {
+    fn epoch(&mut self, batch_size: usize, step: &mut Step<'_>) -> Result<usize, TrainError> {
         let width = self.spec.width();
         let windows = epoch_windows(self.blocks.len(), self.window_blocks, &mut self.rng);
         let mut pool = Data {
@@ -561,7 +563,7 @@ mod tests {
     #[test]
     fn sizes_fit_the_budget_and_do_not_depend_on_the_store() {
         for &(budget_mb, columns, width) in
-            &[(64u64, 12, 20), (256, 12, 20), (16, 40, 300), (1024, 5, 8)]
+            &[(64u64, 12, 20), (256, 12, 20), (32, 40, 300), (1024, 5, 8)]
         {
             let budget = budget_mb << 20;
             let s = sizes(budget, columns, width, 256);
@@ -581,7 +583,7 @@ mod tests {
         let tiny = sizes(1000, 12, 20, 256);
         assert_eq!(tiny.window_blocks, 1);
         assert_eq!(tiny.block_rows, BLOCK_ROWS.0);
-        assert!(tiny.validation_cap >= 1);
+        assert_eq!(tiny.validation_cap, VALIDATION_MIN);
     }
 
     #[test]
