@@ -29,6 +29,33 @@ pub struct Config {
     pub drift: DriftConfig,
     #[serde(default)]
     pub export: ExportConfig,
+    #[serde(default)]
+    pub memory: MemoryConfig,
+}
+
+/// How much memory a retrain cycle's rows may take.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct MemoryConfig {
+    /// MiB for the rows a cycle holds: the warm candidate's rows, a slice
+    /// of holdout rows being scored, and a cold candidate's training rows
+    /// (as cells and encoded inputs). A cold candidate whose rows do not
+    /// fit in what is left streams them from the store in shuffled blocks,
+    /// epoch after epoch, instead of reading them all (`train::stream`).
+    pub cycle_mb: f64,
+}
+
+impl Default for MemoryConfig {
+    fn default() -> Self {
+        MemoryConfig { cycle_mb: 1024.0 }
+    }
+}
+
+impl MemoryConfig {
+    /// The budget in bytes.
+    pub fn cycle_bytes(&self) -> u64 {
+        (self.cycle_mb * 1024.0 * 1024.0) as u64
+    }
 }
 
 /// Where the serving model is kept as an ONNX file.
@@ -768,6 +795,16 @@ impl Config {
             return fail(
                 whole("max_reference_rows"),
                 "max_reference_rows must be at least 100".into(),
+            );
+        }
+        let mb = self.memory.cycle_mb;
+        if !(mb > 0.0 && mb.is_finite()) {
+            return fail(
+                whole("cycle_mb"),
+                format!(
+                    "cycle_mb = {mb} must be a positive number of MiB (the default is 1024); \
+                     a cold candidate whose rows need more streams them from the store"
+                ),
             );
         }
         let d = &self.daemon;

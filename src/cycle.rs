@@ -33,7 +33,10 @@ use crate::state::{Owner, StateError};
 use crate::store::{
     META_CYCLES, META_NEXT_MODEL, META_OPEN_CYCLE, META_SERVING, MetaChange, Split, StoreError,
 };
+use crate::train::stream::{self as streaming, ColdRows};
 use crate::train::{self, Control, Progress, TrainError};
+
+mod holdout;
 
 /// What the store remembers about each trained model version.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -384,10 +387,15 @@ pub struct Data {
     /// A uniform sample of older training rows (see `older_sample_size`).
     pub older_train: RowMatrix,
     pub older_n: usize,
-    /// Every training row, when a cold candidate trains.
+    /// Every training row, when a cold candidate trains and they fit in
+    /// the cycle's memory budget (`[memory] cycle_mb`).
     pub all_train: Option<RowMatrix>,
-    /// Every holdout row, older batches first.
-    pub holdout: RowMatrix,
+    /// When a cold candidate trains and its rows do not fit: how it
+    /// streams them, and the training rows per batch it streams.
+    pub cold_stream: Option<(streaming::Sizes, Vec<(BatchId, usize)>)>,
+    /// Holdout rows (not read here: scoring streams them from the store,
+    /// older batches first).
+    pub holdout_rows: usize,
     /// Per holdout row: it arrived after the serving model was trained.
     pub new_flags: Vec<bool>,
     /// Per holdout row: the batch it came from (the gate's clusters).
@@ -405,9 +413,59 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
     // new or older relative to the serving model, which the gate compares
     // with.
     let through = plan.warm_through();
-    let new_train = store.rows(Split::Train, Some(through.next()), None)?;
+    let new_n = store.row_count(Split::Train, Some(through.next()), None)?;
     let older_n = store.row_count(Split::Train, None, Some(through))?;
-    let want_older = older_sample_size(new_train.n_rows(), older_n, &owner.config.training);
+    let holdout_counts = store.split_counts(Split::Holdout, None, None)?;
+    let holdout_rows: usize = holdout_counts.iter().map(|(_, n)| n).sum();
+    let cold = if plan.want_cold {
+        let columns = store.schema().width();
+        let width = cold_spec(owner)?.width();
+        // What the cycle holds besides a cold candidate's rows: the warm
+        // candidate's (read and encoded), or with none the baselines'
+        // samples; and one holdout slice being scored.
+        let beside = if plan.want_warm {
+            new_n + older_sample_size(new_n, older_n, &owner.config.training)
+        } else {
+            new_n.min(OLDER_SAMPLE_MIN) + older_n.min(OLDER_SAMPLE_MIN)
+        };
+        let others = streaming::held_bytes(beside, columns, width)
+            + streaming::held_bytes(SCORE_ROWS.min(holdout_rows), columns, width);
+        // The cold candidate gets what the rest leaves, but never less than
+        // half the budget: a budget the rest nearly fills is exceeded
+        // rather than streamed through a window of a few rows.
+        let budget = owner.config.memory.cycle_bytes();
+        let left = budget.saturating_sub(others).max(budget / 2);
+        Some(streaming::cold_rows(
+            left,
+            older_n + new_n,
+            columns,
+            width,
+            owner.config.training.batch_size.max(1),
+        ))
+    } else {
+        None
+    };
+    // A streamed cold candidate alone: the new rows serve only the
+    // baselines, which a uniform sample of them serves as well.
+    let sampled = !plan.want_warm && matches!(cold, Some(ColdRows::Streamed(_)));
+    let new_train = if sampled {
+        let picks = sample::choose(
+            new_n,
+            OLDER_SAMPLE_MIN,
+            &mut Rng::new(sample::seed_for(
+                owner.config.training.seed,
+                &[&b"new-train/"[..], &through.key()].concat(),
+            )),
+        );
+        store.rows_at(Split::Train, Some(through.next()), None, &picks)?
+    } else {
+        store.rows(Split::Train, Some(through.next()), None)?
+    };
+    let want_older = if sampled {
+        OLDER_SAMPLE_MIN.min(older_n)
+    } else {
+        older_sample_size(new_train.n_rows(), older_n, &owner.config.training)
+    };
     let picks = sample::choose(
         older_n,
         want_older,
@@ -416,40 +474,38 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
             &[&b"older-train/"[..], &through.key()].concat(),
         )),
     );
-    let (older_train, all_train) = if plan.want_cold {
-        let mut all = store.rows(Split::Train, None, Some(through))?;
-        let older = if picks.len() == older_n {
-            all.clone()
-        } else {
-            all.select(&picks)
-        };
-        all.extend(&new_train);
-        (older, Some(all))
-    } else {
-        (
+    let (older_train, all_train, cold_stream) = match cold {
+        Some(ColdRows::Held) => {
+            let mut all = store.rows(Split::Train, None, Some(through))?;
+            let older = if picks.len() == older_n {
+                all.clone()
+            } else {
+                all.select(&picks)
+            };
+            all.extend(&new_train);
+            (older, Some(all), None)
+        }
+        Some(ColdRows::Streamed(sizes)) => (
             store.rows_at(Split::Train, None, Some(through), &picks)?,
             None,
-        )
+            Some((sizes, store.split_counts(Split::Train, None, None)?)),
+        ),
+        None => (
+            store.rows_at(Split::Train, None, Some(through), &picks)?,
+            None,
+            None,
+        ),
     };
-    let mut holdout = store.rows(Split::Holdout, None, Some(plan.through))?;
-    let older_rows = holdout.n_rows();
-    holdout.extend(&store.rows(Split::Holdout, Some(plan.through.next()), None)?);
-    let new_flags: Vec<bool> = (0..holdout.n_rows()).map(|i| i >= older_rows).collect();
-    let holdout_batches: Vec<u64> = store
-        .split_counts(Split::Holdout, None, None)?
+    let older_holdout: usize = holdout_counts
+        .iter()
+        .filter(|(b, _)| *b <= plan.through)
+        .map(|(_, n)| n)
+        .sum();
+    let new_flags: Vec<bool> = (0..holdout_rows).map(|i| i >= older_holdout).collect();
+    let holdout_batches: Vec<u64> = holdout_counts
         .iter()
         .flat_map(|(b, n)| std::iter::repeat_n(b.0, *n))
         .collect();
-    if holdout_batches.len() != holdout.n_rows() {
-        return Err(CycleError::Store(StoreError::Corrupt {
-            path: store.path().to_path_buf(),
-            what: format!(
-                "batch records count {} holdout rows, the store holds {}",
-                holdout_batches.len(),
-                holdout.n_rows()
-            ),
-        }));
-    }
     tracing::debug!(
         "cycle {}: read {} new and {} of {older_n} older training rows{}, {} holdout rows in {:.3} s (peak RSS {} MB)",
         plan.cycle,
@@ -457,10 +513,14 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
         older_train.n_rows(),
         if all_train.is_some() {
             " (all older rows for the cold candidate)"
+        } else if sampled {
+            " (samples for the baselines; the cold candidate streams every training row)"
+        } else if cold_stream.is_some() {
+            " (the cold candidate streams every training row)"
         } else {
             ""
         },
-        holdout.n_rows(),
+        holdout_rows,
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
@@ -469,7 +529,8 @@ pub fn read(owner: &Owner, plan: &Plan) -> Result<Data, CycleError> {
         older_train,
         older_n,
         all_train,
-        holdout,
+        cold_stream,
+        holdout_rows,
         new_flags,
         holdout_batches,
     })
@@ -530,9 +591,37 @@ pub fn train(
                 train::train_warm(parent, training, new_train, older_train, control)
             })
         });
-        let cold = data.all_train.as_ref().map(|all| {
-            train::train_cold(&cold_spec, &owner.config.model, training, all, control())
-        });
+        let cold = match (&data.all_train, &data.cold_stream) {
+            (Some(all), _) => Some(train::train_cold(
+                &cold_spec,
+                &owner.config.model,
+                training,
+                all,
+                control(),
+            )),
+            (None, Some((sizes, counts))) => {
+                tracing::info!(
+                    "cycle {}: the cold candidate streams {} training rows from the store \
+                     (memory budget {} MiB): blocks of {} rows, {} blocks shuffled together",
+                    plan.cycle,
+                    counts.iter().map(|(_, n)| n).sum::<usize>(),
+                    owner.config.memory.cycle_mb,
+                    sizes.block_rows,
+                    sizes.window_blocks
+                );
+                Some(streaming::train_cold(
+                    &cold_spec,
+                    &owner.config.model,
+                    training,
+                    counts,
+                    *sizes,
+                    owner.config.memory.cycle_mb.ceil() as u64,
+                    &StoreRows(store),
+                    control(),
+                ))
+            }
+            (None, None) => None,
+        };
         (
             warm.map(|h| h.join().expect("training thread does not panic")),
             cold,
@@ -559,6 +648,25 @@ pub fn train(
         widened_columns,
         rescaled_columns,
     })
+}
+
+/// The store as the row source of a streamed cold run: a block is a range
+/// of one batch's training rows, read through the chunks that hold them.
+struct StoreRows<'a>(&'a crate::store::Store);
+
+impl streaming::Rows for StoreRows<'_> {
+    fn block(&self, b: &streaming::Block) -> Result<RowMatrix, String> {
+        let positions: Vec<usize> = (b.start..b.start + b.len).collect();
+        self.0
+            .rows_at(Split::Train, Some(b.batch), Some(b.batch), &positions)
+            .map_err(|e| e.to_string())
+    }
+
+    fn at(&self, positions: &[usize]) -> Result<RowMatrix, String> {
+        self.0
+            .rows_at(Split::Train, None, None, positions)
+            .map_err(|e| e.to_string())
+    }
 }
 
 fn cold_spec(owner: &Owner) -> Result<FeatureSpec, StoreError> {
@@ -626,10 +734,70 @@ pub fn score(
     trained: Trained,
 ) -> Result<Scored, CycleError> {
     let step = std::time::Instant::now();
+    let store = &owner.store;
     let backend = owner.config.training.predict_backend;
+    let n = data.holdout_rows;
+    let spec = cold_spec(owner)?;
+    let parts = [&data.older_train, &data.new_train];
+    // The reference models fit on the training rows first, so that one
+    // pass over the holdout scores every model.
+    let ridge_fit =
+        Ridge::fit(&spec, &parts, owner.config.gate.ridge_lambda).map_err(|e| e.to_string());
+    let trees_step = std::time::Instant::now();
+    let trees_fit = crate::trees::Boosted::fit(&spec, &parts, &crate::trees::Settings::default())
+        .map_err(|e| e.to_string());
+    let trees_fit_seconds = trees_step.elapsed().as_secs_f64();
+    let networks: Vec<&Model> = trained
+        .models
+        .iter()
+        .map(|(_, m, _)| m)
+        .chain(plan.serving.as_ref().map(|(_, _, ck)| &ck.model))
+        .collect();
+    let mut network_losses: Vec<Vec<f64>> =
+        networks.iter().map(|_| Vec::with_capacity(n)).collect();
+    let mut trivial = Vec::with_capacity(n);
+    let mut ridge_losses = holdout::Losses::new(&ridge_fit, n);
+    let mut trees_losses = holdout::Losses::new(&trees_fit, n);
+    let mut trees_score_seconds = 0.0;
+    if n == 0 {
+        // No holdout rows: the trivial predictor still has to be fitted
+        // (a store without usable training targets stops the cycle here).
+        baseline::trivial_losses(&spec, &parts, &RowMatrix::new(owner.store.schema().width()))
+            .map_err(|e| CycleError::Scoring(e.to_string()))?;
+    }
+    for slice in holdout::slices(n, SCORE_ROWS) {
+        let start = slice.start;
+        let positions: Vec<usize> = slice.collect();
+        let rows = store.rows_at(Split::Holdout, None, None, &positions)?;
+        for (model, out) in networks.iter().zip(&mut network_losses) {
+            match model.row_losses(&rows, backend) {
+                Ok(l) => out.extend(l),
+                Err(ModelError::MissingTarget { row }) => {
+                    return Err(ModelError::MissingTarget { row: start + row }.into());
+                }
+                Err(e) => return Err(e.into()),
+            }
+        }
+        trivial.extend(
+            baseline::trivial_losses(&spec, &parts, &rows)
+                .map_err(|e| CycleError::Scoring(e.to_string()))?,
+        );
+        if let Ok(r) = &ridge_fit {
+            ridge_losses.add(r.row_losses(&rows));
+        }
+        if let Ok(t) = &trees_fit {
+            let at = std::time::Instant::now();
+            trees_losses.add(t.row_losses(&rows));
+            trees_score_seconds += at.elapsed().as_secs_f64();
+        }
+    }
+    let serving = plan.serving.as_ref().map(|_| {
+        network_losses
+            .pop()
+            .expect("the serving model was scored last")
+    });
     let mut candidates = Vec::new();
-    for (run, model, summary) in trained.models {
-        let losses = row_losses(&model, &data.holdout, backend)?;
+    for ((run, model, summary), losses) in trained.models.into_iter().zip(network_losses) {
         let loss = mean(&losses);
         candidates.push(ScoredCandidate {
             run,
@@ -639,25 +807,13 @@ pub fn score(
             loss,
         });
     }
-    let serving = match &plan.serving {
-        Some((_, _, ck)) => Some(row_losses(&ck.model, &data.holdout, backend)?),
-        None => None,
-    };
-    let spec = cold_spec(owner)?;
-    let parts = [&data.older_train, &data.new_train];
-    let trivial = baseline::trivial_losses(&spec, &parts, &data.holdout)
-        .map_err(|e| CycleError::Scoring(e.to_string()))?;
     let trivial_loss = mean(&trivial);
-    let ridge = Ridge::fit(&spec, &parts, owner.config.gate.ridge_lambda)
-        .and_then(|r| r.row_losses(&data.holdout))
-        .map(|l| mean(&l))
-        .map_err(|e| e.to_string());
+    let ridge = ridge_losses.losses.map(|l| mean(&l));
     if let Err(e) = &ridge {
         tracing::warn!("ridge baseline not fitted: {e}");
     }
-    let trees_step = std::time::Instant::now();
-    let trees = crate::trees::Boosted::fit(&spec, &parts, &crate::trees::Settings::default())
-        .and_then(|t| Ok((t.rows(), t.row_losses(&data.holdout)?)))
+    let trees = trees_fit
+        .and_then(|t| Ok((t.rows(), trees_losses.losses?)))
         .map(|(rows, losses)| {
             let p = |net: &[f64]| crate::trees::p_lower(&losses, net, &data.holdout_batches);
             TreesScore {
@@ -666,14 +822,13 @@ pub fn score(
                 p_candidates: candidates.iter().map(|c| p(&c.losses)).collect(),
                 p_serving: serving.as_deref().and_then(p),
             }
-        })
-        .map_err(|e| e.to_string());
+        });
     match &trees {
         Ok(t) => tracing::debug!(
             "cycle {}: boosted trees fitted on {} rows and scored in {:.3} s",
             plan.cycle,
             t.rows,
-            trees_step.elapsed().as_secs_f64()
+            trees_fit_seconds + trees_score_seconds
         ),
         Err(e) => tracing::warn!("boosted trees not fitted: {e}"),
     }
@@ -681,7 +836,7 @@ pub fn score(
         "cycle {}: scored {} candidate(s), the serving model and the baselines on {} holdout rows in {:.3} s (peak RSS {} MB)",
         plan.cycle,
         candidates.len(),
-        data.holdout.n_rows(),
+        data.holdout_rows,
         step.elapsed().as_secs_f64(),
         peak_rss_mb()
     );
@@ -805,7 +960,7 @@ pub fn record(
                 epochs: c.summary.epochs,
                 seconds: c.summary.seconds,
                 stop: format!("{:?}", c.summary.stop),
-                holdout_rows: data.holdout.n_rows(),
+                holdout_rows: data.holdout_rows,
                 holdout_loss: c.loss,
                 manifest_hash,
                 widened: if warm {
@@ -836,7 +991,7 @@ pub fn record(
         }
         let event = Event::BaselinesScored {
             cycle,
-            holdout_rows: data.holdout.n_rows(),
+            holdout_rows: data.holdout_rows,
             trivial_loss: scored.trivial_loss,
             ridge_loss,
             ridge_lambda: owner.config.gate.ridge_lambda,
@@ -978,7 +1133,7 @@ pub fn record(
         ridge_loss,
         trees_loss,
         trees_better_by,
-        holdout_rows: data.holdout.n_rows(),
+        holdout_rows: data.holdout_rows,
         holdout_batches: data
             .holdout_batches
             .iter()

@@ -40,6 +40,8 @@ pub enum TrainError {
     Diverged { epoch: usize, value: f64 },
     #[error(transparent)]
     Model(#[from] ModelError),
+    #[error("reading training rows from the store: {0}")]
+    Rows(String),
 }
 
 /// Where a run is, sent to the progress callback after every mini-batch
@@ -83,31 +85,31 @@ pub struct Trained {
 }
 
 /// Seeded streams for the separate random needs of one run.
-fn stream(seed: u64, purpose: u64) -> Rng {
+pub(crate) fn stream(seed: u64, purpose: u64) -> Rng {
     Rng::new(seed ^ purpose.wrapping_mul(0x9E37_79B9_7F4A_7C15))
 }
-const SPLIT: u64 = 1;
-const INIT: u64 = 2;
+pub(crate) const SPLIT: u64 = 1;
+pub(crate) const INIT: u64 = 2;
 const DROPOUT: u64 = 3;
 const PERTURB: u64 = 4;
 
 /// Encoded rows: features row-major, targets scaled for training
 /// (standardised value for regression, class code for classification).
 #[derive(Debug, Clone, Default)]
-struct Data {
-    x: Vec<f32>,
-    y: Vec<f32>,
-    width: usize,
+pub(crate) struct Data {
+    pub(crate) x: Vec<f32>,
+    pub(crate) y: Vec<f32>,
+    pub(crate) width: usize,
 }
 
 impl Data {
-    fn n(&self) -> usize {
+    pub(crate) fn n(&self) -> usize {
         self.y.len()
     }
 
     /// Encodes `rows`, dropping rows without a usable target (missing, or
     /// a class the network has no output for).
-    fn encode(spec: &FeatureSpec, rows: &RowMatrix) -> (Vec<f32>, Vec<f32>) {
+    pub(crate) fn encode(spec: &FeatureSpec, rows: &RowMatrix) -> (Vec<f32>, Vec<f32>) {
         let x = spec.encode_inputs(rows);
         let y = spec.encode_targets(rows);
         let w = spec.width();
@@ -135,7 +137,7 @@ impl Data {
         Data { x, y, width: w }
     }
 
-    fn scale_targets(&mut self, task: Task, scale: TargetScale) {
+    pub(crate) fn scale_targets(&mut self, task: Task, scale: TargetScale) {
         if task == Task::Regression {
             for v in &mut self.y {
                 *v = ((f64::from(*v) - scale.mean) / scale.std) as f32;
@@ -212,7 +214,8 @@ pub fn train_cold(
         started,
     };
     let fixed = train.n();
-    run.fit(model, &train, fixed, 0, &val, &mut rng)
+    let mut epochs = Held::new(&train, fixed, 0, &mut rng);
+    run.fit(model, &mut epochs, &val)
 }
 
 /// Continues training `parent` (weights and Adam state) on `new_rows`,
@@ -289,7 +292,8 @@ pub fn train_warm(
         control,
         started,
     };
-    run.fit(model, &pool, fixed, replay, &val, &mut rng)
+    let mut epochs = Held::new(&pool, fixed, replay, &mut rng);
+    run.fit(model, &mut epochs, &val)
 }
 
 /// θ ← shrink·θ + perturb·θ_fresh, value by value.
@@ -317,7 +321,7 @@ pub fn shrink_perturb(
         .collect()
 }
 
-fn no_rows(what: &'static str, task: Task) -> TrainError {
+pub(crate) fn no_rows(what: &'static str, task: Task) -> TrainError {
     let classes = match task {
         Task::Regression => "",
         Task::Classification => " of a class known when the model was first trained",
@@ -325,27 +329,110 @@ fn no_rows(what: &'static str, task: Task) -> TrainError {
     TrainError::NoRows { what, classes }
 }
 
-struct Run<'a> {
-    kind: RunKind,
-    cfg: &'a TrainingConfig,
-    learning_rate: f64,
-    max_epochs: usize,
-    control: Control<'a>,
-    started: Instant,
+pub(crate) struct Run<'a> {
+    pub(crate) kind: RunKind,
+    pub(crate) cfg: &'a TrainingConfig,
+    pub(crate) learning_rate: f64,
+    pub(crate) max_epochs: usize,
+    pub(crate) control: Control<'a>,
+    pub(crate) started: Instant,
+}
+
+/// What an epoch hands each mini-batch to: inputs row-major and scaled
+/// targets; `false` back ends the epoch (the run is out of time).
+pub(crate) type Step<'a> = dyn FnMut(&[f32], &[f32]) -> Result<bool, TrainError> + 'a;
+
+/// Where a run's epochs come from: rows held in memory ([`Held`]) or read
+/// from the store block by block (`stream::Streamed`).
+pub(crate) trait Epochs {
+    /// Rows trained on per epoch and, of those, older rows replayed
+    /// (known before the first epoch; the progress count and the summary).
+    fn rows(&self) -> (usize, usize);
+
+    /// Runs one epoch: hands each mini-batch, inputs row-major and scaled
+    /// targets, to `step` in this epoch's order, until the rows run out or
+    /// `step` answers `false`. Returns the rows handed over.
+    fn epoch(&mut self, batch_size: usize, step: &mut Step<'_>) -> Result<usize, TrainError>;
+
+    /// How the rows were streamed, for the summary (`None`: all in memory).
+    fn streamed(&self) -> Option<crate::model::checkpoint::Streamed> {
+        None
+    }
+}
+
+/// Epochs over encoded rows in memory: the first `fixed` rows every epoch,
+/// plus `replay` rows sampled afresh from the rest, shuffled together.
+pub(crate) struct Held<'a> {
+    data: &'a Data,
+    fixed: usize,
+    replay: usize,
+    rng: &'a mut Rng,
+    order: Vec<usize>,
+    xb: Vec<f32>,
+    yb: Vec<f32>,
+}
+
+impl<'a> Held<'a> {
+    pub(crate) fn new(data: &'a Data, fixed: usize, replay: usize, rng: &'a mut Rng) -> Held<'a> {
+        Held {
+            data,
+            fixed,
+            replay,
+            rng,
+            order: Vec::with_capacity(fixed + replay),
+            xb: Vec::new(),
+            yb: Vec::new(),
+        }
+    }
+}
+
+impl Epochs for Held<'_> {
+    fn rows(&self) -> (usize, usize) {
+        (self.fixed, self.replay)
+    }
+
+    fn epoch(&mut self, batch_size: usize, step: &mut Step<'_>) -> Result<usize, TrainError> {
+        let (data, fixed, replay) = (self.data, self.fixed, self.replay);
+        let width = data.width;
+        self.order.clear();
+        self.order.extend(0..fixed);
+        if replay > 0 {
+            let mut rest: Vec<usize> = (fixed..data.n()).collect();
+            // Partial Fisher–Yates: the first `replay` entries are a
+            // uniform sample without replacement.
+            for i in 0..replay {
+                let j = i + self.rng.below(rest.len() - i);
+                rest.swap(i, j);
+            }
+            self.order.extend_from_slice(&rest[..replay]);
+        }
+        self.rng.shuffle(&mut self.order);
+        let mut handed = 0;
+        for chunk in self.order.chunks(batch_size) {
+            self.xb.clear();
+            self.yb.clear();
+            for &i in chunk {
+                self.xb
+                    .extend_from_slice(&data.x[i * width..(i + 1) * width]);
+                self.yb.push(data.y[i]);
+            }
+            if !step(&self.xb, &self.yb)? {
+                break;
+            }
+            handed += chunk.len();
+        }
+        Ok(handed)
+    }
 }
 
 impl Run<'_> {
-    /// The epoch loop. Each epoch trains on the first `fixed` rows of
-    /// `data` plus `replay` rows sampled from the rest, in shuffled
-    /// mini-batches.
-    fn fit(
+    /// The epoch loop: each epoch trains on what `epochs` hands over, in
+    /// mini-batches, then scores the validation rows.
+    pub(crate) fn fit(
         &self,
         mut model: Model,
-        data: &Data,
-        fixed: usize,
-        replay: usize,
+        source: &mut dyn Epochs,
         val: &Data,
-        rng: &mut Rng,
     ) -> Result<Trained, TrainError> {
         let cfg = self.cfg;
         let spec = model.spec().clone();
@@ -358,6 +445,7 @@ impl Run<'_> {
         let mut dropout_rng = (model.config().dropout > 0.0).then(|| stream(cfg.seed, DROPOUT));
         let train_device = device(cfg.backend).autodiff();
         let batch_size = cfg.batch_size.max(1);
+        let (fixed, replay) = source.rows();
         let per_epoch = fixed + replay;
         let batches = per_epoch.div_ceil(batch_size);
 
@@ -376,29 +464,15 @@ impl Run<'_> {
             best = Some((v, 0, model.weights()));
         }
         let mut stop = StopReason::EpochLimit;
-        let mut xb = Vec::with_capacity(batch_size * width);
         let mut yb = Vec::with_capacity(batch_size * k.max(1));
-        let mut order: Vec<usize> = Vec::with_capacity(per_epoch);
         let elapsed = |t: &Instant| t.elapsed().as_secs_f64();
 
-        'epochs: for epoch in 1..=self.max_epochs {
+        for epoch in 1..=self.max_epochs {
             let epoch_start = Instant::now();
-            order.clear();
-            order.extend(0..fixed);
-            if replay > 0 {
-                let mut rest: Vec<usize> = (fixed..data.n()).collect();
-                // Partial Fisher–Yates: the first `replay` entries are a
-                // uniform sample without replacement.
-                for i in 0..replay {
-                    let j = i + rng.below(rest.len() - i);
-                    rest.swap(i, j);
-                }
-                order.extend_from_slice(&rest[..replay]);
-            }
-            rng.shuffle(&mut order);
-
             let mut loss_sum = 0.0;
-            for (b, chunk) in order.chunks(batch_size).enumerate() {
+            let mut b = 0;
+            let mut out_of_time = false;
+            let handed = source.epoch(batch_size, &mut |xs: &[f32], ys: &[f32]| {
                 if self
                     .control
                     .cancel
@@ -407,26 +481,22 @@ impl Run<'_> {
                     return Err(TrainError::Cancelled);
                 }
                 if elapsed(&self.started) >= cfg.max_seconds {
-                    stop = StopReason::TimeBudget;
-                    break 'epochs;
+                    out_of_time = true;
+                    return Ok(false);
                 }
-                let n = chunk.len();
-                xb.clear();
+                let n = ys.len();
                 yb.clear();
-                for &i in chunk {
-                    xb.extend_from_slice(&data.x[i * width..(i + 1) * width]);
-                }
                 match task {
-                    Task::Regression => yb.extend(chunk.iter().map(|&i| data.y[i])),
+                    Task::Regression => yb.extend_from_slice(ys),
                     Task::Classification => {
                         yb.resize(n * k, 0.0);
-                        for (r, &i) in chunk.iter().enumerate() {
-                            yb[r * k + data.y[i] as usize] = 1.0;
+                        for (r, &c) in ys.iter().enumerate() {
+                            yb[r * k + c as usize] = 1.0;
                         }
                     }
                 }
                 let x =
-                    Tensor::<2>::from_data(TensorData::new(xb.clone(), [n, width]), &train_device);
+                    Tensor::<2>::from_data(TensorData::new(xs.to_vec(), [n, width]), &train_device);
                 let y = Tensor::<2>::from_data(
                     TensorData::new(yb.clone(), [n, yb.len() / n]),
                     &train_device,
@@ -445,10 +515,16 @@ impl Run<'_> {
                 };
                 let grads = GradientsParams::from_grads(loss.backward(), &*net);
                 *net = optimizer.step(self.learning_rate, net.clone(), grads);
-                self.report(epoch, b + 1, batches, None, None);
+                b += 1;
+                self.report(epoch, b, batches, None, None);
+                Ok(true)
+            })?;
+            if out_of_time {
+                stop = StopReason::TimeBudget;
+                break;
             }
             epoch_seconds.push(epoch_start.elapsed().as_secs_f64());
-            let tl = loss_sum / per_epoch.max(1) as f64 * unit;
+            let tl = loss_sum / handed.max(1) as f64 * unit;
             train_loss.push(tl);
             let mut vl = None;
             if val.n() > 0 {
@@ -487,6 +563,7 @@ impl Run<'_> {
             rows: fixed,
             replay_rows: replay,
             validation_rows: val.n(),
+            streamed: source.streamed(),
             seconds: elapsed(&self.started),
             epoch_seconds,
             train_loss,
@@ -587,6 +664,8 @@ pub fn least_squares(x: &[f64], y: &[f64], width: usize, lambda: f64) -> Option<
     out.extend(beta);
     Some(out)
 }
+
+pub mod stream;
 
 #[cfg(test)]
 mod tests;

@@ -73,6 +73,12 @@ pub struct TrainingSummary {
     pub replay_rows: usize,
     /// Rows held aside for early stopping.
     pub validation_rows: usize,
+    /// A cold run that read its rows from the store block by block, epoch
+    /// after epoch, because they did not fit the cycle's memory budget.
+    /// `None` when every row was held in memory (and in manifests written
+    /// before streaming existed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub streamed: Option<Streamed>,
     pub seconds: f64,
     /// Seconds of each epoch (training steps only).
     pub epoch_seconds: Vec<f64>,
@@ -84,6 +90,19 @@ pub struct TrainingSummary {
     pub stop: StopReason,
     pub learning_rate: f64,
     pub config: TrainingConfig,
+}
+
+/// How a streamed cold run read its rows (see `train::stream`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Streamed {
+    /// The cycle's memory budget in MiB (`[memory] cycle_mb`).
+    pub budget_mb: u64,
+    /// Blocks of contiguous stored rows the training rows were cut into.
+    pub blocks: usize,
+    /// Rows in one block (the last block of a batch may hold fewer).
+    pub block_rows: usize,
+    /// Blocks whose rows were shuffled together in one window.
+    pub window_blocks: usize,
 }
 
 /// Everything about a model version except its tensors.

@@ -319,6 +319,7 @@ fn summary() -> TrainingSummary {
         rows: 0,
         replay_rows: 0,
         validation_rows: 0,
+        streamed: None,
         seconds: 0.0,
         epoch_seconds: vec![],
         train_loss: vec![],

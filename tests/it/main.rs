@@ -20,6 +20,7 @@ mod powerloss;
 mod report;
 mod rowfiles;
 mod screens;
+mod streaming;
 mod support;
 mod suspect;
 mod tamper;
