@@ -526,8 +526,8 @@ impl Run<'_> {
 /// smaller, but never under 16 rows (or `batch_size`, when smaller). On a
 /// thousand rows, batches of 256 gave 4 Adam steps an epoch, and early
 /// stopping with patience counted in epochs stopped on a noisy validation
-/// split before the network had moved far from its start. Large runs keep
-/// `batch_size`: 16 batches of 256 is 4,096 rows.
+/// split before the network had moved far from its start. Runs of 4,096
+/// rows an epoch or more (16 batches of 256) keep `batch_size`.
 fn batch_size(cfg: &TrainingConfig, per_epoch: usize) -> usize {
     let largest = cfg.batch_size.max(1);
     let floor = largest.min(16);
