@@ -265,7 +265,12 @@ pub struct TrainingConfig {
     pub backend: Backend,
     /// Backend used for batch prediction.
     pub predict_backend: Backend,
+    /// Largest mini-batch.
     pub batch_size: usize,
+    /// A run on few rows takes smaller mini-batches (never under 16 rows),
+    /// so that an epoch is at least this many optimizer steps; 1 keeps
+    /// `batch_size` whatever the rows.
+    pub min_batches_per_epoch: usize,
     pub learning_rate: f64,
     /// Learning rate for warm runs; the cold rate when unset.
     pub warm_learning_rate: Option<f64>,
@@ -296,6 +301,7 @@ impl Default for TrainingConfig {
             backend: Backend::Flex,
             predict_backend: Backend::Flex,
             batch_size: 256,
+            min_batches_per_epoch: 16,
             learning_rate: 1e-3,
             warm_learning_rate: Some(1e-4),
             cold_epochs: 100,
@@ -640,11 +646,16 @@ impl Config {
             );
         }
         let t = &self.training;
-        let checks: [(&str, bool, &str); 11] = [
+        let checks: [(&str, bool, &str); 12] = [
             (
                 "batch_size",
                 t.batch_size >= 1,
                 "batch_size must be at least 1",
+            ),
+            (
+                "min_batches_per_epoch",
+                t.min_batches_per_epoch >= 1,
+                "min_batches_per_epoch must be at least 1; 1 keeps batch_size on any number of rows",
             ),
             (
                 "learning_rate",

@@ -23,7 +23,9 @@ fn linear_rows(n: usize, seed: u64) -> RowMatrix {
 
 fn small_cfg() -> TrainingConfig {
     TrainingConfig {
+        // Mini-batches of 32 whatever the rows: tests here count steps.
         batch_size: 32,
+        min_batches_per_epoch: 1,
         learning_rate: 1e-2,
         cold_epochs: 30,
         warm_epochs: 5,
@@ -477,4 +479,78 @@ fn a_warm_run_never_hands_back_worse_than_its_parent_on_validation() {
     let s = &warm.summary;
     assert!(s.best_epoch >= 1, "{s:?}");
     assert!(s.validation_loss[s.best_epoch - 1] < s.start_validation_loss.unwrap());
+}
+
+#[test]
+fn few_rows_take_smaller_batches_and_many_rows_keep_the_configured_one() {
+    let cfg = TrainingConfig::default();
+    assert_eq!((cfg.batch_size, cfg.min_batches_per_epoch), (256, 16));
+    for rows in [1, 10, 50, 300, 1_000, 4_000, 4_096, 5_000, 100_000] {
+        let b = batch_size(&cfg, rows);
+        let steps = rows.div_ceil(b);
+        assert!(b <= 256, "{rows} rows: batch {b}");
+        assert!(
+            b >= 16 || b == 256,
+            "{rows} rows: batch {b} is under the floor"
+        );
+        assert!(
+            steps >= 16 || b == 16,
+            "{rows} rows: {steps} steps an epoch with batch {b}"
+        );
+        if rows >= 16 * 256 {
+            assert_eq!(b, 256, "{rows} rows keep the configured batch");
+        }
+    }
+    // 1 turns the rule off; a configured batch under the floor stays.
+    let off = TrainingConfig {
+        min_batches_per_epoch: 1,
+        ..cfg.clone()
+    };
+    assert_eq!(batch_size(&off, 300), 256);
+    let tiny = TrainingConfig {
+        batch_size: 8,
+        ..cfg
+    };
+    assert_eq!(batch_size(&tiny, 1_000), 8);
+}
+
+#[test]
+fn a_run_on_few_rows_takes_at_least_the_minimum_steps_an_epoch() {
+    // 400 rows, no validation split: 16 steps an epoch with the rule, 2
+    // with mini-batches of 256 alone. Steps are counted by the progress
+    // callback.
+    let rows = linear_rows(400, 3);
+    let s = spec(2, Task::Regression, 1);
+    let steps = RefCell::new(Vec::new());
+    let progress = |p: Progress| {
+        if p.train_loss.is_none() {
+            steps.borrow_mut().push(p.batches);
+        }
+    };
+    for (min_batches, want) in [(16, 16), (1, 2)] {
+        steps.borrow_mut().clear();
+        let cfg = TrainingConfig {
+            cold_epochs: 1,
+            patience: 0,
+            min_batches_per_epoch: min_batches,
+            ..TrainingConfig::default()
+        };
+        train_cold(
+            &s,
+            &linear_model(),
+            &cfg,
+            &rows,
+            Control {
+                cancel: None,
+                progress: Some(&progress),
+            },
+        )
+        .expect("trains");
+        assert_eq!(
+            steps.borrow().len(),
+            want,
+            "min_batches_per_epoch {min_batches}"
+        );
+        assert!(steps.borrow().iter().all(|&b| b == want));
+    }
 }
