@@ -424,12 +424,8 @@ impl RowFile {
             };
             match column.kind {
                 ColumnKind::Number => {
-                    let mut r =
-                        parquet::column::reader::get_typed_column_reader::<FloatType>(reader);
-                    let mut values: Vec<f32> = Vec::with_capacity(rows);
-                    let (got, _, _) = r
-                        .read_records(rows, Some(&mut defs), None, &mut values)
-                        .map_err(pq)?;
+                    let (got, values) =
+                        read_values::<FloatType>(reader, rows, &mut defs).map_err(pq)?;
                     if got != rows || defs.len() != rows {
                         return Err(short(got));
                     }
@@ -445,12 +441,8 @@ impl RowFile {
                 }
                 ColumnKind::Category => {
                     let vocab = vocabs.get(&c);
-                    let mut r =
-                        parquet::column::reader::get_typed_column_reader::<ByteArrayType>(reader);
-                    let mut values: Vec<ByteArray> = Vec::with_capacity(rows);
-                    let (got, _, _) = r
-                        .read_records(rows, Some(&mut defs), None, &mut values)
-                        .map_err(pq)?;
+                    let (got, values) =
+                        read_values::<ByteArrayType>(reader, rows, &mut defs).map_err(pq)?;
                     if got != rows || defs.len() != rows {
                         return Err(short(got));
                     }
@@ -557,11 +549,8 @@ pub fn for_each_group(
                     )
                 }
                 Physical::BYTE_ARRAY => {
-                    let mut r =
-                        parquet::column::reader::get_typed_column_reader::<ByteArrayType>(reader);
-                    let mut v: Vec<ByteArray> = Vec::with_capacity(rows);
-                    r.read_records(rows, Some(&mut defs), None, &mut v)
-                        .map_err(pq)?;
+                    let (_, v) =
+                        read_values::<ByteArrayType>(reader, rows, &mut defs).map_err(pq)?;
                     let mut it = v.iter();
                     Values::Texts(
                         defs.iter()
@@ -587,6 +576,20 @@ pub fn for_each_group(
         f(split, &columns);
     }
     Ok(())
+}
+
+/// The values of one optional column chunk of `rows` rows, with its
+/// definition levels in `defs` (1: present, 0: null): the records read and
+/// the present values in order.
+fn read_values<T: parquet::data_type::DataType>(
+    reader: parquet::column::reader::ColumnReader,
+    rows: usize,
+    defs: &mut Vec<i16>,
+) -> parquet::errors::Result<(usize, Vec<T::T>)> {
+    let mut r = parquet::column::reader::get_typed_column_reader::<T>(reader);
+    let mut values = Vec::with_capacity(rows);
+    let (got, _, _) = r.read_records(rows, Some(defs), None, &mut values)?;
+    Ok((got, values))
 }
 
 fn groups_of(rows: usize) -> usize {

@@ -818,12 +818,7 @@ impl Store {
                         for k in &old_keys {
                             chunks.remove(k.as_slice())?;
                         }
-                        crate::failpoint::hit("store:mid-transaction").map_err(|source| {
-                            ConflictableTransactionError::Abort(StoreError::Io {
-                                path: store_path.clone(),
-                                source,
-                            })
-                        })?;
+                        mid_transaction(&store_path)?;
                         audit.insert(&entry.seq.key()[..], line.as_slice())?;
                         Ok(())
                     },
@@ -1102,12 +1097,7 @@ impl Store {
                             what: "file hash already stored".into(),
                         }));
                     }
-                    crate::failpoint::hit("store:mid-transaction").map_err(|source| {
-                        ConflictableTransactionError::Abort(StoreError::Io {
-                            path: store_path.clone(),
-                            source,
-                        })
-                    })?;
+                    mid_transaction(&store_path)?;
                     for (k, v) in &vocab_values {
                         vocab.insert(&k[..], v.as_slice())?;
                     }
@@ -1165,12 +1155,7 @@ impl Store {
             .transaction(
                 |(batches, audit): &(TransactionalTree, TransactionalTree)| {
                     batches.insert(&batch.key()[..], record_json.as_slice())?;
-                    crate::failpoint::hit("store:mid-transaction").map_err(|source| {
-                        ConflictableTransactionError::Abort(StoreError::Io {
-                            path: store_path.clone(),
-                            source,
-                        })
-                    })?;
+                    mid_transaction(&store_path)?;
                     audit.insert(&entry.seq.key()[..], line.as_slice())?;
                     Ok(())
                 },
@@ -1363,6 +1348,16 @@ impl Store {
         })?;
         Ok(())
     }
+}
+
+/// The failpoint inside a store transaction, as the transaction's abort.
+fn mid_transaction(store_path: &Path) -> Result<(), ConflictableTransactionError<StoreError>> {
+    crate::failpoint::hit("store:mid-transaction").map_err(|source| {
+        ConflictableTransactionError::Abort(StoreError::Io {
+            path: store_path.to_path_buf(),
+            source,
+        })
+    })
 }
 
 /// Seals the audit entry that follows `last` (the first when `None`).
