@@ -260,15 +260,8 @@ impl RowFile {
         train_rows: usize,
         holdout_rows: usize,
     ) -> Result<RowFile, RowFileError> {
-        let bad = |what: String| RowFileError::Bad {
-            path: path.to_path_buf(),
-            what,
-        };
-        let file = File::open(path).map_err(|source| RowFileError::Io {
-            path: path.to_path_buf(),
-            source,
-        })?;
-        let reader = SerializedFileReader::new(file).map_err(|e| bad(e.to_string()))?;
+        let bad = |what: String| bad_at(path, what);
+        let reader = open_reader(path)?;
         let meta = reader.metadata().file_metadata();
         let kv = |key: &str| {
             meta.key_value_metadata()
@@ -327,10 +320,7 @@ impl RowFile {
     }
 
     fn bad(&self, what: impl Into<String>) -> RowFileError {
-        RowFileError::Bad {
-            path: self.path.clone(),
-            what: what.into(),
-        }
+        bad_at(&self.path, what.into())
     }
 
     /// Rows in `split`.
@@ -487,15 +477,8 @@ pub fn for_each_group(
     path: &Path,
     mut f: impl FnMut(Split, &[(String, Values)]),
 ) -> Result<(), RowFileError> {
-    let bad = |what: String| RowFileError::Bad {
-        path: path.to_path_buf(),
-        what,
-    };
-    let file = File::open(path).map_err(|source| RowFileError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
-    let reader = SerializedFileReader::new(file).map_err(|e| bad(e.to_string()))?;
+    let bad = |what: String| bad_at(path, what);
+    let reader = open_reader(path)?;
     let md = reader.metadata();
     let fields = md.file_metadata().schema().get_fields();
     if fields.len() < RESERVED.len()
@@ -576,6 +559,22 @@ pub fn for_each_group(
         f(split, &columns);
     }
     Ok(())
+}
+
+fn bad_at(path: &Path, what: String) -> RowFileError {
+    RowFileError::Bad {
+        path: path.to_path_buf(),
+        what,
+    }
+}
+
+/// The Parquet reader of a file, its footer parsed.
+fn open_reader(path: &Path) -> Result<SerializedFileReader<File>, RowFileError> {
+    let file = File::open(path).map_err(|source| RowFileError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    SerializedFileReader::new(file).map_err(|e| bad_at(path, e.to_string()))
 }
 
 /// The values of one optional column chunk of `rows` rows, with its
