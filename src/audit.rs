@@ -1126,6 +1126,30 @@ impl std::fmt::Display for ChainProblem {
 
 /// Checks that `lines` form an intact, contiguous chain from entry 1.
 /// Returns the parsed entries, or the first problem.
+/// Each batch's row file by the log: the last entry that wrote one (its
+/// `batch-accepted`, or a later `rows-written` for a move or a migration),
+/// with that entry's sequence number. Batches accepted before row files and
+/// not yet moved have none.
+pub fn row_files(entries: &[Entry]) -> BTreeMap<BatchId, (AuditSeq, crate::rowfile::FileRef)> {
+    let mut out = BTreeMap::new();
+    for e in entries {
+        if let Event::BatchAccepted {
+            batch,
+            rows_file: Some(f),
+            ..
+        }
+        | Event::RowsWritten {
+            batch,
+            rows_file: f,
+            ..
+        } = &e.event
+        {
+            out.insert(*batch, (e.seq, f.clone()));
+        }
+    }
+    out
+}
+
 pub fn verify_chain<'a>(
     lines: impl IntoIterator<Item = &'a [u8]>,
 ) -> Result<Vec<Entry>, ChainProblem> {

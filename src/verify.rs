@@ -99,26 +99,7 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
     let mut seen = 0u64;
     let mut checkpoints = 0u64;
     let mut rows_total = 0u64;
-    // The row file each batch has by the log: the last entry that wrote
-    // one (its acceptance, or a later move or rewrite).
-    let mut files_by_log: BTreeMap<BatchId, (u64, crate::rowfile::FileRef)> = BTreeMap::new();
-    for e in &entries {
-        match &e.event {
-            Event::BatchAccepted {
-                batch,
-                rows_file: Some(f),
-                ..
-            }
-            | Event::RowsWritten {
-                batch,
-                rows_file: f,
-                ..
-            } => {
-                files_by_log.insert(*batch, (e.seq.0, f.clone()));
-            }
-            _ => {}
-        }
-    }
+    let files_by_log = audit::row_files(&entries);
     for e in &entries {
         let Event::BatchAccepted {
             batch,
@@ -282,19 +263,21 @@ pub fn check(owner: &Owner) -> Result<Result<Report, Problem>, StateError> {
 fn check_row_file(
     store: &crate::store::Store,
     rec: &crate::store::BatchRecord,
-    logged: Option<&(u64, crate::rowfile::FileRef)>,
+    logged: Option<&(crate::ids::AuditSeq, crate::rowfile::FileRef)>,
 ) -> Result<(), String> {
     let batch = rec.id;
     match (&rec.rows_file, logged) {
         (None, None) => Ok(()),
         (None, Some((seq, _))) => Err(format!(
-            "batch {batch}: entry {seq} logged a row file, the store's record names none"
+            "batch {batch}: entry {} logged a row file, the store's record names none",
+            seq.0
         )),
         (Some(f), None) => Err(format!(
             "batch {batch}: the store's record names row file {}, which no audit entry logged",
             f.name
         )),
         (Some(f), Some((seq, want))) => {
+            let seq = seq.0;
             if f != want {
                 return Err(format!(
                     "batch {batch}: the store's record names row file {}, entry {seq} logged {}",

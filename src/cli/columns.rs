@@ -12,7 +12,7 @@ use serde::Serialize;
 use super::{Cli, Exit, emit};
 use crate::audit::Event;
 use crate::ids::BatchId;
-use crate::rowfile::{self, FileRef, Values};
+use crate::rowfile::{self, Values};
 use crate::state::StateDir;
 use crate::store::Split;
 
@@ -64,42 +64,15 @@ struct Column {
     order: usize,
 }
 
-/// The row file of each batch and whether it is set aside now, from the
-/// log. A batch accepted before row files has none until its rows move.
-fn batches_by_log(entries: &[crate::audit::Entry]) -> BTreeMap<BatchId, (Option<FileRef>, bool)> {
-    let mut out: BTreeMap<BatchId, (Option<FileRef>, bool)> = BTreeMap::new();
-    for e in entries {
-        match &e.event {
-            Event::BatchAccepted {
-                batch,
-                rows_file,
-                suspect,
-                ..
-            } => {
-                let aside = suspect.as_ref().is_some_and(|s| s.suspect);
-                out.insert(*batch, (rows_file.clone(), aside));
-            }
-            Event::RowsWritten {
-                batch, rows_file, ..
-            } => {
-                if let Some(b) = out.get_mut(batch) {
-                    b.0 = Some(rows_file.clone());
-                }
-            }
-            Event::BatchSetAside { batch, .. } => {
-                if let Some(b) = out.get_mut(batch) {
-                    b.1 = true;
-                }
-            }
-            Event::BatchBroughtBack { batch, .. } => {
-                if let Some(b) = out.get_mut(batch) {
-                    b.1 = false;
-                }
-            }
-            _ => {}
-        }
-    }
-    out
+/// Every batch the log says was accepted, in order.
+fn accepted_batches(entries: &[crate::audit::Entry]) -> Vec<BatchId> {
+    entries
+        .iter()
+        .filter_map(|e| match &e.event {
+            Event::BatchAccepted { batch, .. } => Some(*batch),
+            _ => None,
+        })
+        .collect()
 }
 
 fn add(side: &mut Side, columns: &[(String, Values)]) {
@@ -152,13 +125,15 @@ pub fn run(cli: &Cli, state: &StateDir, args: &Args) -> anyhow::Result<Exit> {
         .into());
     }
     let entries = state.mirror().entries()?;
+    let files = crate::audit::row_files(&entries);
+    let aside = super::status::Summary::from_entries(&entries).set_aside;
     let mut report = Report::default();
     let mut unmoved = Vec::new();
-    for (batch, (file, aside)) in batches_by_log(&entries) {
-        if aside && !args.with_set_aside {
+    for batch in accepted_batches(&entries) {
+        if aside.contains_key(&batch) && !args.with_set_aside {
             continue;
         }
-        let Some(file) = file else {
+        let Some((_, file)) = files.get(&batch).cloned() else {
             unmoved.push(batch);
             continue;
         };
