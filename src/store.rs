@@ -371,7 +371,7 @@ impl Store {
             return Ok(self.totals.train_stats.clone());
         }
         Ok(self
-            .batches_in(None, None)?
+            .records_in(None, None, false)?
             .iter()
             .fold(ColumnStats::default(), |acc, r| acc.merge(&r.train_stats)))
     }
@@ -539,16 +539,6 @@ impl Store {
         Ok(out)
     }
 
-    /// Accepted batches with ids in `from..=to` (all when `None`) that are
-    /// not set aside, in order.
-    fn batches_in(
-        &self,
-        from: Option<BatchId>,
-        to: Option<BatchId>,
-    ) -> Result<Vec<BatchRecord>, StoreError> {
-        self.records_in(from, to, false)
-    }
-
     /// Batch records with ids in `from..=to`, with or without the batches
     /// set aside, in order.
     fn records_in(
@@ -583,7 +573,7 @@ impl Store {
         to: Option<BatchId>,
     ) -> Result<usize, StoreError> {
         Ok(self
-            .batches_in(from, to)?
+            .records_in(from, to, false)?
             .iter()
             .map(|r| split_rows(r, split))
             .sum())
@@ -598,7 +588,7 @@ impl Store {
         to: Option<BatchId>,
     ) -> Result<Vec<(BatchId, usize)>, StoreError> {
         Ok(self
-            .batches_in(from, to)?
+            .records_in(from, to, false)?
             .iter()
             .map(|r| (r.id, split_rows(r, split)))
             .collect())
@@ -625,7 +615,7 @@ impl Store {
         let mut next = positions.iter().copied().peekable();
         let mut base = 0;
         let mut local = Vec::new();
-        for rec in self.batches_in(from, to)? {
+        for rec in self.records_in(from, to, false)? {
             let n = split_rows(&rec, split);
             local.clear();
             while let Some(pos) = next.next_if(|&p| p < base + n) {
@@ -768,6 +758,13 @@ impl Store {
         time: chrono::DateTime<chrono::Utc>,
     ) -> Result<Vec<Entry>, StoreError> {
         let mut entries = Vec::new();
+        // Every owner's start comes here: a store with no chunks (any
+        // store written or moved since row files) has nothing to move,
+        // and its batch records need not be read. (A batch with no rows
+        // has no chunks either, and reads as empty without a file.)
+        if self.chunks.is_empty() {
+            return Ok(entries);
+        }
         for mut rec in self.batches()? {
             if rec.rows_file.is_some() {
                 continue;
@@ -800,12 +797,10 @@ impl Store {
             rec.rows_file = Some(file);
             let record_json = json(&rec);
             let line = entry.line().into_bytes();
-            let mut prefix = rec.id.key().to_vec();
             let mut old_keys = Vec::new();
-            for kv in self.chunks.scan_prefix(&prefix) {
+            for kv in self.chunks.scan_prefix(rec.id.key()) {
                 old_keys.push(kv.map_err(|e| self.sled_err(e))?.0.to_vec());
             }
-            prefix.clear();
             let store_path = self.path.clone();
             let result: Result<(), TransactionError<StoreError>> =
                 (&self.batches, &self.chunks, &self.audit).transaction(
