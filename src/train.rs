@@ -168,6 +168,29 @@ fn split(n: usize, fraction: f64, rng: &mut Rng) -> (Vec<usize>, Vec<usize>) {
     (idx, val)
 }
 
+/// A cold run's freshly initialised model (seeded from `cfg.seed`) and
+/// its settings, for the held and the streamed cold runs alike.
+pub(crate) fn cold_start<'a>(
+    spec: &FeatureSpec,
+    model_config: &ModelConfig,
+    target: TargetScale,
+    cfg: &'a TrainingConfig,
+    control: Control<'a>,
+    started: Instant,
+) -> Result<(Model, Run<'a>), TrainError> {
+    let init_seed = stream(cfg.seed, INIT).next_u64();
+    let model = Model::new(spec.clone(), model_config, target, cfg.backend, init_seed)?;
+    let run = Run {
+        kind: RunKind::Cold,
+        cfg,
+        learning_rate: cfg.learning_rate,
+        max_epochs: cfg.cold_epochs,
+        control,
+        started,
+    };
+    Ok((model, run))
+}
+
 /// Trains a new model from scratch on `rows` with the given feature
 /// encoding (scaler stats frozen by the caller). `patience = 0` turns early
 /// stopping off and trains on every row.
@@ -203,16 +226,7 @@ pub fn train_cold(
     };
     train.scale_targets(spec.task, target);
     val.scale_targets(spec.task, target);
-    let init_seed = stream(cfg.seed, INIT).next_u64();
-    let model = Model::new(spec.clone(), model_config, target, cfg.backend, init_seed)?;
-    let run = Run {
-        kind: RunKind::Cold,
-        cfg,
-        learning_rate: cfg.learning_rate,
-        max_epochs: cfg.cold_epochs,
-        control,
-        started,
-    };
+    let (model, run) = cold_start(spec, model_config, target, cfg, control, started)?;
     let fixed = train.n();
     let mut epochs = Held::new(&train, fixed, 0, &mut rng);
     run.fit(model, &mut epochs, &val)

@@ -20,11 +20,11 @@
 
 use std::time::Instant;
 
-use super::{Data, Epochs, INIT, Run, SPLIT, Step, TrainError, Trained, no_rows, stream};
+use super::{Data, Epochs, SPLIT, Step, TrainError, Trained, no_rows, stream};
 use crate::config::{ModelConfig, Task, TrainingConfig};
 use crate::ids::BatchId;
+use crate::model::TargetScale;
 use crate::model::checkpoint::Streamed;
-use crate::model::{Model, RunKind, TargetScale};
 use crate::rng::Rng;
 use crate::schema::{FeatureSpec, RowMatrix, RunningStats};
 
@@ -234,16 +234,7 @@ pub fn train_cold(
             ..Data::default()
         };
     }
-    let init_seed = stream(cfg.seed, INIT).next_u64();
-    let model = Model::new(spec.clone(), model_config, target, cfg.backend, init_seed)?;
-    let run = Run {
-        kind: RunKind::Cold,
-        cfg,
-        learning_rate: cfg.learning_rate,
-        max_epochs: cfg.cold_epochs,
-        control,
-        started,
-    };
+    let (model, run) = super::cold_start(spec, model_config, target, cfg, control, started)?;
     run.fit(model, &mut epochs, &val)
 }
 
