@@ -177,6 +177,9 @@ const SETTINGS: &[&str] = &[
     "l2 1e-4:l2=1e-4",
     "l2 1e-3:l2=1e-3",
     "replay_ratio 2:replay_ratio=2",
+    "weight_average_decay 0.9:weight_average_decay=0.9",
+    "weight_average_decay 0.99:weight_average_decay=0.99",
+    "weight_average_decay 0.999:weight_average_decay=0.999",
 ];
 
 struct Figures {

@@ -293,6 +293,9 @@ pub struct TrainingConfig {
     /// this many old standard deviations or its std changed by more than
     /// this share; 0 never refreshes.
     pub rescale_threshold: f64,
+    /// Exponential average of the weights over optimizer steps (0 = off):
+    /// epochs are judged, and the best one kept, by the averaged weights.
+    pub weight_average_decay: f64,
 }
 
 impl Default for TrainingConfig {
@@ -314,6 +317,7 @@ impl Default for TrainingConfig {
             shrink: 1.0,
             perturb: 0.0,
             rescale_threshold: 0.5,
+            weight_average_decay: 0.0,
         }
     }
 }
@@ -646,7 +650,7 @@ impl Config {
             );
         }
         let t = &self.training;
-        let checks: [(&str, bool, &str); 12] = [
+        let checks: [(&str, bool, &str); 13] = [
             (
                 "batch_size",
                 t.batch_size >= 1,
@@ -692,6 +696,11 @@ impl Config {
                 "perturb",
                 t.perturb >= 0.0 && t.perturb <= 1.0,
                 "perturb must be in [0, 1]; 0 turns shrink-and-perturb off",
+            ),
+            (
+                "weight_average_decay",
+                (0.0..1.0).contains(&t.weight_average_decay),
+                "weight_average_decay must be 0 (off) or in (0, 1), such as 0.99",
             ),
             (
                 "rescale_threshold",

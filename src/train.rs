@@ -471,6 +471,10 @@ impl Run<'_> {
         // parent unchanged rather than anything worse on the validation
         // rows (new and replayed older rows alike).
         let mut best: Option<(f64, usize, Vec<LayerWeights>)> = None;
+        // With `weight_average_decay`, epochs are judged by the running
+        // average of the weights, which starts at the run's first weights.
+        let mut average = (cfg.weight_average_decay > 0.0)
+            .then(|| WeightAverage::new(model.weights(), cfg.weight_average_decay));
         let mut start_validation_loss = None;
         if self.kind == RunKind::Warm && val.n() > 0 {
             let v = mean_loss(&model, val)? * unit;
@@ -529,6 +533,9 @@ impl Run<'_> {
                 };
                 let grads = GradientsParams::from_grads(loss.backward(), &*net);
                 *net = optimizer.step(self.learning_rate, net.clone(), grads);
+                if let Some(a) = average.as_mut() {
+                    a.update(&net.weights());
+                }
                 b += 1;
                 self.report(epoch, b, batches, None, None);
                 Ok(true)
@@ -542,11 +549,23 @@ impl Run<'_> {
             train_loss.push(tl);
             let mut vl = None;
             if val.n() > 0 {
-                let v = mean_loss(&model, val)? * unit;
+                let (v, judged) = match &average {
+                    None => (mean_loss(&model, val)? * unit, None),
+                    Some(a) => {
+                        // The parameter ids are fixed, so Adam's state
+                        // follows the weights that are swapped back.
+                        let current = model.weights();
+                        model.set_weights(&a.weights);
+                        let v = mean_loss(&model, val)? * unit;
+                        model.set_weights(&current);
+                        (v, Some(&a.weights))
+                    }
+                };
                 validation_loss.push(v);
                 vl = Some(v);
                 if best.as_ref().is_none_or(|(b, _, _)| v < *b) {
-                    best = Some((v, epoch, model.weights()));
+                    let w = judged.cloned().unwrap_or_else(|| model.weights());
+                    best = Some((v, epoch, w));
                 }
             }
             self.report(epoch, batches, batches, Some(tl), vl);
@@ -560,19 +579,28 @@ impl Run<'_> {
         }
 
         let epochs = train_loss.len();
+        let mut kept_validation_loss = None;
         let best_epoch = match best {
-            Some((_, e, w)) => {
-                if e != epochs {
-                    model.set_weights(&w);
-                }
+            Some((v, e, w)) => {
+                kept_validation_loss = Some(v);
+                // Always restored: the model holds the last step's raw
+                // weights, and after a time-budget stop a part-trained epoch
+                // that was never validated.
+                model.set_weights(&w);
                 e
             }
-            None => epochs,
+            None => {
+                if let Some(a) = &average {
+                    model.set_weights(&a.weights);
+                }
+                epochs
+            }
         };
         let summary = TrainingSummary {
             kind: self.kind,
             epochs,
             best_epoch,
+            kept_validation_loss,
             start_validation_loss,
             rows: fixed,
             replay_rows: replay,
@@ -608,6 +636,39 @@ impl Run<'_> {
                 validation_loss,
                 elapsed_seconds: self.started.elapsed().as_secs_f64(),
             });
+        }
+    }
+}
+
+/// An exponential average of network weights over optimizer steps. The
+/// decay ramps up from 0.1 (`(1 + t) / (10 + t)` at step `t`) to its set
+/// value, so the first weights of a run fade fast.
+struct WeightAverage {
+    weights: Vec<LayerWeights>,
+    decay: f64,
+    steps: u64,
+}
+
+impl WeightAverage {
+    fn new(weights: Vec<LayerWeights>, decay: f64) -> WeightAverage {
+        WeightAverage {
+            weights,
+            decay,
+            steps: 0,
+        }
+    }
+
+    fn update(&mut self, current: &[LayerWeights]) {
+        let t = self.steps as f64;
+        let d = self.decay.min((1.0 + t) / (10.0 + t)) as f32;
+        self.steps += 1;
+        for (a, l) in self.weights.iter_mut().zip(current) {
+            for (x, y) in a.weight.iter_mut().zip(&l.weight) {
+                *x = d * *x + (1.0 - d) * y;
+            }
+            for (x, y) in a.bias.iter_mut().zip(&l.bias) {
+                *x = d * *x + (1.0 - d) * y;
+            }
         }
     }
 }

@@ -62,6 +62,11 @@ pub struct TrainingSummary {
     /// or, in a warm run, when no epoch beat the parent's own weights on
     /// the validation rows (the parent's weights are then kept).
     pub best_epoch: usize,
+    /// Validation loss of the weights kept (the best epoch's or, in a warm
+    /// run, the parent's); `None` without a validation split and in
+    /// manifests written before it was recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub kept_validation_loss: Option<f64>,
     /// Warm runs: the parent's validation loss before any step, the mark
     /// every epoch had to beat. `None` for cold runs, without a validation
     /// split, and in manifests written before it was recorded.

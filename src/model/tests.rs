@@ -315,6 +315,7 @@ fn summary() -> TrainingSummary {
         kind: RunKind::Cold,
         epochs: 0,
         best_epoch: 0,
+        kept_validation_loss: None,
         start_validation_loss: None,
         rows: 0,
         replay_rows: 0,

@@ -554,3 +554,99 @@ fn a_run_on_few_rows_takes_at_least_the_minimum_steps_an_epoch() {
         assert!(steps.borrow().iter().all(|&b| b == want));
     }
 }
+
+/// Noisy rows: a weak linear law under noise, where a run soon circles a
+/// plateau of validation loss.
+fn noisy_rows(n: usize, seed: u64) -> RowMatrix {
+    let mut rng = Rng::new(seed);
+    let mut rows = RowMatrix::new(3);
+    for _ in 0..n {
+        let (a, b) = (rng.normal() as f32, rng.normal() as f32);
+        let y = 0.5 * a - 0.3 * b + rng.normal() as f32;
+        rows.push_row(&[number_cell(Some(a)), number_cell(Some(b)), number_cell(Some(y))]);
+    }
+    rows
+}
+
+#[test]
+fn a_weight_average_judges_the_epochs_without_changing_the_steps() {
+    // The average only watches the steps: with it and without it, a run
+    // takes the same steps (the same training loss, epoch for epoch), but
+    // epochs are judged, and the kept weights chosen, by the average.
+    let spec = spec(2, Task::Regression, 1);
+    let model = ModelConfig {
+        hidden: vec![32],
+        ..ModelConfig::default()
+    };
+    for seed in 1..=3 {
+        let rows = noisy_rows(300, seed);
+        let base = TrainingConfig {
+            cold_epochs: 40,
+            patience: 6,
+            learning_rate: 0.02,
+            seed,
+            ..small_cfg()
+        };
+        let run = |weight_average_decay| {
+            train_cold(
+                &spec,
+                &model,
+                &TrainingConfig {
+                    weight_average_decay,
+                    ..base.clone()
+                },
+                &rows,
+                Control::default(),
+            )
+            .expect("trains")
+        };
+        let (raw, averaged) = (run(0.0), run(0.9));
+        let (a, b) = (&raw.summary, &averaged.summary);
+        let common = a.epochs.min(b.epochs);
+        assert_eq!(a.train_loss[..common], b.train_loss[..common], "seed {seed}");
+        assert_ne!(a.validation_loss[..common], b.validation_loss[..common]);
+        for s in [a, b] {
+            let best = s.validation_loss.iter().copied().fold(f64::INFINITY, f64::min);
+            assert_eq!(s.kept_validation_loss, Some(best), "seed {seed}");
+            assert_eq!(s.validation_loss[s.best_epoch - 1], best, "seed {seed}");
+        }
+        assert_ne!(raw.model.weights_digest(), averaged.model.weights_digest());
+    }
+}
+
+#[test]
+fn a_warm_run_with_a_weight_average_never_hands_back_worse_than_its_parent() {
+    let spec = spec(2, Task::Regression, 1);
+    let cold = train_cold(
+        &spec,
+        &linear_model(),
+        &small_cfg(),
+        &noisy_rows(400, 11),
+        Control::default(),
+    )
+    .expect("trains");
+    for (rate, seed) in [(5.0, 1), (1e-2, 2), (1e-3, 3)] {
+        let cfg = TrainingConfig {
+            warm_learning_rate: Some(rate),
+            warm_epochs: 10,
+            weight_average_decay: 0.9,
+            seed,
+            ..small_cfg()
+        };
+        let warm = train_warm(
+            &cold.model,
+            &cfg,
+            &noisy_rows(200, 20 + seed),
+            &noisy_rows(200, 30 + seed),
+            Control::default(),
+        )
+        .expect("trains");
+        let s = &warm.summary;
+        let start = s.start_validation_loss.expect("a warm run records its start");
+        let kept = s.kept_validation_loss.expect("a validation split");
+        assert!(kept <= start, "rate {rate}: kept {kept} against start {start}");
+        if s.best_epoch == 0 {
+            assert_eq!(warm.model.weights_digest(), cold.model.weights_digest());
+        }
+    }
+}
