@@ -300,13 +300,18 @@ pub fn parse(
     let parsed = parse_rows(bytes, schema, stored, limits, Purpose::Store)?;
     let width = schema.width();
     let n_holdout = parsed.holdout.iter().filter(|&&h| h).count();
+    // Split straight from the parts into buffers of the exact size: one
+    // copy of the cells, no growth.
     let mut train = RowMatrix::with_capacity(width, parsed.holdout.len() - n_holdout);
     let mut holdout = RowMatrix::with_capacity(width, n_holdout);
-    for (r, &h) in parsed.holdout.iter().enumerate() {
-        if h {
-            holdout.push_row(parsed.rows.row(r));
-        } else {
-            train.push_row(parsed.rows.row(r));
+    let mut flags = parsed.holdout.iter();
+    for part in &parsed.parts {
+        for r in 0..part.n_rows() {
+            if *flags.next().expect("a holdout flag per row") {
+                holdout.push_row(part.row(r));
+            } else {
+                train.push_row(part.row(r));
+            }
         }
     }
     Ok(Batch {
@@ -335,11 +340,16 @@ pub fn parse_for_scoring(
     vocabs: &Vocabularies,
     limits: &Limits,
 ) -> Result<ScoringRows, Refusal> {
-    let parsed = parse_rows(bytes, schema, vocabs, limits, Purpose::Score)?;
+    let Parsed {
+        parts,
+        new_categories,
+        has_target,
+        ..
+    } = parse_rows(bytes, schema, vocabs, limits, Purpose::Score)?;
     Ok(ScoringRows {
-        rows: parsed.rows,
-        has_target: parsed.has_target,
-        unseen: parsed.new_categories,
+        rows: concat(parts),
+        has_target,
+        unseen: new_categories,
     })
 }
 
@@ -350,10 +360,24 @@ enum Purpose {
 }
 
 struct Parsed {
-    rows: RowMatrix,
+    /// The rows in file order, as the parts parsed them.
+    parts: Vec<RowMatrix>,
     holdout: Vec<bool>,
     new_categories: BTreeMap<usize, Vec<String>>,
     has_target: bool,
+}
+
+/// The parts' rows in one matrix.
+fn concat(mut parts: Vec<RowMatrix>) -> RowMatrix {
+    if parts.len() == 1 {
+        return parts.pop().expect("one part");
+    }
+    let n = parts.iter().map(RowMatrix::n_rows).sum();
+    let mut all = RowMatrix::with_capacity(parts[0].width(), n);
+    for part in &parts {
+        all.extend(part);
+    }
+    all
 }
 
 fn parse_rows(
@@ -562,9 +586,10 @@ fn parse_part(reader: Records<'_>, bytes: &[u8], first_line: u64, cx: &Context<'
     let n_fields = cx.n_fields;
     let odd_quotes = cx.odd_quotes;
     let width = schema.width();
+    let lines = count_byte(bytes, b'\n') + 1;
     let mut part = Part {
-        rows: RowMatrix::with_capacity(width, count_byte(bytes, b'\n') + 1),
-        holdout: Vec::new(),
+        rows: RowMatrix::with_capacity(width, lines),
+        holdout: Vec::with_capacity(if purpose == Purpose::Store { lines } else { 0 }),
         vocabs: vec![None; width],
         new_categories: BTreeMap::new(),
         problems: Problems {
@@ -808,8 +833,8 @@ fn merge_parts(parts: Vec<Part>, cx: &Context<'_>) -> Result<Parsed, Refusal> {
     let mut rows_seen = 0;
     let mut vocabs: Vec<Option<schema::Vocab>> = vec![None; width];
     let mut new_categories: BTreeMap<usize, Vec<String>> = BTreeMap::new();
-    let mut rows: Option<RowMatrix> = None;
-    let mut holdout = Vec::new();
+    let mut rows: Vec<RowMatrix> = Vec::with_capacity(parts.len());
+    let mut holdout = Vec::with_capacity(parts.iter().map(|p| p.holdout.len()).sum());
     for mut part in parts {
         problems.total += part.problems.total;
         for p in part.problems.listed {
@@ -845,10 +870,7 @@ fn merge_parts(parts: Vec<Part>, cx: &Context<'_>) -> Result<Parsed, Refusal> {
                 });
             }
         }
-        match &mut rows {
-            None => rows = Some(part.rows),
-            Some(r) => r.extend(&part.rows),
-        }
+        rows.push(part.rows);
         holdout.extend(part.holdout);
     }
     if problems.total > 0 {
@@ -862,8 +884,11 @@ fn merge_parts(parts: Vec<Part>, cx: &Context<'_>) -> Result<Parsed, Refusal> {
             "the file has a header but no rows; nothing to add",
         ));
     }
+    if rows.is_empty() {
+        rows.push(RowMatrix::new(width));
+    }
     Ok(Parsed {
-        rows: rows.unwrap_or_else(|| RowMatrix::new(width)),
+        parts: rows,
         holdout,
         new_categories,
         has_target: cx.has_target,
@@ -1273,16 +1298,16 @@ mod tests {
                 let text = format!("id,city,temp,flag,y\n{}\n", lines.join("\n"));
                 match (run(&text, 1), run(&text, parts)) {
                     (Ok(a), Ok(b)) => {
-                        prop_assert_eq!(a.rows, b.rows);
-                        prop_assert_eq!(a.holdout, b.holdout);
-                        prop_assert_eq!(a.new_categories, b.new_categories);
+                        prop_assert_eq!(&a.holdout, &b.holdout);
+                        prop_assert_eq!(&a.new_categories, &b.new_categories);
+                        prop_assert_eq!(concat(a.parts), concat(b.parts));
                     }
                     (Err(a), Err(b)) => {
                         prop_assert_eq!(a.total, b.total);
                         prop_assert_eq!(a.problems, b.problems);
                     }
                     (a, b) => prop_assert!(false, "one part: {:?}; {parts} parts: {:?}",
-                        a.map(|p| p.rows.n_rows()), b.map(|p| p.rows.n_rows())),
+                        a.map(|p| concat(p.parts).n_rows()), b.map(|p| concat(p.parts).n_rows())),
                 }
             }
         }
