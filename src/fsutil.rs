@@ -43,6 +43,76 @@ fn temp_path(dest: &Path) -> PathBuf {
     parent_dir(dest).join(format!("{TEMP_PREFIX}{}-{name}", std::process::id()))
 }
 
+/// A file written under a temp name and hashed (blake3) as it is written,
+/// for files named by their content: `finish` fsyncs it, renames it to the
+/// name made from its hash and fsyncs the folder. Dropped unfinished, the
+/// temp file is removed (and a crash leaves one that the next start removes).
+pub struct HashedFile {
+    out: Option<std::io::BufWriter<fs::File>>,
+    hasher: blake3::Hasher,
+    bytes: u64,
+    tmp: PathBuf,
+}
+
+impl HashedFile {
+    /// Starts a file in `dir`; `label` only tells temp files apart.
+    pub fn create(dir: &Path, label: &str) -> std::io::Result<HashedFile> {
+        let tmp = dir.join(format!("{TEMP_PREFIX}{}-{label}", std::process::id()));
+        let file = fs::File::create(&tmp)?;
+        Ok(HashedFile {
+            out: Some(std::io::BufWriter::with_capacity(1 << 20, file)),
+            hasher: blake3::Hasher::new(),
+            bytes: 0,
+            tmp,
+        })
+    }
+
+    /// Makes the file durable under `name(hash)` in its folder. Returns the
+    /// path, the hash and the size.
+    pub fn finish(
+        mut self,
+        name: impl FnOnce(&blake3::Hash) -> String,
+    ) -> std::io::Result<(PathBuf, blake3::Hash, u64)> {
+        let out = self.out.take().expect("finished once");
+        let file = out.into_inner().map_err(|e| e.into_error())?;
+        let result = (|| {
+            file.sync_all()?;
+            drop(file);
+            let hash = self.hasher.finalize();
+            let dest = parent_dir(&self.tmp).join(name(&hash));
+            fs::rename(&self.tmp, &dest)?;
+            sync_dir(parent_dir(&dest))?;
+            Ok((dest, hash, self.bytes))
+        })();
+        if result.is_err() {
+            let _ = fs::remove_file(&self.tmp);
+        }
+        result
+    }
+}
+
+impl Write for HashedFile {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        let out = self.out.as_mut().expect("not finished");
+        let n = out.write(buf)?;
+        self.hasher.update(&buf[..n]);
+        self.bytes += n as u64;
+        Ok(n)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.out.as_mut().expect("not finished").flush()
+    }
+}
+
+impl Drop for HashedFile {
+    fn drop(&mut self) {
+        if self.out.take().is_some() {
+            let _ = fs::remove_file(&self.tmp);
+        }
+    }
+}
+
 /// Creates (or truncates) `path`, writes `bytes` and fsyncs the file.
 fn write_synced(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let mut f = fs::OpenOptions::new()
@@ -145,5 +215,35 @@ mod tests {
         .unwrap();
         assert_eq!(remove_stale_temps(d.path()).unwrap(), 2);
         assert_eq!(fs::read_dir(d.path()).unwrap().count(), 2);
+    }
+
+    #[test]
+    fn a_hashed_file_is_named_by_what_was_written_and_leaves_no_temp_behind() {
+        let d = tempfile::tempdir().unwrap();
+        let text = b"row one\nrow two\n".repeat(1000);
+        let mut f = HashedFile::create(d.path(), "b000001").unwrap();
+        for chunk in text.chunks(333) {
+            f.write_all(chunk).unwrap();
+        }
+        let (path, hash, bytes) = f.finish(|h| format!("{}.bin", &h.to_hex()[..8])).unwrap();
+        assert_eq!(hash, blake3::hash(&text));
+        assert_eq!(bytes, text.len() as u64);
+        assert_eq!(fs::read(&path).unwrap(), text);
+        assert_eq!(
+            path.file_name().unwrap().to_string_lossy(),
+            format!("{}.bin", &hash.to_hex()[..8])
+        );
+        // Only the named file is there, and the rename was made durable.
+        let names: Vec<_> = fs::read_dir(d.path())
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .collect();
+        assert_eq!(names, vec![path]);
+        assert!(SYNCED_DIRS.with(|s| s.borrow().iter().any(|p| p == d.path())));
+        // Dropped before `finish`: nothing is left.
+        let mut g = HashedFile::create(d.path(), "b000002").unwrap();
+        g.write_all(b"half").unwrap();
+        drop(g);
+        assert_eq!(fs::read_dir(d.path()).unwrap().count(), 1);
     }
 }

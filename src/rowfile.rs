@@ -149,11 +149,36 @@ pub fn encode(
     train: &RowMatrix,
     holdout: &RowMatrix,
 ) -> Result<Vec<u8>, RowFileError> {
+    encode_into(schema, texts, batch, train, holdout, Vec::new())
+}
+
+/// `encode`, written to `out` as it is made (a file, so that a large batch
+/// needs no buffer of the whole file); returns `out`.
+pub fn encode_into<W: std::io::Write + Send>(
+    schema: &Schema,
+    texts: &dyn Texts,
+    batch: BatchId,
+    train: &RowMatrix,
+    holdout: &RowMatrix,
+    out: W,
+) -> Result<W, RowFileError> {
     let bad = |what: String| RowFileError::Bad {
         path: PathBuf::from(format!("(rows of {batch})")),
         what,
     };
-    let pq = |e: parquet::errors::ParquetError| bad(e.to_string());
+    // A failed write (a full disk) is the machine's error, not a bad file.
+    let pq = |e: parquet::errors::ParquetError| match e {
+        parquet::errors::ParquetError::External(inner) => {
+            match inner.downcast::<std::io::Error>() {
+                Ok(io) => RowFileError::Io {
+                    path: PathBuf::from(format!("(rows of {batch})")),
+                    source: *io,
+                },
+                Err(other) => bad(other.to_string()),
+            }
+        }
+        other => bad(other.to_string()),
+    };
     let props = WriterProperties::builder()
         .set_created_by(format!("tidegate {}", env!("CARGO_PKG_VERSION")))
         .set_key_value_metadata(Some(vec![
@@ -163,9 +188,8 @@ pub fn encode(
             KeyValue::new(META_HOLDOUT.into(), holdout.n_rows().to_string()),
         ]))
         .build();
-    let mut writer =
-        SerializedFileWriter::new(Vec::new(), Arc::new(file_schema(schema)), Arc::new(props))
-            .map_err(pq)?;
+    let mut writer = SerializedFileWriter::new(out, Arc::new(file_schema(schema)), Arc::new(props))
+        .map_err(pq)?;
     let batch_no = i64::try_from(batch.0).map_err(|_| bad("batch number too large".into()))?;
     for (split, rows) in [(Split::Train, train), (Split::Holdout, holdout)] {
         let n = rows.n_rows();

@@ -681,14 +681,6 @@ impl Store {
         train: &RowMatrix,
         holdout: &RowMatrix,
     ) -> Result<FileRef, StoreError> {
-        let bytes = rowfile::encode(schema, texts, batch, train, holdout)
-            .map_err(|e| self.row_file_err(e))?;
-        let hash = blake3::hash(&bytes);
-        let file = FileRef {
-            name: rowfile::file_name(batch, &hash),
-            hash: hash.to_hex().to_string(),
-            bytes: bytes.len() as u64,
-        };
         let io = |path: PathBuf| move |source| StoreError::Io { path, source };
         if !self.rows_dir.is_dir() {
             std::fs::create_dir_all(&self.rows_dir).map_err(io(self.rows_dir.clone()))?;
@@ -696,8 +688,28 @@ impl Store {
                 crate::fsutil::sync_dir(parent).map_err(io(parent.to_path_buf()))?;
             }
         }
-        let path = self.row_file_path(&file);
-        crate::fsutil::write_atomic(&path, &bytes).map_err(io(path.clone()))?;
+        // Encoded straight into a temp file and hashed on the way, then
+        // named by its hash: no copy of the whole file in memory.
+        let out = crate::fsutil::HashedFile::create(&self.rows_dir, &batch.to_string())
+            .map_err(io(self.rows_dir.clone()))?;
+        let out =
+            rowfile::encode_into(schema, texts, batch, train, holdout, out).map_err(
+                |e| match e {
+                    RowFileError::Io { source, .. } => StoreError::Io {
+                        path: self.rows_dir.clone(),
+                        source,
+                    },
+                    other => self.row_file_err(other),
+                },
+            )?;
+        let (path, hash, bytes) = out
+            .finish(|hash| rowfile::file_name(batch, hash))
+            .map_err(io(self.rows_dir.clone()))?;
+        let file = FileRef {
+            name: rowfile::file_name(batch, &hash),
+            hash: hash.to_hex().to_string(),
+            bytes,
+        };
         crate::failpoint::hit("store:after-row-file").map_err(io(path))?;
         Ok(file)
     }

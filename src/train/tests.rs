@@ -563,7 +563,11 @@ fn noisy_rows(n: usize, seed: u64) -> RowMatrix {
     for _ in 0..n {
         let (a, b) = (rng.normal() as f32, rng.normal() as f32);
         let y = 0.5 * a - 0.3 * b + rng.normal() as f32;
-        rows.push_row(&[number_cell(Some(a)), number_cell(Some(b)), number_cell(Some(y))]);
+        rows.push_row(&[
+            number_cell(Some(a)),
+            number_cell(Some(b)),
+            number_cell(Some(y)),
+        ]);
     }
     rows
 }
@@ -603,10 +607,18 @@ fn a_weight_average_judges_the_epochs_without_changing_the_steps() {
         let (raw, averaged) = (run(0.0), run(0.9));
         let (a, b) = (&raw.summary, &averaged.summary);
         let common = a.epochs.min(b.epochs);
-        assert_eq!(a.train_loss[..common], b.train_loss[..common], "seed {seed}");
+        assert_eq!(
+            a.train_loss[..common],
+            b.train_loss[..common],
+            "seed {seed}"
+        );
         assert_ne!(a.validation_loss[..common], b.validation_loss[..common]);
         for s in [a, b] {
-            let best = s.validation_loss.iter().copied().fold(f64::INFINITY, f64::min);
+            let best = s
+                .validation_loss
+                .iter()
+                .copied()
+                .fold(f64::INFINITY, f64::min);
             assert_eq!(s.kept_validation_loss, Some(best), "seed {seed}");
             assert_eq!(s.validation_loss[s.best_epoch - 1], best, "seed {seed}");
         }
@@ -642,9 +654,14 @@ fn a_warm_run_with_a_weight_average_never_hands_back_worse_than_its_parent() {
         )
         .expect("trains");
         let s = &warm.summary;
-        let start = s.start_validation_loss.expect("a warm run records its start");
+        let start = s
+            .start_validation_loss
+            .expect("a warm run records its start");
         let kept = s.kept_validation_loss.expect("a validation split");
-        assert!(kept <= start, "rate {rate}: kept {kept} against start {start}");
+        assert!(
+            kept <= start,
+            "rate {rate}: kept {kept} against start {start}"
+        );
         if s.best_epoch == 0 {
             assert_eq!(warm.model.weights_digest(), cold.model.weights_digest());
         }
