@@ -191,6 +191,7 @@ pub fn encode_into<W: std::io::Write + Send>(
     let mut writer = SerializedFileWriter::new(out, Arc::new(file_schema(schema)), Arc::new(props))
         .map_err(pq)?;
     let batch_no = i64::try_from(batch.0).map_err(|_| bad("batch number too large".into()))?;
+    let mut by_code: Vec<Vec<Option<ByteArray>>> = vec![Vec::new(); schema.columns.len()];
     for (split, rows) in [(Split::Train, train), (Split::Holdout, holdout)] {
         let n = rows.n_rows();
         let mut start = 0;
@@ -237,16 +238,31 @@ pub fn encode_into<W: std::io::Write + Send>(
                     }
                     ColumnKind::Category => {
                         let mut values = Vec::with_capacity(end - start);
+                        // One buffer per value, shared by every row that
+                        // holds it (a clone is a reference count).
+                        let known = &mut by_code[c];
                         for r in start..end {
                             match rows.code(r, c) {
                                 Some(code) => {
-                                    let text = texts.text(c, code).ok_or_else(|| {
-                                        bad(format!(
-                                            "column {:?} has code {code}, which no vocabulary holds",
-                                            column.name
-                                        ))
-                                    })?;
-                                    values.push(ByteArray::from(text));
+                                    let slot = code as usize;
+                                    if known.len() <= slot {
+                                        known.resize(slot + 1, None);
+                                    }
+                                    let value = match &known[slot] {
+                                        Some(v) => v.clone(),
+                                        None => {
+                                            let text = texts.text(c, code).ok_or_else(|| {
+                                                bad(format!(
+                                                    "column {:?} has code {code}, which no vocabulary holds",
+                                                    column.name
+                                                ))
+                                            })?;
+                                            let v = ByteArray::from(text);
+                                            known[slot] = Some(v.clone());
+                                            v
+                                        }
+                                    };
+                                    values.push(value);
                                     defs.push(1);
                                 }
                                 None => defs.push(0),
