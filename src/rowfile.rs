@@ -35,7 +35,7 @@ use parquet::file::metadata::KeyValue;
 use parquet::file::properties::WriterProperties;
 use parquet::file::reader::{FileReader, SerializedFileReader};
 use parquet::file::writer::SerializedFileWriter;
-use parquet::schema::types::Type;
+use parquet::schema::types::{ColumnPath, Type};
 
 use crate::config::ColumnKind;
 use crate::ids::BatchId;
@@ -46,7 +46,11 @@ use crate::store::Split;
 pub const FORMAT: &str = "1";
 
 /// Most rows in one row group.
-pub const GROUP_ROWS: usize = 65_536;
+pub const GROUP_ROWS: usize = 16_384;
+
+/// Largest row group a reader takes (files written before groups of
+/// `GROUP_ROWS` hold up to 65,536 rows a group).
+const MAX_GROUP_ROWS: usize = 65_536;
 
 /// The columns every file carries before the data columns. Config columns
 /// may not use these names (`config` refuses them).
@@ -162,6 +166,19 @@ pub fn encode_into<W: std::io::Write + Send>(
     holdout: &RowMatrix,
     out: W,
 ) -> Result<W, RowFileError> {
+    encode_in_groups(schema, texts, batch, train, holdout, out, GROUP_ROWS)
+}
+
+/// `encode_into` with row groups of at most `group_rows` rows.
+fn encode_in_groups<W: std::io::Write + Send>(
+    schema: &Schema,
+    texts: &dyn Texts,
+    batch: BatchId,
+    train: &RowMatrix,
+    holdout: &RowMatrix,
+    out: W,
+    group_rows: usize,
+) -> Result<W, RowFileError> {
     let bad = |what: String| RowFileError::Bad {
         path: PathBuf::from(format!("(rows of {batch})")),
         what,
@@ -179,7 +196,21 @@ pub fn encode_into<W: std::io::Write + Send>(
         }
         other => bad(other.to_string()),
     };
-    let props = WriterProperties::builder()
+    // Dictionaries pay for text (categories, the split) and constants (the
+    // batch); number columns and row numbers are mostly distinct values,
+    // where a dictionary costs more bytes and time than plain values.
+    let mut props = WriterProperties::builder();
+    let plain = std::iter::once(ROW_COLUMN).chain(
+        schema
+            .columns
+            .iter()
+            .filter(|c| c.kind == ColumnKind::Number)
+            .map(|c| c.name.as_str()),
+    );
+    for name in plain {
+        props = props.set_column_dictionary_enabled(ColumnPath::from(name), false);
+    }
+    let props = props
         .set_created_by(format!("tidegate {}", env!("CARGO_PKG_VERSION")))
         .set_key_value_metadata(Some(vec![
             KeyValue::new(META_FORMAT.into(), FORMAT.to_string()),
@@ -196,7 +227,7 @@ pub fn encode_into<W: std::io::Write + Send>(
         let n = rows.n_rows();
         let mut start = 0;
         while start < n {
-            let end = (start + GROUP_ROWS).min(n);
+            let end = (start + group_rows).min(n);
             let mut group = writer.next_row_group().map_err(pq)?;
             // The three bookkeeping columns.
             let mut col = group.next_column().map_err(pq)?.expect("tg_batch");
@@ -288,6 +319,10 @@ pub struct RowFile {
     reader: SerializedFileReader<File>,
     train_rows: usize,
     holdout_rows: usize,
+    /// Rows of each row group, in file order.
+    sizes: Vec<usize>,
+    /// How many of the groups hold training rows (the first ones).
+    train_groups: usize,
 }
 
 impl RowFile {
@@ -334,28 +369,38 @@ impl RowFile {
                     .into(),
             ));
         }
-        let groups = groups_of(train_rows) + groups_of(holdout_rows);
+        // Row groups hold one split each, training groups first; their size
+        // is the file's own (`GROUP_ROWS` now, 65,536 in earlier files).
         let md = reader.metadata();
-        if md.num_row_groups() != groups {
+        let sizes: Vec<usize> = (0..md.num_row_groups())
+            .map(|g| usize::try_from(md.row_group(g).num_rows()).unwrap_or(0))
+            .collect();
+        if let Some(g) = sizes.iter().position(|&n| n == 0 || n > MAX_GROUP_ROWS) {
             return Err(bad(format!(
-                "has {} row groups, the layout needs {groups}",
-                md.num_row_groups()
+                "row group {g} holds {} rows; the layout allows 1 to {MAX_GROUP_ROWS}",
+                sizes[g]
             )));
         }
-        for g in 0..groups {
-            let want = group_len(g, train_rows, holdout_rows);
-            if md.row_group(g).num_rows() != want as i64 {
-                return Err(bad(format!(
-                    "row group {g} holds {} rows, the layout needs {want}",
-                    md.row_group(g).num_rows()
-                )));
-            }
+        let mut train_groups = 0;
+        let mut sum = 0;
+        while sum < train_rows && train_groups < sizes.len() {
+            sum += sizes[train_groups];
+            train_groups += 1;
+        }
+        let rest: usize = sizes[train_groups..].iter().sum();
+        if sum != train_rows || rest != holdout_rows {
+            return Err(bad(format!(
+                "its row groups ({} of them) do not split into {train_rows} training and {holdout_rows} holdout rows",
+                sizes.len()
+            )));
         }
         Ok(RowFile {
             path: path.to_path_buf(),
             reader,
             train_rows,
             holdout_rows,
+            sizes,
+            train_groups,
         })
     }
 
@@ -383,14 +428,15 @@ impl RowFile {
         out: &mut RowMatrix,
     ) -> Result<(), RowFileError> {
         let n = self.rows(split);
-        let first_group = match split {
-            Split::Train => 0,
-            Split::Holdout => groups_of(self.train_rows),
+        let groups = match split {
+            Split::Train => 0..self.train_groups,
+            Split::Holdout => self.train_groups..self.sizes.len(),
         };
         let mut picks = wanted.map(|w| w.iter().copied().peekable());
-        for g in 0..groups_of(n) {
-            let lo = g * GROUP_ROWS;
-            let hi = (lo + GROUP_ROWS).min(n);
+        let mut hi = 0;
+        for g in groups {
+            let lo = hi;
+            hi += self.sizes[g];
             let local: Option<Vec<usize>> = match picks.as_mut() {
                 None => None,
                 Some(p) => {
@@ -404,7 +450,7 @@ impl RowFile {
                     Some(v)
                 }
             };
-            let cells = self.decode_group(schema, vocabs, first_group + g, hi - lo)?;
+            let cells = self.decode_group(schema, vocabs, g, hi - lo)?;
             let width = schema.width();
             match local {
                 None => {
@@ -631,20 +677,6 @@ fn read_values<T: parquet::data_type::DataType>(
     Ok((got, values))
 }
 
-fn groups_of(rows: usize) -> usize {
-    rows.div_ceil(GROUP_ROWS)
-}
-
-/// Rows of row group `g` in a file with these split sizes.
-fn group_len(g: usize, train_rows: usize, holdout_rows: usize) -> usize {
-    let (g, n) = if g < groups_of(train_rows) {
-        (g, train_rows)
-    } else {
-        (g - groups_of(train_rows), holdout_rows)
-    };
-    (n - g * GROUP_ROWS).min(GROUP_ROWS)
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -733,6 +765,51 @@ mod tests {
             f.read(&schema(), &vocabs(), split, None, &mut got).unwrap();
             assert_eq!(got.cells(), want.cells(), "{split:?}");
         }
+    }
+
+    #[test]
+    fn files_with_the_earlier_larger_row_groups_still_read() {
+        // Files written before groups of GROUP_ROWS held 65,536 rows a group.
+        let dir = tempfile::tempdir().unwrap();
+        let train = rows(MAX_GROUP_ROWS + 300, 5);
+        let holdout = rows(GROUP_ROWS + 10, 6);
+        let bytes = encode_in_groups(
+            &schema(),
+            &vocabs(),
+            BatchId(3),
+            &train,
+            &holdout,
+            Vec::new(),
+            MAX_GROUP_ROWS,
+        )
+        .unwrap();
+        let path = dir
+            .path()
+            .join(file_name(BatchId(3), &blake3::hash(&bytes)));
+        std::fs::write(&path, bytes).unwrap();
+        let (nt, nh) = (train.n_rows(), holdout.n_rows());
+        let f = RowFile::open(&path, &schema(), BatchId(3), nt, nh).unwrap();
+        assert_eq!((f.sizes.len(), f.train_groups), (3, 2));
+        for (split, want) in [(Split::Train, &train), (Split::Holdout, &holdout)] {
+            let mut got = RowMatrix::new(4);
+            f.read(&schema(), &vocabs(), split, None, &mut got).unwrap();
+            assert_eq!(got.cells(), want.cells(), "{split:?}");
+        }
+        let picks = vec![0, GROUP_ROWS, MAX_GROUP_ROWS - 1, MAX_GROUP_ROWS, nt - 1];
+        let mut got = RowMatrix::new(4);
+        f.read(&schema(), &vocabs(), Split::Train, Some(&picks), &mut got)
+            .unwrap();
+        assert_eq!(got.cells(), train.select(&picks).cells());
+        // The same rows in today's groups: more of them, same rows.
+        let now = write(dir.path(), BatchId(4), &train, &holdout);
+        let g = RowFile::open(&now, &schema(), BatchId(4), nt, nh).unwrap();
+        assert_eq!(
+            g.sizes.len(),
+            nt.div_ceil(GROUP_ROWS) + nh.div_ceil(GROUP_ROWS)
+        );
+        // A record with other counts is refused.
+        let err = RowFile::open(&path, &schema(), BatchId(3), nt - 1, nh + 1);
+        assert!(err.is_err());
     }
 
     #[test]
