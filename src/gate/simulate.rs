@@ -33,6 +33,7 @@ fn expected(beta: f64, s: f64) -> f64 {
 fn losses(
     rng: &mut Rng,
     batches: usize,
+    rows_per_batch: usize,
     new_batches: usize,
     models: &[(f64, f64)],
 ) -> (Vec<Vec<f64>>, Vec<bool>, Vec<u64>) {
@@ -41,7 +42,7 @@ fn losses(
     let mut labels = Vec::new();
     for b in 0..batches {
         let day = DAY_SD * rng.normal();
-        for _ in 0..ROWS_PER_BATCH {
+        for _ in 0..rows_per_batch {
             let mu = 20.0 + 40.0 * rng.uniform();
             let y = mu * (1.0 + day) + NOISE * mu * rng.normal();
             for (m, &(beta, s)) in models.iter().enumerate() {
@@ -65,14 +66,35 @@ pub fn promotion_rate(
     models: &[(f64, f64)],
     clustered: bool,
 ) -> f64 {
+    promotion_rate_with(
+        &policy(),
+        trials,
+        batches,
+        ROWS_PER_BATCH,
+        seed,
+        models,
+        clustered,
+    )
+}
+
+/// `promotion_rate` under `policy`, with `rows_per_batch` holdout rows in
+/// every batch.
+pub fn promotion_rate_with(
+    policy: &Policy,
+    trials: usize,
+    batches: usize,
+    rows_per_batch: usize,
+    seed: u64,
+    models: &[(f64, f64)],
+    clustered: bool,
+) -> f64 {
     let mut rng = Rng::new(seed);
-    let policy = policy();
     let mut promoted = 0usize;
     for _ in 0..trials {
         // Which way the serving model leans is random per trial.
         let sign = if rng.uniform() < 0.5 { 1.0 } else { -1.0 };
         let signed: Vec<(f64, f64)> = models.iter().map(|&(b, s)| (sign * b, s)).collect();
-        let (l, flags, labels) = losses(&mut rng, batches, 1, &signed);
+        let (l, flags, labels) = losses(&mut rng, batches, rows_per_batch, 1, &signed);
         let scores = |v: &Vec<f64>| {
             if clustered {
                 Scores::clustered(v.clone(), flags.clone(), labels.clone())
@@ -81,7 +103,7 @@ pub fn promotion_rate(
             }
         };
         let candidates: Vec<Scores> = l[1..].iter().map(scores).collect();
-        let j = decide_among(Baseline::Serving, &scores(&l[0]), &candidates, &policy);
+        let j = decide_among(Baseline::Serving, &scores(&l[0]), &candidates, policy);
         if j.decision().candidate_won() {
             promoted += 1;
         }
@@ -149,5 +171,40 @@ mod tests {
         );
         // And never with fewer batches than the policy needs.
         assert_eq!(promotion_rate(100, 2, 22, &better(0.5), true), 0.0);
+    }
+
+    /// Measurement, not a check: the gate's false-promotion rate and its
+    /// power against holdout batches and rows per batch, with no row
+    /// minimum, to choose `min_holdout_rows` beside `min_holdout_batches`.
+    /// `cargo test --release --lib gate::simulate::tests::evidence_table -- --ignored --nocapture`
+    #[test]
+    #[ignore]
+    fn evidence_table() {
+        println!(
+            "| holdout batches | rows per batch | rows | false promotions | 20% gain promoted | 10% gain promoted |"
+        );
+        println!("|---|---|---|---|---|---|");
+        for batches in [3, 5, 7, 10, 14] {
+            let policy = Policy {
+                min_holdout_rows: 0,
+                min_batches: 2,
+                ..policy()
+            };
+            for rows in [5, 10, 30, 100] {
+                let seed = (batches * 1000 + rows) as u64;
+                let fp = promotion_rate_with(&policy, 2_000, batches, rows, seed, &equal(1), true);
+                let p20 =
+                    promotion_rate_with(&policy, 500, batches, rows, seed + 1, &better(0.2), true);
+                let p10 =
+                    promotion_rate_with(&policy, 500, batches, rows, seed + 2, &better(0.1), true);
+                println!(
+                    "| {batches} | {rows} | {} | {:.1}% | {:.0}% | {:.0}% |",
+                    batches * rows,
+                    100.0 * fp,
+                    100.0 * p20,
+                    100.0 * p10
+                );
+            }
+        }
     }
 }
