@@ -153,24 +153,14 @@ pub fn encode(
     train: &RowMatrix,
     holdout: &RowMatrix,
 ) -> Result<Vec<u8>, RowFileError> {
-    encode_into(schema, texts, batch, train, holdout, Vec::new())
+    encode_into(schema, texts, batch, train, holdout, Vec::new(), GROUP_ROWS)
 }
 
 /// `encode`, written to `out` as it is made (a file, so that a large batch
-/// needs no buffer of the whole file); returns `out`.
+/// needs no buffer of the whole file), in row groups of at most
+/// `group_rows` rows ([`GROUP_ROWS`] for every file the store writes);
+/// returns `out`.
 pub fn encode_into<W: std::io::Write + Send>(
-    schema: &Schema,
-    texts: &dyn Texts,
-    batch: BatchId,
-    train: &RowMatrix,
-    holdout: &RowMatrix,
-    out: W,
-) -> Result<W, RowFileError> {
-    encode_in_groups(schema, texts, batch, train, holdout, out, GROUP_ROWS)
-}
-
-/// `encode_into` with row groups of at most `group_rows` rows.
-fn encode_in_groups<W: std::io::Write + Send>(
     schema: &Schema,
     texts: &dyn Texts,
     batch: BatchId,
@@ -773,7 +763,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let train = rows(MAX_GROUP_ROWS + 300, 5);
         let holdout = rows(GROUP_ROWS + 10, 6);
-        let bytes = encode_in_groups(
+        let bytes = encode_into(
             &schema(),
             &vocabs(),
             BatchId(3),

@@ -692,16 +692,22 @@ impl Store {
         // named by its hash: no copy of the whole file in memory.
         let out = crate::fsutil::HashedFile::create(&self.rows_dir, &batch.to_string())
             .map_err(io(self.rows_dir.clone()))?;
-        let out =
-            rowfile::encode_into(schema, texts, batch, train, holdout, out).map_err(
-                |e| match e {
-                    RowFileError::Io { source, .. } => StoreError::Io {
-                        path: self.rows_dir.clone(),
-                        source,
-                    },
-                    other => self.row_file_err(other),
-                },
-            )?;
+        let out = rowfile::encode_into(
+            schema,
+            texts,
+            batch,
+            train,
+            holdout,
+            out,
+            rowfile::GROUP_ROWS,
+        )
+        .map_err(|e| match e {
+            RowFileError::Io { source, .. } => StoreError::Io {
+                path: self.rows_dir.clone(),
+                source,
+            },
+            other => self.row_file_err(other),
+        })?;
         let (path, hash, bytes) = out
             .finish(|hash| rowfile::file_name(batch, hash))
             .map_err(io(self.rows_dir.clone()))?;
