@@ -12,6 +12,7 @@
 //!
 //! ```text
 //! cargo run --release --example bench_defaults -- [--seeds N] [--sets wine,diabetes] [NAME:KEY=VALUE;KEY=VALUE ...]
+//! cargo run --release --example bench_defaults -- --ensembles [--seeds N]
 //! ```
 //!
 //! Keys are those of `[training]` and `[model]` in `tidegate.toml`
@@ -125,6 +126,104 @@ fn model_mae(model: &Model, kept: &[Vec<f64>]) -> f64 {
         .map(|(p, r)| (f64::from(*p) - r[w]).abs())
         .sum::<f64>()
         / kept.len() as f64
+}
+
+fn predictions(model: &Model, kept: &[Vec<f64>]) -> Vec<f64> {
+    let Predictions::Regression { values } = model
+        .predict(&matrix(kept), model.backend())
+        .expect("predicts")
+    else {
+        panic!("regression")
+    };
+    values.iter().map(|v| f64::from(*v)).collect()
+}
+
+/// MAE on `kept` of the mean of several models' predictions.
+fn mean_mae(preds: &[Vec<f64>], kept: &[Vec<f64>]) -> f64 {
+    let w = kept[0].len() - 1;
+    let k = preds.len() as f64;
+    kept.iter()
+        .enumerate()
+        .map(|(i, r)| (preds.iter().map(|p| p[i]).sum::<f64>() / k - r[w]).abs())
+        .sum::<f64>()
+        / kept.len() as f64
+}
+
+/// Ensembles as candidates, measured with the defaults (`--ensembles`):
+/// MAE over OLS of a single cold model, the warm stream's last model, the
+/// mean of those two, the mean of the stream's last three warm models, and
+/// the mean of three cold models of other seeds against their own mean
+/// single MAE.
+fn ensembles(set: &Set, seed: u64) -> [f64; 7] {
+    let (files, kept) = split(set, seed);
+    let delivered: Vec<Vec<f64>> = files.iter().flatten().cloned().collect();
+    let ols = ols_mae(&delivered, &kept);
+    let sch = schema(delivered[0].len());
+    let training = |seed| TrainingConfig {
+        seed,
+        ..TrainingConfig::default()
+    };
+    let net = ModelConfig::default();
+    let all = matrix(&delivered);
+    let spec = FeatureSpec::new(
+        &sch,
+        &ColumnStats::of_rows(&sch, &all),
+        &Vocabularies::new(),
+    );
+    let colds: Vec<Vec<f64>> = (0..3)
+        .map(|k| {
+            let m = train_cold(
+                &spec,
+                &net,
+                &training(seed * 10 + k),
+                &all,
+                Control::default(),
+            )
+            .expect("trains")
+            .model;
+            predictions(&m, &kept)
+        })
+        .collect();
+    let first: Vec<Vec<f64>> = files[..FIRST_FILES].iter().flatten().cloned().collect();
+    let first_m = matrix(&first);
+    let spec = FeatureSpec::new(
+        &sch,
+        &ColumnStats::of_rows(&sch, &first_m),
+        &Vocabularies::new(),
+    );
+    let mut model = train_cold(&spec, &net, &training(seed), &first_m, Control::default())
+        .expect("trains")
+        .model;
+    let mut seen = first;
+    let mut warm = Vec::new();
+    for file in &files[FIRST_FILES..] {
+        model = train_warm(
+            &model,
+            &training(seed),
+            &matrix(file),
+            &matrix(&seen),
+            Control::default(),
+        )
+        .expect("trains")
+        .model;
+        seen.extend(file.iter().cloned());
+        warm.push(predictions(&model, &kept));
+    }
+    let last = warm.last().expect("a warm model").clone();
+    let singles: f64 = colds
+        .iter()
+        .map(|p| mean_mae(std::slice::from_ref(p), &kept))
+        .sum::<f64>()
+        / 3.0;
+    [
+        mean_mae(&colds[..1], &kept) / ols,
+        mean_mae(std::slice::from_ref(&last), &kept) / ols,
+        mean_mae(&[colds[0].clone(), last], &kept) / ols,
+        mean_mae(&warm[warm.len() - 3..], &kept) / ols,
+        singles / ols,
+        mean_mae(&colds, &kept) / ols,
+        ols,
+    ]
 }
 
 /// A setting: a name and `[training]` / `[model]` keys over the defaults.
@@ -260,8 +359,10 @@ fn main() {
     let mut sets = vec!["wine".to_string(), "diabetes".to_string()];
     let mut specs: Vec<String> = Vec::new();
     let mut dump: Option<std::path::PathBuf> = None;
+    let mut ensemble = false;
     while let Some(a) = args.next() {
         match a.as_str() {
+            "--ensembles" => ensemble = true,
             "--seeds" => seeds = args.next().and_then(|v| v.parse().ok()).expect("--seeds N"),
             "--dump" => {
                 let dir = std::path::PathBuf::from(args.next().expect("--dump DIR"));
@@ -289,6 +390,25 @@ fn main() {
             other => panic!("unknown data set {other}: wine or diabetes"),
         })
         .collect();
+    if ensemble {
+        println!(
+            "| data set | cold | warm stream | mean of cold and warm stream | mean of the last 3 warm models | cold, 3 seeds, each alone | mean of the 3 cold seeds | OLS MAE |"
+        );
+        println!("|---|---|---|---|---|---|---|---|");
+        for set in &data {
+            let mut sum = [0.0f64; 7];
+            for seed in 1..=seeds {
+                for (acc, v) in sum.iter_mut().zip(ensembles(set, seed)) {
+                    *acc += v / seeds as f64;
+                }
+            }
+            println!(
+                "| {} | {:.4} | {:.4} | {:.4} | {:.4} | {:.4} | {:.4} | {:.4} |",
+                set.name, sum[0], sum[1], sum[2], sum[3], sum[4], sum[5], sum[6]
+            );
+        }
+        return;
+    }
     if let Some(dir) = dump {
         // The splits as CSV, for a reference fitted outside this program on
         // exactly these rows (ops/bench/reference_mlp.py).
