@@ -30,12 +30,13 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use parquet::basic::{LogicalType, Repetition, Type as Physical};
+use parquet::column::writer::{ColumnCloseResult, get_column_writer, get_typed_column_writer};
 use parquet::data_type::{ByteArray, ByteArrayType, FloatType, Int64Type};
 use parquet::file::metadata::KeyValue;
-use parquet::file::properties::WriterProperties;
+use parquet::file::properties::{WriterProperties, WriterPropertiesPtr};
 use parquet::file::reader::{FileReader, SerializedFileReader};
-use parquet::file::writer::SerializedFileWriter;
-use parquet::schema::types::{ColumnPath, Type};
+use parquet::file::writer::{SerializedFileWriter, SerializedPageWriter, TrackedWrite};
+use parquet::schema::types::{ColumnDescPtr, ColumnPath, Type};
 
 use crate::config::ColumnKind;
 use crate::ids::BatchId;
@@ -96,7 +97,7 @@ pub fn file_name(batch: BatchId, hash: &blake3::Hash) -> String {
 
 /// Category text of a code in column `c`, where the codes a batch brings
 /// are not yet in the stored vocabulary.
-pub trait Texts {
+pub trait Texts: Sync {
     fn text(&self, column: usize, code: u32) -> Option<&str>;
 }
 
@@ -209,15 +210,52 @@ pub fn encode_into<W: std::io::Write + Send>(
             KeyValue::new(META_HOLDOUT.into(), holdout.n_rows().to_string()),
         ]))
         .build();
-    let mut writer = SerializedFileWriter::new(out, Arc::new(file_schema(schema)), Arc::new(props))
-        .map_err(pq)?;
+    let props = Arc::new(props);
+    let mut writer =
+        SerializedFileWriter::new(out, Arc::new(file_schema(schema)), props.clone()).map_err(pq)?;
+    let descrs: Vec<ColumnDescPtr> = (0..schema.columns.len())
+        .map(|c| writer.schema_descr().column(RESERVED.len() + c))
+        .collect();
     let batch_no = i64::try_from(batch.0).map_err(|_| bad("batch number too large".into()))?;
     let mut by_code: Vec<Vec<Option<ByteArray>>> = vec![Vec::new(); schema.columns.len()];
+    // The data columns of a row group are encoded on two threads, each
+    // into its own buffer, and then appended in column order.
+    let half = schema.columns.len().div_ceil(2);
     for (split, rows) in [(Split::Train, train), (Split::Holdout, holdout)] {
         let n = rows.n_rows();
         let mut start = 0;
         while start < n {
             let end = (start + group_rows).min(n);
+            let (left, right) = by_code.split_at_mut(half);
+            let encoded = std::thread::scope(|scope| {
+                let descrs = &descrs;
+                let props = &props;
+                let other = scope.spawn(move || {
+                    (half..schema.columns.len())
+                        .zip(right.iter_mut())
+                        .map(|(c, known)| {
+                            encode_column(
+                                schema,
+                                texts,
+                                rows,
+                                c,
+                                start..end,
+                                &descrs[c],
+                                props,
+                                known,
+                            )
+                        })
+                        .collect::<Vec<_>>()
+                });
+                let mut mine: Vec<_> = (0..half)
+                    .zip(left.iter_mut())
+                    .map(|(c, known)| {
+                        encode_column(schema, texts, rows, c, start..end, &descrs[c], props, known)
+                    })
+                    .collect();
+                mine.extend(other.join().expect("a column encoder panicked"));
+                mine
+            });
             let mut group = writer.next_row_group().map_err(pq)?;
             // The three bookkeeping columns.
             let mut col = group.next_column().map_err(pq)?.expect("tg_batch");
@@ -237,70 +275,103 @@ pub fn encode_into<W: std::io::Write + Send>(
                 .write_batch(&row_numbers, None, None)
                 .map_err(pq)?;
             col.close().map_err(pq)?;
-            let mut defs: Vec<i16> = Vec::with_capacity(end - start);
-            for (c, column) in schema.columns.iter().enumerate() {
-                let mut col = group.next_column().map_err(pq)?.expect("data column");
-                defs.clear();
-                match column.kind {
-                    ColumnKind::Number => {
-                        let mut values = Vec::with_capacity(end - start);
-                        for r in start..end {
-                            match rows.number(r, c) {
-                                Some(v) => {
-                                    values.push(v);
-                                    defs.push(1);
-                                }
-                                None => defs.push(0),
-                            }
-                        }
-                        col.typed::<FloatType>()
-                            .write_batch(&values, Some(&defs), None)
-                            .map_err(pq)?;
-                    }
-                    ColumnKind::Category => {
-                        let mut values = Vec::with_capacity(end - start);
-                        // One buffer per value, shared by every row that
-                        // holds it (a clone is a reference count).
-                        let known = &mut by_code[c];
-                        for r in start..end {
-                            match rows.code(r, c) {
-                                Some(code) => {
-                                    let slot = code as usize;
-                                    if known.len() <= slot {
-                                        known.resize(slot + 1, None);
-                                    }
-                                    let value = match &known[slot] {
-                                        Some(v) => v.clone(),
-                                        None => {
-                                            let text = texts.text(c, code).ok_or_else(|| {
-                                                bad(format!(
-                                                    "column {:?} has code {code}, which no vocabulary holds",
-                                                    column.name
-                                                ))
-                                            })?;
-                                            let v = ByteArray::from(text);
-                                            known[slot] = Some(v.clone());
-                                            v
-                                        }
-                                    };
-                                    values.push(value);
-                                    defs.push(1);
-                                }
-                                None => defs.push(0),
-                            }
-                        }
-                        col.typed::<ByteArrayType>()
-                            .write_batch(&values, Some(&defs), None)
-                            .map_err(pq)?;
-                    }
+            for column in encoded {
+                match column {
+                    Ok((bytes, close)) => group.append_column(&bytes, close).map_err(pq)?,
+                    Err(Encoding::Parquet(e)) => return Err(pq(e)),
+                    Err(Encoding::UnknownCode(what)) => return Err(bad(what)),
                 }
-                col.close().map_err(pq)?;
             }
             group.close().map_err(pq)?;
             start = end;
         }
     }
     writer.into_inner().map_err(pq)
+}
+
+/// Why one column chunk could not be encoded.
+enum Encoding {
+    Parquet(parquet::errors::ParquetError),
+    UnknownCode(String),
+}
+
+impl From<parquet::errors::ParquetError> for Encoding {
+    fn from(e: parquet::errors::ParquetError) -> Encoding {
+        Encoding::Parquet(e)
+    }
+}
+
+/// Encodes rows `range` of data column `c` as one column chunk in a buffer
+/// of its own, for `append_column`. `known` holds one buffer per category
+/// value, shared by every row that holds it (a clone is a reference count).
+#[allow(clippy::too_many_arguments)]
+fn encode_column(
+    schema: &Schema,
+    texts: &dyn Texts,
+    rows: &RowMatrix,
+    c: usize,
+    range: std::ops::Range<usize>,
+    descr: &ColumnDescPtr,
+    props: &WriterPropertiesPtr,
+    known: &mut Vec<Option<ByteArray>>,
+) -> Result<(bytes::Bytes, ColumnCloseResult), Encoding> {
+    let mut sink = TrackedWrite::new(Vec::new());
+    let page_writer = SerializedPageWriter::new(&mut sink);
+    let writer = get_column_writer(descr.clone(), props.clone(), Box::new(page_writer));
+    let mut defs: Vec<i16> = Vec::with_capacity(range.len());
+    let column = &schema.columns[c];
+    let close = match column.kind {
+        ColumnKind::Number => {
+            let mut values = Vec::with_capacity(range.len());
+            for r in range {
+                match rows.number(r, c) {
+                    Some(v) => {
+                        values.push(v);
+                        defs.push(1);
+                    }
+                    None => defs.push(0),
+                }
+            }
+            let mut w = get_typed_column_writer::<FloatType>(writer);
+            w.write_batch(&values, Some(&defs), None)?;
+            w.close()?
+        }
+        ColumnKind::Category => {
+            let mut values = Vec::with_capacity(range.len());
+            for r in range {
+                match rows.code(r, c) {
+                    Some(code) => {
+                        let slot = code as usize;
+                        if known.len() <= slot {
+                            known.resize(slot + 1, None);
+                        }
+                        let value = match &known[slot] {
+                            Some(v) => v.clone(),
+                            None => {
+                                let text = texts.text(c, code).ok_or_else(|| {
+                                    Encoding::UnknownCode(format!(
+                                        "column {:?} has code {code}, which no vocabulary holds",
+                                        column.name
+                                    ))
+                                })?;
+                                let v = ByteArray::from(text);
+                                known[slot] = Some(v.clone());
+                                v
+                            }
+                        };
+                        values.push(value);
+                        defs.push(1);
+                    }
+                    None => defs.push(0),
+                }
+            }
+            let mut w = get_typed_column_writer::<ByteArrayType>(writer);
+            w.write_batch(&values, Some(&defs), None)?;
+            w.close()?
+        }
+    };
+    let bytes = bytes::Bytes::from(sink.into_inner()?);
+    Ok((bytes, close))
 }
 
 /// An open row file, checked against the layout and the schema.
