@@ -112,6 +112,31 @@ fn ols_mae(fit: &[Vec<f64>], kept: &[Vec<f64>]) -> f64 {
         / kept.len() as f64
 }
 
+/// The stream after its first files: one warm run per later file with
+/// every earlier row as the replay pool; `each` sees every model.
+fn warm_stream(
+    mut model: Model,
+    files: &[Vec<Vec<f64>>],
+    training: &TrainingConfig,
+    mut each: impl FnMut(&Model),
+) -> Model {
+    let mut seen: Vec<Vec<f64>> = files[..FIRST_FILES].iter().flatten().cloned().collect();
+    for file in &files[FIRST_FILES..] {
+        model = train_warm(
+            &model,
+            training,
+            &matrix(file),
+            &matrix(&seen),
+            Control::default(),
+        )
+        .expect("trains")
+        .model;
+        seen.extend(file.iter().cloned());
+        each(&model);
+    }
+    model
+}
+
 fn model_mae(model: &Model, kept: &[Vec<f64>]) -> f64 {
     let w = kept[0].len() - 1;
     let Predictions::Regression { values } = model
@@ -191,24 +216,13 @@ fn ensembles(set: &Set, seed: u64) -> [f64; 7] {
         &ColumnStats::of_rows(&sch, &first_m),
         &Vocabularies::new(),
     );
-    let mut model = train_cold(&spec, &net, &training(seed), &first_m, Control::default())
+    let model = train_cold(&spec, &net, &training(seed), &first_m, Control::default())
         .expect("trains")
         .model;
-    let mut seen = first;
     let mut warm = Vec::new();
-    for file in &files[FIRST_FILES..] {
-        model = train_warm(
-            &model,
-            &training(seed),
-            &matrix(file),
-            &matrix(&seen),
-            Control::default(),
-        )
-        .expect("trains")
-        .model;
-        seen.extend(file.iter().cloned());
-        warm.push(predictions(&model, &kept));
-    }
+    warm_stream(model, &files, &training(seed), |m| {
+        warm.push(predictions(m, &kept))
+    });
     let last = warm.last().expect("a warm model").clone();
     let singles: f64 = colds
         .iter()
@@ -321,23 +335,11 @@ fn run(set: &Set, s: &Setting, seed: u64) -> (f64, Figures) {
         &Vocabularies::new(),
     );
     let t = Instant::now();
-    let mut model = train_cold(&spec, &s.model, &training, &first_m, Control::default())
+    let model = train_cold(&spec, &s.model, &training, &first_m, Control::default())
         .expect("trains")
         .model;
     let first_ratio = model_mae(&model, &kept) / ols_mae(&first, &kept);
-    let mut seen = first;
-    for file in &files[FIRST_FILES..] {
-        model = train_warm(
-            &model,
-            &training,
-            &matrix(file),
-            &matrix(&seen),
-            Control::default(),
-        )
-        .expect("trains")
-        .model;
-        seen.extend(file.iter().cloned());
-    }
+    let model = warm_stream(model, &files, &training, |_| {});
     let warm_seconds = t.elapsed().as_secs_f64();
     let warm_mae = model_mae(&model, &kept);
     (
