@@ -112,6 +112,23 @@ fn ols_mae(fit: &[Vec<f64>], kept: &[Vec<f64>]) -> f64 {
         / kept.len() as f64
 }
 
+/// The stream's first model: cold on its first files (returned too), with
+/// the scaling of those rows.
+fn first_model(
+    files: &[Vec<Vec<f64>>],
+    sch: &Schema,
+    net: &ModelConfig,
+    training: &TrainingConfig,
+) -> (Model, Vec<Vec<f64>>) {
+    let first: Vec<Vec<f64>> = files[..FIRST_FILES].iter().flatten().cloned().collect();
+    let rows = matrix(&first);
+    let spec = FeatureSpec::new(sch, &ColumnStats::of_rows(sch, &rows), &Vocabularies::new());
+    let model = train_cold(&spec, net, training, &rows, Control::default())
+        .expect("trains")
+        .model;
+    (model, first)
+}
+
 /// The stream after its first files: one warm run per later file with
 /// every earlier row as the replay pool; `each` sees every model.
 fn warm_stream(
@@ -209,16 +226,7 @@ fn ensembles(set: &Set, seed: u64) -> [f64; 7] {
             predictions(&m, &kept)
         })
         .collect();
-    let first: Vec<Vec<f64>> = files[..FIRST_FILES].iter().flatten().cloned().collect();
-    let first_m = matrix(&first);
-    let spec = FeatureSpec::new(
-        &sch,
-        &ColumnStats::of_rows(&sch, &first_m),
-        &Vocabularies::new(),
-    );
-    let model = train_cold(&spec, &net, &training(seed), &first_m, Control::default())
-        .expect("trains")
-        .model;
+    let (model, _) = first_model(&files, &sch, &net, &training(seed));
     let mut warm = Vec::new();
     warm_stream(model, &files, &training(seed), |m| {
         warm.push(predictions(m, &kept))
@@ -327,17 +335,8 @@ fn run(set: &Set, s: &Setting, seed: u64) -> (f64, Figures) {
     let cold_seconds = t.elapsed().as_secs_f64();
     let cold_mae = model_mae(&cold.model, &kept);
 
-    let first: Vec<Vec<f64>> = files[..FIRST_FILES].iter().flatten().cloned().collect();
-    let first_m = matrix(&first);
-    let spec = FeatureSpec::new(
-        &sch,
-        &ColumnStats::of_rows(&sch, &first_m),
-        &Vocabularies::new(),
-    );
     let t = Instant::now();
-    let model = train_cold(&spec, &s.model, &training, &first_m, Control::default())
-        .expect("trains")
-        .model;
+    let (model, first) = first_model(&files, &sch, &s.model, &training);
     let first_ratio = model_mae(&model, &kept) / ols_mae(&first, &kept);
     let model = warm_stream(model, &files, &training, |_| {});
     let warm_seconds = t.elapsed().as_secs_f64();
