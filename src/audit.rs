@@ -1124,8 +1124,6 @@ impl std::fmt::Display for ChainProblem {
     }
 }
 
-/// Checks that `lines` form an intact, contiguous chain from entry 1.
-/// Returns the parsed entries, or the first problem.
 /// Each batch's row file by the log: the last entry that wrote one (its
 /// `batch-accepted`, or a later `rows-written` for a move or a migration),
 /// with that entry's sequence number. Batches accepted before row files and
@@ -1150,6 +1148,8 @@ pub fn row_files(entries: &[Entry]) -> BTreeMap<BatchId, (AuditSeq, crate::rowfi
     out
 }
 
+/// Checks that `lines` form an intact, contiguous chain from entry 1.
+/// Returns the parsed entries, or the first problem.
 pub fn verify_chain<'a>(
     lines: impl IntoIterator<Item = &'a [u8]>,
 ) -> Result<Vec<Entry>, ChainProblem> {
