@@ -74,8 +74,10 @@ impl HashedFile {
         name: impl FnOnce(&blake3::Hash) -> String,
     ) -> std::io::Result<(PathBuf, blake3::Hash, u64)> {
         let out = self.out.take().expect("finished once");
-        let file = out.into_inner().map_err(|e| e.into_error())?;
+        // Every failure from here on, the last flush included, removes the
+        // temp file (`Drop` no longer does, `out` being taken).
         let result = (|| {
+            let file = out.into_inner().map_err(|e| e.into_error())?;
             file.sync_all()?;
             drop(file);
             let hash = self.hasher.finalize();
