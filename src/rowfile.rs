@@ -170,16 +170,15 @@ pub fn encode_into<W: std::io::Write + Send>(
     out: W,
     group_rows: usize,
 ) -> Result<W, RowFileError> {
-    let bad = |what: String| RowFileError::Bad {
-        path: PathBuf::from(format!("(rows of {batch})")),
-        what,
-    };
+    // Errors name the batch: the file has no path until it is named.
+    let label = PathBuf::from(format!("(rows of {batch})"));
+    let bad = |what: String| bad_at(&label, what);
     // A failed write (a full disk) is the machine's error, not a bad file.
     let pq = |e: parquet::errors::ParquetError| match e {
         parquet::errors::ParquetError::External(inner) => {
             match inner.downcast::<std::io::Error>() {
                 Ok(io) => RowFileError::Io {
-                    path: PathBuf::from(format!("(rows of {batch})")),
+                    path: label.clone(),
                     source: *io,
                 },
                 Err(other) => bad(other.to_string()),
@@ -378,9 +377,8 @@ fn encode_column(
 pub struct RowFile {
     path: PathBuf,
     reader: SerializedFileReader<File>,
-    train_rows: usize,
-    holdout_rows: usize,
-    /// Rows of each row group, in file order.
+    /// Rows of each row group, in file order (they add up to the
+    /// record's counts: `open` checks it).
     sizes: Vec<usize>,
     /// How many of the groups hold training rows (the first ones).
     train_groups: usize,
@@ -458,8 +456,6 @@ impl RowFile {
         Ok(RowFile {
             path: path.to_path_buf(),
             reader,
-            train_rows,
-            holdout_rows,
             sizes,
             train_groups,
         })
@@ -469,12 +465,17 @@ impl RowFile {
         bad_at(&self.path, what.into())
     }
 
+    /// The row groups of `split`, in file order.
+    fn groups(&self, split: Split) -> std::ops::Range<usize> {
+        match split {
+            Split::Train => 0..self.train_groups,
+            Split::Holdout => self.train_groups..self.sizes.len(),
+        }
+    }
+
     /// Rows in `split`.
     pub fn rows(&self, split: Split) -> usize {
-        match split {
-            Split::Train => self.train_rows,
-            Split::Holdout => self.holdout_rows,
-        }
+        self.sizes[self.groups(split)].iter().sum()
     }
 
     /// Appends the rows of `split` whose positions (within the split) are
@@ -489,13 +490,9 @@ impl RowFile {
         out: &mut RowMatrix,
     ) -> Result<(), RowFileError> {
         let n = self.rows(split);
-        let groups = match split {
-            Split::Train => 0..self.train_groups,
-            Split::Holdout => self.train_groups..self.sizes.len(),
-        };
         let mut picks = wanted.map(|w| w.iter().copied().peekable());
         let mut hi = 0;
-        for g in groups {
+        for g in self.groups(split) {
             let lo = hi;
             hi += self.sizes[g];
             let local: Option<Vec<usize>> = match picks.as_mut() {
