@@ -360,7 +360,8 @@ enum Purpose {
 }
 
 struct Parsed {
-    /// The rows in file order, as the parts parsed them.
+    /// The rows in file order, as the parts parsed them (at least one part:
+    /// the cut points always make one).
     parts: Vec<RowMatrix>,
     holdout: Vec<bool>,
     new_categories: BTreeMap<usize, Vec<String>>,
@@ -883,9 +884,6 @@ fn merge_parts(parts: Vec<Part>, cx: &Context<'_>) -> Result<Parsed, Refusal> {
         return Err(Refusal::whole_file(
             "the file has a header but no rows; nothing to add",
         ));
-    }
-    if rows.is_empty() {
-        rows.push(RowMatrix::new(width));
     }
     Ok(Parsed {
         parts: rows,
