@@ -155,19 +155,7 @@ fn warm_stream(
 }
 
 fn model_mae(model: &Model, kept: &[Vec<f64>]) -> f64 {
-    let w = kept[0].len() - 1;
-    let Predictions::Regression { values } = model
-        .predict(&matrix(kept), model.backend())
-        .expect("predicts")
-    else {
-        panic!("regression")
-    };
-    values
-        .iter()
-        .zip(kept)
-        .map(|(p, r)| (f64::from(*p) - r[w]).abs())
-        .sum::<f64>()
-        / kept.len() as f64
+    mean_mae(&[predictions(model, kept)], kept)
 }
 
 fn predictions(model: &Model, kept: &[Vec<f64>]) -> Vec<f64> {
